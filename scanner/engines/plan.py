@@ -1,0 +1,74 @@
+"""What an engine is asked to compute, and what it hands back."""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+MAX_EXACT = 5000          # at most this many distinct values → exact-support bins
+TARGET_BINS = 2000        # fixed-width bins: about this many across the central 98% of the data
+
+
+@dataclass(frozen=True)
+class BinPlan:
+    """The binning pass to run.
+
+    running : running-variable columns.
+    bin_width : per running variable, a fixed bin width chosen by the user (or absent).
+    columns : tracked columns (treatments, covariates, outcomes) — the same for every running variable.
+    treatments : the subset of ``columns`` that must be 0/1.
+    pairs : column pairs that need joint sums (treatment × outcome for fuzzy designs).
+    date : date column giving calendar-quarter period keys, or None.
+    split_seed : seed of the half-sample key, or None for no split.
+    """
+
+    running: tuple[str, ...]
+    columns: tuple[str, ...]
+    treatments: tuple[str, ...] = ()
+    pairs: tuple[tuple[str, str], ...] = ()
+    bin_width: dict = field(default_factory=dict)
+    date: str | None = None
+    split_seed: int | None = None
+    max_exact: int = MAX_EXACT
+    target_bins: int = TARGET_BINS
+
+    @property
+    def needed(self) -> list[str]:
+        cols = list(dict.fromkeys(list(self.running) + list(self.columns)))
+        if self.date:
+            cols.append(self.date)
+        return cols
+
+
+@dataclass
+class BinResult:
+    """Output of the pass: BinnedStats per running variable and row accounting."""
+
+    stats: dict
+    rows_read: int
+    missing: dict            # running variable -> rows with the value missing
+    nonfinite: dict          # running variable -> rows with ±inf
+
+
+def nice_width(span: float, target: int) -> float:
+    """Largest 1-2-5 × 10^k number not above span/target (so round cutoffs fall on bin edges)."""
+    raw = span / max(target, 1)
+    if not np.isfinite(raw) or raw <= 0:
+        return 1.0
+    exp = math.floor(math.log10(raw))
+    for m in (5, 2, 1):
+        w = m * 10.0 ** exp
+        if w <= raw * (1 + 1e-12):
+            return float(w)
+    return float(10.0 ** exp)
+
+
+def weighted_quantile(values: np.ndarray, weights: np.ndarray, q) -> np.ndarray:
+    """Quantiles of a weighted support (values sorted or not)."""
+    order = np.argsort(values)
+    v, w = values[order], weights[order].astype(float)
+    cw = np.cumsum(w)
+    if cw.size == 0 or cw[-1] <= 0:
+        return np.full(np.shape(q), np.nan)
+    return v[np.minimum(np.searchsorted(cw, np.asarray(q) * cw[-1], side="left"), v.size - 1)]
