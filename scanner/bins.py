@@ -87,7 +87,13 @@ class BinnedStats:
 
     @property
     def x(self) -> np.ndarray:
-        """Representative running-variable value of each bin (the in-bin mean)."""
+        """Representative running-variable value of each bin.
+
+        The exact value for exact-support bins (so cutoff comparisons are exact), the in-bin
+        mean Σx/n for fixed-width bins.
+        """
+        if self.kind == "exact":
+            return self.key
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where(self.n > 0, self.sx / np.maximum(self.n, 1), np.nan)
 
@@ -148,6 +154,15 @@ class BinnedStats:
         p = np.full_like(self.period, -1) if period else self.period
         h = np.full_like(self.half, -1) if half else self.half
         return self._grouped(self.key, p, h, self._arrays())
+
+    @property
+    def keyed(self) -> bool:
+        """True when bins carry period or half keys."""
+        return bool((self.period >= 0).any() or (self.half >= 0).any())
+
+    def pooled(self) -> "BinnedStats":
+        """One bin per running-variable key (self when there are no period/half keys)."""
+        return self.collapse() if self.keyed else self
 
     def restrict(self, mask=None, period=None, half=None) -> "BinnedStats":
         """Keep bins selected by a boolean mask and/or a period code (or codes) and/or a half."""

@@ -1,4 +1,4 @@
-"""Heaping at a value of a discrete running variable.
+"""Heaping at values of a discrete running variable.
 
 Heaps — excess mass at round or conventional values — bias RD estimates when heaped units differ
 from the rest (Barreca, Lindo & Waddell 2016, Economic Inquiry 54(1)).  The check compares the
@@ -16,6 +16,9 @@ from scipy import stats as sps
 
 from ..bins import BinnedStats
 
+HEAP_P = 0.001      # common practice: a heap needs strong evidence ...
+HEAP_RATIO = 1.5    # ... and at least 1.5 times the mass of its neighbours
+
 
 @dataclass(frozen=True)
 class HeapTest:
@@ -25,26 +28,37 @@ class HeapTest:
     ratio: float
     p_value: float
 
+    @property
+    def is_heap(self) -> bool:
+        return self.p_value < HEAP_P and self.ratio >= HEAP_RATIO
 
-def heap_at(stats: BinnedStats, value: float, tol: float | None = None) -> HeapTest | None:
-    """Test for a heap at the support point nearest ``value`` (exact-support bins only)."""
+
+def heap_tests(stats: BinnedStats) -> list[HeapTest]:
+    """A heap test at every support value of an exact-support running variable."""
     if stats.kind != "exact":
-        return None
-    st = stats.collapse() if ((stats.period >= 0).any() or (stats.half >= 0).any()) else stats
+        return []
+    st = stats.pooled()
     keep = st.n > 0
-    v, n = st.key[keep], st.n[keep]
+    v, n = st.key[keep], st.n[keep].astype(float)
     if v.size < 5:
-        return None
-    i = int(np.argmin(np.abs(v - value)))
-    spacing = np.median(np.diff(v))
-    if abs(v[i] - value) > (tol if tol is not None else spacing / 2 + 1e-12):
-        return None
-    lo, hi = max(0, i - 2), min(v.size, i + 3)
-    nb = np.concatenate([n[lo:i], n[i + 1:hi]])
-    if nb.size < 2:
-        return None
-    m = int(n[i] + nb.sum())
-    share = 1.0 / (nb.size + 1)
-    p = float(sps.binom.sf(n[i] - 1, m, share))
-    mean = float(nb.mean())
-    return HeapTest(float(v[i]), int(n[i]), mean, float(n[i] / mean) if mean > 0 else float("inf"), p)
+        return []
+    pad = np.concatenate([[np.nan, np.nan], n, [np.nan, np.nan]])
+    nb = np.vstack([pad[0:-4], pad[1:-3], pad[3:-1], pad[4:]])
+    k = np.isfinite(nb).sum(axis=0)
+    tot = np.nansum(nb, axis=0)
+    mean = np.where(k > 0, tot / np.maximum(k, 1), np.nan)
+    share = 1.0 / (k + 1)
+    p = sps.binom.sf(n - 1, n + tot, share)
+    ratio = np.where(mean > 0, n / np.where(mean > 0, mean, 1), np.inf)
+    return [HeapTest(float(a), int(b), float(c), float(d), float(e))
+            for a, b, c, d, e in zip(v, n, mean, ratio, p)]
+
+
+def heap_near(tests: list[HeapTest], cutoff: float, reach: float) -> HeapTest | None:
+    """The strongest heap within ``reach`` of the cutoff, or the test at the cutoff if none."""
+    near = [t for t in tests if abs(t.value - cutoff) <= reach]
+    heaps = [t for t in near if t.is_heap]
+    if heaps:
+        return max(heaps, key=lambda t: (t.ratio, -abs(t.value - cutoff)))
+    at = [t for t in near if np.isclose(t.value, cutoff)]
+    return at[0] if at else None

@@ -44,7 +44,7 @@ def side_data(stats: BinnedStats, column: str, cutoff: float, right_closed: bool
 
     ``right_closed`` puts rows exactly at the cutoff on the right (x ≥ c); otherwise on the left.
     """
-    st = stats.collapse() if ((stats.period >= 0).any() or (stats.half >= 0).any()) else stats
+    st = stats.pooled()
     x, n, s1, s2 = st.column_sums(column)
     keep = n > 0
     u = x[keep] - cutoff
@@ -217,7 +217,7 @@ def fit_fuzzy(stats: BinnedStats, treatment: str, outcome: str, cutoff: float, b
     ``V = Σ ℓ_i² (e_Y,i − τ e_T,i)² / τ_T²`` with HC1 scaling, identical to the HC1 sandwich of
     weighted 2SLS with controls (1, x, D·x), endogenous T and excluded instrument D.
     """
-    st = stats.collapse() if ((stats.period >= 0).any() or (stats.half >= 0).any()) else stats
+    st = stats.pooled()
     q = st.pair(treatment, outcome)
     pn = st.pn[:, q].astype(float)
     keep = pn > 0

@@ -1,0 +1,193 @@
+"""Sub-scores, flags, verdicts, q-values and ranking.
+
+The composite score (0–100) is a weighted mean of named sub-scores in [0, 1]:
+
+============  ======  =====================================================================
+sub-score     weight  definition
+============  ======  =====================================================================
+strength      0.4     min(1, |jump| / 0.5) × min(1, F / 10)   (F = t² of the first stage)
+density       0.2     g(density_p), g(p) = clip((log10 p + 3) / 2, 0, 1): 1 for p ≥ 0.1, 0 for p ≤ 0.001
+balance       0.2     g(balance_p)
+support       0.2     min(1, log10(min(n_left, n_right)) / 3) × min(1, min distinct values per side / 10)
+============  ======  =====================================================================
+
+A sub-score that could not be computed is left out and the weights of the others rescaled.
+Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and then by
+score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
+candidate tested in the scan.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .diagnostics.heaping import HEAP_P, HEAP_RATIO
+
+WEIGHTS = {"strength": 0.4, "density": 0.2, "balance": 0.2, "support": 0.2}
+VERDICTS = ("usable", "caution", "doubtful", "no jump", "not estimable")
+SERIOUS = {"sorting", "heaping", "imbalance", "overlap"}
+F_WEAK = 10.0          # common practice: first-stage F below 10 is weak (Staiger & Stock 1997)
+MIN_DISTINCT = 5       # fewer distinct running-variable values per side inside h → "coarse"
+MIN_SIDE_ROWS = 100
+OVERLAP_Z = 3.0        # a neighbour counts as a rival only if its own jump is clear (|z| > 3)    # common practice: fewer rows per side inside h → "thin"
+
+
+def bh_qvalues(p) -> np.ndarray:
+    """Benjamini–Hochberg adjusted p-values; NaN p-values stay NaN and are not counted."""
+    p = np.asarray(p, float)
+    q = np.full(p.shape, np.nan)
+    ok = np.isfinite(p)
+    m = ok.sum()
+    if m == 0:
+        return q
+    pv = p[ok]
+    order = np.argsort(pv)
+    ranked = pv[order] * m / np.arange(1, m + 1)
+    adj = np.minimum.accumulate(ranked[::-1])[::-1]
+    out = np.empty(m)
+    out[order] = np.minimum(adj, 1.0)
+    q[ok] = out
+    return q
+
+
+def _g(p):
+    if p is None or not np.isfinite(p):
+        return None
+    return float(np.clip((math.log10(max(p, 1e-300)) + 3) / 2, 0, 1))
+
+
+def subscores(c: dict) -> dict:
+    """Named sub-scores of one candidate row (None where not computable)."""
+    out = {"strength": None, "density": _g(c.get("density_p")), "balance": _g(c.get("balance_p")),
+           "support": None}
+    if np.isfinite(c.get("jump", np.nan)):
+        f = c.get("first_stage_f") or 0.0
+        out["strength"] = float(min(1, abs(c["jump"]) / 0.5) * min(1, f / F_WEAK))
+        nmin = min(c.get("n_left") or 0, c.get("n_right") or 0)
+        dmin = min(c.get("distinct_left") or 0, c.get("distinct_right") or 0)
+        out["support"] = float(min(1, math.log10(max(nmin, 1)) / 3) * min(1, dmin / 10))
+    return out
+
+
+def composite(sub: dict) -> float:
+    got = {k: v for k, v in sub.items() if v is not None}
+    if "strength" not in got:
+        return 0.0
+    wsum = sum(WEIGHTS[k] for k in got)
+    return round(100 * sum(WEIGHTS[k] * v for k, v in got.items()) / wsum, 1)
+
+
+def flags(c: dict, alpha: float) -> list[str]:
+    """Short flag words for a candidate row."""
+    out = []
+    if not np.isfinite(c.get("jump", np.nan)):
+        return out
+    if (c.get("first_stage_f") or 0) < F_WEAK:
+        out.append("weak")
+    if c.get("density_p") is not None and np.isfinite(c["density_p"]) and c["density_p"] < alpha:
+        out.append("sorting")
+    if c.get("balance_p") is not None and np.isfinite(c["balance_p"]) and c["balance_p"] < alpha:
+        out.append("imbalance")
+    if c.get("heap_p") is not None and c["heap_p"] < HEAP_P and (c.get("heap_ratio") or 0) >= HEAP_RATIO:
+        out.append("heaping")
+    if min(c.get("distinct_left") or 0, c.get("distinct_right") or 0) < MIN_DISTINCT:
+        out.append("coarse")
+    if min(c.get("n_left") or 0, c.get("n_right") or 0) < MIN_SIDE_ROWS:
+        out.append("thin")
+    out.extend(f for f in c.get("extra_flags", []) if f not in out)
+    return out
+
+
+def verdict(c: dict, alpha: float) -> str:
+    if not np.isfinite(c.get("jump", np.nan)):
+        return "not estimable"
+    q = c.get("q_value")
+    if q is None or not np.isfinite(q) or q >= alpha:
+        return "no jump"
+    fl = set(c.get("flags", []))
+    if fl & SERIOUS:
+        return "doubtful"
+    if fl:
+        return "caution"
+    return "usable"
+
+
+def _fmt_p(p):
+    return "n/a" if p is None or not np.isfinite(p) else (f"{p:.2g}" if p >= 1e-4 else "< 0.0001")
+
+
+def reasons(c: dict, alpha: float) -> list[str]:
+    """Plain-words reasons behind the verdict."""
+    out = []
+    if not np.isfinite(c.get("jump", np.nan)):
+        return [f"could not be estimated: {c.get('reason') or 'unknown reason'}."]
+    out.append(f"uptake of {c['treatment']} jumps by {c['jump']:+.3f} at {c['running']} = "
+               f"{c['cutoff']:g} (from {c['left']:.2f} to {c['right']:.2f}; F = {c['first_stage_f']:.1f}, "
+               f"q = {_fmt_p(c['q_value'])}).")
+    fl = c.get("flags", [])
+    if "weak" in fl:
+        out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
+    if "sorting" in fl:
+        out.append(f"the density of {c['running']} changes {100 * (c['density_ratio'] - 1):+.0f}% at the "
+                   f"cutoff (p = {_fmt_p(c['density_p'])}): people may be sorting around the line.")
+    if "imbalance" in fl and c.get("balance_worst"):
+        w = c["balance_worst"]
+        out.append(f"covariate '{w['name']}' jumps by {w['std_jump']:+.2f} sd at the cutoff "
+                   f"(p = {_fmt_p(w['p_value'])}): groups either side differ beyond treatment.")
+    if "heaping" in fl:
+        out.append(f"a heap at {c['heap_value']:g} holds {c['heap_ratio']:.1f}× the rows of neighbouring "
+                   "values: rounded or self-reported values sit on the line.")
+    if "coarse" in fl:
+        out.append(f"only {min(c['distinct_left'], c['distinct_right'])} distinct values of "
+                   f"{c['running']} on a side within the bandwidth: the running variable is coarse.")
+    if "overlap" in fl:
+        out.append(f"a stronger jump at {c['overlap_with']:g} lies inside this window, so this "
+                   "estimate mostly picks up that one.")
+    if "thin" in fl:
+        out.append("few rows near the cutoff on at least one side.")
+    if c.get("q_value") is not None and np.isfinite(c["q_value"]) and c["q_value"] >= alpha:
+        out.append(f"no jump after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
+                   f"(q = {_fmt_p(c['q_value'])} ≥ {alpha:g}).")
+    return out
+
+
+def overlaps(rows: list[dict]) -> None:
+    """Mark candidates whose window holds a stronger cutoff of the same running × treatment.
+
+    The estimate at such a cutoff mostly picks up its neighbour's jump ("overlap" flag); the
+    stronger candidate is named in ``overlap_with``.
+    """
+    groups: dict = {}
+    for r in rows:
+        if np.isfinite(r.get("z", np.nan)):
+            groups.setdefault((r["running"], r["treatment"]), []).append(r)
+    for group in groups.values():
+        for r in group:
+            h = r["bandwidth"]
+            rivals = [o for o in group if o is not r and abs(o["cutoff"] - r["cutoff"]) < h
+                      and abs(o["z"]) > max(abs(r["z"]), OVERLAP_Z)]
+            if rivals:
+                best = max(rivals, key=lambda o: abs(o["z"]))
+                r.setdefault("extra_flags", []).append("overlap")
+                r["overlap_with"] = best["cutoff"]
+
+
+def finalize(rows: list[dict], alpha: float) -> list[dict]:
+    """Add q-values, flags, sub-scores, score, verdict, reasons and rank; return rows best first."""
+    q = bh_qvalues([r.get("p_value", np.nan) for r in rows])
+    tested = int(np.isfinite(q).sum())
+    overlaps(rows)
+    for r, qv in zip(rows, q):
+        r["q_value"] = float(qv)
+        r["n_tested"] = tested
+        r["flags"] = flags(r, alpha)
+        r["subscores"] = subscores(r)
+        r["score"] = composite(r["subscores"])
+        r["verdict"] = verdict(r, alpha)
+        r["reasons"] = reasons(r, alpha)
+    rows.sort(key=lambda r: (VERDICTS.index(r["verdict"]), -r["score"], r["running"],
+                             r["treatment"], r["cutoff"]))
+    for i, r in enumerate(rows, 1):
+        r["rank"] = i
+    return rows
