@@ -1,0 +1,77 @@
+"""End to end: `cutscan demo` on the invented Vallmora registry, with its planted truth
+(scanner/demo.py lists it)."""
+import csv
+import json
+
+import pytest
+
+from .conftest import run_cli
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "out"
+    proc = run_cli("demo", "--out", out)
+    assert proc.returncode == 0, proc.stderr
+    return out, proc
+
+
+def _rows(out):
+    return json.loads((out / "results.json").read_text())["candidates"]
+
+
+def test_every_output_parses(demo):
+    out, proc = demo
+    res = json.loads((out / "results.json").read_text())
+    for key in ("version", "spec", "data", "candidates"):
+        assert key in res
+    design_fields = ["rank", "running", "treatment", "cutoff", "origin", "rule_id", "eligible_side",
+                     "jump", "se", "ci_low", "ci_high", "p_value", "q_value", "first_stage_f",
+                     "design", "bandwidth", "n_left", "n_right", "distinct_left", "distinct_right",
+                     "density_p", "balance_p", "placebo_p", "score", "verdict", "flags"]
+    for c in res["candidates"]:
+        assert set(design_fields) <= set(c)
+    with (out / "candidates.csv").open() as fh:
+        assert len(list(csv.DictReader(fh))) == len(res["candidates"])
+    html = (out / "report.html").read_text()
+    assert "<html" in html and "not proof" in html and "data:image/png;base64" in html
+    assert "renal_referral" in proc.stdout            # the terminal table was printed
+
+
+def test_planted_rules_rank_above_every_decoy(demo):
+    rows = _rows(demo[0])
+    planted = {("egfr", "renal_referral", 30.0), ("hba1c", "diabetes_education", 6.5)}
+    ranks = {(r["running"], r["treatment"], r["cutoff"]): r["rank"] for r in rows}
+    assert sorted(ranks[p] for p in planted) == [1, 2]
+    for r in rows:
+        if (r["running"], r["treatment"], r["cutoff"]) in planted:
+            assert r["verdict"] == "usable", r
+            assert r["origin"] == "declared"
+    sharp = next(r for r in rows if r["rule_id"] == "nm-renal-30")
+    fuzzy = next(r for r in rows if r["rule_id"] == "nm-dsme-6.5")
+    assert sharp["design"] == "sharp" and fuzzy["design"] == "fuzzy"
+    assert abs(fuzzy["jump"] - 0.45) < 0.05        # planted uptake jump 0.12 → 0.57
+
+
+def test_decoys_carry_expected_flags(demo):
+    rows = _rows(demo[0])
+    waiver = next(r for r in rows if r["rule_id"] == "vm-brightpath-waiver")
+    assert "sorting" in waiver["flags"] and waiver["verdict"] != "usable"
+    walk = [r for r in rows if r["running"] == "walk_minutes" and r["treatment"] == "exercise_programme"
+            and r["q_value"] is not None and r["q_value"] < 0.05]
+    assert walk and all(r["verdict"] != "usable" for r in walk)
+    assert any("heaping" in r["flags"] for r in walk)
+    grade = next(r for r in rows if r["running"] == "mobility_grade"
+                 and r["treatment"] == "physio_referral" and r["cutoff"] == 4.0)
+    assert "coarse" in grade["flags"]
+    # The smooth logistic uptake (bmi) and the pure-noise variable produce no usable candidate.
+    for r in rows:
+        if r["running"] in ("bmi", "wait_days"):
+            assert r["verdict"] != "usable", r
+
+
+def test_existing_output_needs_force(demo):
+    out, _ = demo
+    proc = run_cli("demo", "--out", out, "--rows", "5000")
+    assert proc.returncode == 2 and "--force" in proc.stderr
+    assert (out / "results.json").exists()
