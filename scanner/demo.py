@@ -266,7 +266,9 @@ BP_MOVE = np.datetime64("2021-07-01")         # nm-bp-start: 150 mmHg → 140 mm
 def _dated_rules(visit, rng):
     """The two rules with dates: PHQ-9 ≥ 10 from MIND_START; systolic 150 → 140 at BP_MOVE."""
     n = visit.size
-    phq9 = np.clip(rng.poisson(8.0, n), 0, 27).astype(float)
+    # Scores 0–27 with a linearly falling frequency, so the density is smooth at 10.
+    k = np.arange(28)
+    phq9 = rng.choice(k, n, p=(28 - k) / (28 - k).sum()).astype(float)
     after = visit >= MIND_START
     p_talk = 0.06 + 0.008 * phq9 + 0.30 * (after & (phq9 >= 10))
     therapy = (rng.random(n) < p_talk).astype(np.int8)

@@ -208,6 +208,7 @@ def _parse(path: Path, seen: dict) -> tuple[list[Rule], dict, list[Problem]]:
                           r.get("unit"), start, end, tuple(tr) if tr else None,
                           str(r.get("description", "")), p, line,
                           r.get("group"), r.get("replaces")))
+    problems.sort(key=lambda x: x.line)
     return rules, quantities, problems
 
 
