@@ -69,11 +69,6 @@ class Rule:
         """True when rows exactly at the cutoff sit with the right side (x ≥ c)."""
         return self.eligible in ("below", "at_or_above")
 
-    @property
-    def eligible_right(self) -> bool:
-        """True when the eligible side is above the cutoff."""
-        return self.eligible in ("above", "at_or_above")
-
     def to_dict(self) -> dict:
         d = asdict(self)
         for k in ("effective_from", "effective_to"):
@@ -154,6 +149,10 @@ def _parse(path: Path, seen: dict) -> tuple[list[Rule], dict, list[Problem]]:
         problems.append(Problem(p, _key_line(lines, 0, k),
                                 f"unknown top-level key '{k}'{closest(k, ['rule', 'quantity'])}; "
                                 "a catalogue holds [[rule]] and [[quantity]] tables."))
+    for k in ("rule", "quantity"):
+        if k in raw and not isinstance(raw[k], list):
+            problems.append(Problem(p, _key_line(lines, 0, k) or 1, f"'{k}' must be an array of "
+                                    f"tables: write [[{k}]], not [{k}]."))
     quantities = {}
     for i, q in enumerate(raw.get("quantity", []) if isinstance(raw.get("quantity"), list) else []):
         line = qty_lines[i] if i < len(qty_lines) else 0

@@ -10,7 +10,7 @@ from .conftest import run_cli
 
 @pytest.fixture(scope="module")
 def demo_spec(tmp_path_factory):
-    return write_inputs(tmp_path_factory.mktemp("demo") / "input", n=60_000, seed=7)
+    return write_inputs(tmp_path_factory.mktemp("demo") / "input", n=40_000, seed=7)
 
 
 def test_check_rule_with_effective_date(demo_spec, tmp_path):

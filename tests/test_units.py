@@ -103,3 +103,24 @@ def test_declared_unconvertible_is_an_error_naming_both_units():
     with pytest.raises(UnitError, match=r"cat.toml:line 3: rule 'r1' is stated in '%' but column "
                                          r"'a1c' is recorded in 'mg/dL'"):
         declared(run, ["edu"], [_rule("%")])
+
+
+def test_scan_matches_a_percent_rule_to_an_ifcc_column(tmp_path):
+    # The rule is in %, the column in mmol/mol; the candidate sits at the master-equation value.
+    import numpy as np
+    import pandas as pd
+    from scanner.scan import scan
+    rng = np.random.default_rng(2)
+    a1c = rng.integers(30, 70, 5000).astype(float)
+    edu = (rng.random(a1c.size) < 0.1 + 0.5 * (a1c >= 48)).astype(float)
+    cat = tmp_path / "r.toml"
+    cat.write_text('[[rule]]\nid = "dx"\nquantity = "hba1c"\nunit = "%"\ncutoff = 6.5\n'
+                   'eligible = "at_or_above"\nsource = "test"\n')
+    spec = {"running": [{"column": "a1c", "quantity": "hba1c", "unit": "mmol/mol"}],
+            "treatments": {"columns": ["edu"]}, "rules": {"catalogues": [str(cat)]},
+            "search": {"round_numbers": False}}
+    res = scan(spec, pd.DataFrame({"a1c": a1c, "edu": edu}))
+    row = res.rows[0]
+    assert row["rule_id"] == "dx"
+    assert_allclose(row["cutoff"], (6.5 - 2.15) / 0.0915, rtol=1e-12)   # IFCC–NGSP master equation
+    assert row["jump"] > 0.4 and any("47.5" in n for n in res.notes)
