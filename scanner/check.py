@@ -244,6 +244,9 @@ def render(res: CheckResult, min_cell: int = 11):
                      f"{c['jump_after']:+.3f} (SE {c['se_after']:.3f}); difference-in-"
                      f"discontinuities {c['did']:+.3f} (SE {c['did_se']:.3f}, 95% CI "
                      f"{c['did_ci_low']:+.3f} to {c['did_ci_high']:+.3f}){gap}.")
+    if not d["changes"]:
+        lines.append(f"Rule '{res.rule.id}' has no effective date, so there is no before/after "
+                     "comparison; the period table shows whether the jump is stable.")
     loc = res.location
     if np.isfinite(loc.cutoff):
         lines.append(f"Uptake jumps most at {loc.cutoff:g} (|t| {abs(loc.t):.1f}; declared "

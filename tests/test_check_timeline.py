@@ -133,3 +133,28 @@ def test_scan_reports_before_after_fields(dated, tmp_path):
                     [ref.jump_before, ref.jump_after, ref.did, ref.did_se], rtol=1e-12)
     assert abs(late["jump_before"]) < 0.1 and late["jump_after"] > 0.25
     assert rows["undated"]["did"] is None and "did" in rows["undated"]
+
+
+def test_check_api_suppresses_small_periods_and_handles_undated_rules(dated, tmp_path):
+    from scanner.check import check, render, to_dict
+    from scanner.spec import parse_spec
+    few = dated.copy()
+    # one extra quarter (2023Q1) with only 6 rows: its counts and jump must not be shown
+    extra = pd.DataFrame({"x": [-2.0, -1.0, -1.0, 0.0, 1.0, 2.0], "d": [0, 0, 1, 1, 1, 0.0],
+                          "date": pd.to_datetime(["2023-02-01"] * 6)})
+    few = pd.concat([few, extra], ignore_index=True)
+    cat = tmp_path / "rules.toml"
+    cat.write_text('[[rule]]\nid = "late"\nquantity = "score"\ncutoff = 0\neligible = "at_or_above"\n'
+                   'effective_from = 2021-02-15\nsource = "invented"\n\n[[rule]]\nid = "plain"\n'
+                   'quantity = "score"\ncutoff = 0\neligible = "at_or_above"\nsource = "invented"\n')
+    spec = parse_spec({"data": {"date": "date"}, "running": [{"column": "x", "quantity": "score"}],
+                       "treatments": {"columns": ["d"]}, "rules": {"catalogues": [str(cat)]}})
+    res = check(spec, "late", data=few, granularity="quarter")[0]
+    d = to_dict(res)
+    last = d["periods"]["late"][-1]
+    assert last["period"] == "2023Q1" and last["n_left"] is None and last["jump"] is None
+    assert d["changes"][0]["left_out"] == "2021Q1"
+    assert d["changes"][0]["did"] > 0.25
+    plain = check(spec, "plain", data=dated)[0]
+    assert plain.changes == [] and plain.granularity in ("quarter", "year")
+    assert "no effective date" in str(render(plain)[1])
