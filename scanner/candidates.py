@@ -15,6 +15,7 @@ import numpy as np
 from .bins import BinnedStats
 from .engines.plan import nice_width, weighted_quantile
 from .rules import Rule
+from .units import UnitError, convert, same_unit
 
 
 @dataclass(frozen=True)
@@ -40,7 +41,11 @@ class Candidate:
 def declared(running, treatments, rules: list[Rule]) -> tuple[list[Candidate], list[str]]:
     """Rules whose quantity matches the running variable (and whose treatments, if listed, match).
 
-    Returns the candidates and notes on rules skipped (e.g. a unit that differs).
+    A rule stated in another unit than the column is converted onto the column's scale
+    (:func:`scanner.units.convert`) and a note records the conversion; a unit that cannot be
+    converted raises :class:`scanner.units.UnitError` naming both units.
+
+    Returns the candidates and notes (conversions made).
     """
     out, notes = [], []
     if not running.quantity:
@@ -48,15 +53,27 @@ def declared(running, treatments, rules: list[Rule]) -> tuple[list[Candidate], l
     for rule in rules:
         if rule.quantity != running.quantity:
             continue
-        if rule.unit and running.unit and rule.unit != running.unit:
-            notes.append(f"rule '{rule.id}' is stated in {rule.unit} but '{running.column}' is "
-                         f"recorded in {running.unit}; skipped.")
-            continue
+        cutoff = rule_cutoff(rule, running)
+        if cutoff != rule.cutoff:
+            notes.append(f"rule '{rule.id}': {rule.cutoff:g} {rule.unit} is {cutoff:.6g} "
+                         f"{running.unit} on '{running.column}'.")
         for t in treatments:
             if rule.treatments and t not in rule.treatments:
                 continue
-            out.append(Candidate(running.column, t, rule.cutoff, "declared", rule, rule.right_closed))
+            out.append(Candidate(running.column, t, cutoff, "declared", rule, rule.right_closed))
     return out, notes
+
+
+def rule_cutoff(rule: Rule, running) -> float:
+    """The rule's cutoff on the running variable's scale (converted when the units differ)."""
+    if not (rule.unit and running.unit) or same_unit(rule.unit, running.unit):
+        return rule.cutoff
+    try:
+        return convert(rule.cutoff, rule.unit, running.unit, rule.quantity)
+    except UnitError as exc:
+        where = f"{rule.file}:line {rule.line}: " if rule.file else ""
+        raise UnitError(f"{where}rule '{rule.id}' is stated in {rule.unit!r} but column "
+                        f"'{running.column}' is recorded in {running.unit!r}: {exc}") from None
 
 
 def round_cutoffs(stats: BinnedStats, min_rows: int = 50) -> list[float]:

@@ -47,6 +47,22 @@ def _parser() -> argparse.ArgumentParser:
     rsub = ru.add_subparsers(dest="rules_command", required=True, metavar="ACTION")
     v = rsub.add_parser("validate", help="check rule catalogues for errors")
     v.add_argument("files", nargs="+", help="catalogue files (TOML)")
+    li = rsub.add_parser("list", help="show rules as a table (default: the shipped catalogues)")
+    li.add_argument("files", nargs="*", help="catalogue files (TOML); none = shipped catalogues")
+    li.add_argument("--quantity", default=None, metavar="Q", help="only rules on this quantity")
+
+    c = sub.add_parser("check", help="did one rule change care? jumps by period, before/after "
+                       "its date, and where uptake jumps")
+    c.add_argument("spec", help="scan spec (TOML) with data.date and rule catalogues")
+    c.add_argument("--rule", required=True, metavar="ID", help="id of the rule to check")
+    c.add_argument("--treatment", default=None, metavar="T", help="only this treatment")
+    c.add_argument("--period", default="auto", choices=("auto", "quarter", "year"),
+                   help="period length (default: chosen from the rows near the line)")
+    c.add_argument("--out", default="check-out", help="folder for the JSON and the timeline "
+                   "figure (default: check-out)")
+    c.add_argument("--force", action="store_true", help="replace existing files of this rule")
+    c.add_argument("--min-cell", type=int, default=None, metavar="N",
+                   help="suppress counts below N (default 11)")
     return p
 
 
@@ -126,11 +142,70 @@ def _report(args) -> int:
 
 
 def _rules_validate(args) -> int:
-    from .rules import load_rules
-    n = 0
-    for f in args.files:
-        n += len(load_rules([f]))
-    print(f"{len(args.files)} catalogue(s), {n} rule(s): no errors")
+    from .rules import validate_catalogues
+    rules, problems = validate_catalogues(args.files)
+    for p in problems:
+        print(p, file=sys.stderr)
+    if problems:
+        print(f"cutscan: {len(problems)} problem(s) in {len(args.files)} catalogue(s).", file=sys.stderr)
+        return 2
+    print(f"{len(args.files)} catalogue(s), {len(rules)} rule(s): no errors")
+    return 0
+
+
+def _rules_list(args) -> int:
+    from rich.console import Console
+    from rich.table import Table
+    from .rules import load_rules, shipped_catalogues
+    files = args.files or shipped_catalogues()
+    rules = load_rules(files)
+    if args.quantity:
+        known = sorted({r.quantity for r in rules})
+        rules = [r for r in rules if r.quantity == args.quantity]
+        if not rules:
+            from .errors import closest
+            raise InputError(f"--quantity {args.quantity}: no rule concerns it"
+                             f"{closest(args.quantity, known)}; quantities: {', '.join(known)}.")
+    sign = {"below": "<", "at_or_below": "≤", "above": ">", "at_or_above": "≥"}
+    tab = Table(header_style="bold", title=f"{len(rules)} rule(s) from {len(files)} catalogue(s)",
+                title_justify="left")
+    for col in ("id", "quantity", "eligible", "unit", "in force"):
+        tab.add_column(col, no_wrap=True)
+    for col in ("description", "source"):
+        tab.add_column(col, overflow="fold", ratio=1)
+    for r in rules:
+        when = (f"{r.effective_from or '…'} to {r.effective_to or '…'}"
+                if r.effective_from or r.effective_to else "")
+        tab.add_row(r.id, r.quantity, f"{sign[r.eligible]} {r.cutoff:g}", r.unit or "", when,
+                    r.description, r.source)
+    Console().print(tab)
+    return 0
+
+
+def _check(args) -> int:
+    from rich.console import Console
+    from .check import check, render, to_dict, write_figure
+    from .report.outputs import write_json
+    min_cell = 11 if args.min_cell is None else args.min_cell
+    if min_cell < 1:
+        raise InputError(f"--min-cell {min_cell}: the minimum cell size must be at least 1.")
+    out = Path(args.out)
+    safe = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in args.rule)
+    target = out / f"{safe}.json"
+    if target.exists() and not args.force:
+        raise InputError(f"{target}: exists; choose another --out or add --force to replace it.")
+    results = check(args.spec, args.rule, treatment=args.treatment, granularity=args.period)
+    out.mkdir(parents=True, exist_ok=True)
+    console = Console()
+    for res in results:
+        tab, text = render(res, min_cell)
+        console.print(tab)
+        console.print(text)
+        stem = safe if len(results) == 1 else f"{safe}.{res.treatment}"
+        write_figure(res, out / f"{stem}.timeline.png", min_cell)
+    write_json({"version": 1, "checks": [to_dict(r, min_cell) for r in results]}, target)
+    console.print(f"[dim]{CAUTION}[/]")
+    console.print(f"Wrote {target} and the timeline figure(s) in {out}")
     return 0
 
 
@@ -145,6 +220,10 @@ def main(argv=None) -> int:
             return _report(args)
         if args.command == "rules" and args.rules_command == "validate":
             return _rules_validate(args)
+        if args.command == "rules" and args.rules_command == "list":
+            return _rules_list(args)
+        if args.command == "check":
+            return _check(args)
     except ScanError as exc:
         if args.debug:
             raise

@@ -17,7 +17,20 @@ walk_minutes       exercise_programme   self-reported and heaped at multiples of
 mobility_grade     physio_referral      coarse 1–5 grade; referral jumps at grade ≥ 4
 bmi                dietitian_referral   smooth logistic uptake, no jump
 wait_days          (none)               pure noise
+phq9               talk_therapy         declared rule with an effective date: referral from a PHQ-9
+                                        score of 10 only from 2020-10-01 (+0.30 after, no jump
+                                        before; rule ``vm-mind-phq9-10``)
+sbp                bp_medication        declared rule whose value changed: medication from systolic
+                                        150 mmHg until 2021-06-30, from 140 mmHg from 2021-07-01
+                                        (+0.45 at the line in force; rules ``nm-bp-start-150`` →
+                                        ``nm-bp-start-140``, group ``nm-bp-start``)
 =================  ===================  ===========================================================
+
+The last two running variables are drawn from their own random stream (seeded from ``seed``),
+so the columns above them are the same as before they were added; in the spec they are tested
+against their own treatments only, and the older running variables against the older
+treatments only.  ``cutscan check spec.toml --rule vm-mind-phq9-10`` and ``--rule
+nm-bp-start-140`` show the two timelines.
 """
 from __future__ import annotations
 
@@ -56,6 +69,52 @@ eligible = "at_or_below"
 treatments = ["fee_waiver"]
 description = "Brightpath fee waiver for households with income up to 24 thousand crowns a year."
 source = "Invented for the cutscan demo (Vallmora Brightpath programme, 2017)"
+
+[[rule]]
+id = "vm-mind-phq9-10"
+quantity = "phq9"
+unit = "points"
+cutoff = 10
+eligible = "at_or_above"
+effective_from = 2020-10-01
+treatments = ["talk_therapy"]
+description = "Vallmora Mind programme: refer to talking therapy from a PHQ-9 score of 10, starting October 2020."
+source = "Invented for the cutscan demo (Vallmora Mind programme, 2020)"
+
+[[rule]]
+id = "nm-bp-start-150"
+quantity = "sbp"
+unit = "mmHg"
+cutoff = 150
+eligible = "at_or_above"
+effective_to = 2021-06-30
+group = "nm-bp-start"
+treatments = ["bp_medication"]
+description = "Northmere blood pressure pathway: start medication from systolic 150 mmHg (until mid-2021)."
+source = "Invented for the cutscan demo (Northmere blood pressure pathway, 2016)"
+
+[[rule]]
+id = "nm-bp-start-140"
+quantity = "sbp"
+unit = "mmHg"
+cutoff = 140
+eligible = "at_or_above"
+effective_from = 2021-07-01
+group = "nm-bp-start"
+replaces = "nm-bp-start-150"
+treatments = ["bp_medication"]
+description = "Northmere blood pressure pathway, revised: start medication from systolic 140 mmHg."
+source = "Invented for the cutscan demo (Northmere blood pressure pathway, revised 2021)"
+
+[[quantity]]
+name = "income"
+units = ["thousand VMC/yr"]
+description = "Household income in thousands of Vallmora crowns a year (invented currency)."
+
+[[quantity]]
+name = "phq9"
+units = ["points"]
+description = "PHQ-9 depression questionnaire score, 0 to 27."
 """
 
 SPEC = """\
@@ -69,35 +128,64 @@ date = "visit_date"
 column = "egfr"
 quantity = "egfr"
 unit = "mL/min/1.73m2"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "hba1c"
 quantity = "hba1c"
 unit = "%"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "frailty"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "income_k"
 quantity = "income"
 unit = "thousand VMC/yr"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "walk_minutes"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "mobility_grade"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "bmi"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
 
 [[running]]
 column = "wait_days"
+treatments = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
+              "exercise_programme", "physio_referral", "dietitian_referral"]
+
+[[running]]
+column = "phq9"
+quantity = "phq9"
+unit = "points"
+treatments = ["talk_therapy"]
+
+[[running]]
+column = "sbp"
+quantity = "sbp"
+unit = "mmHg"
+treatments = ["bp_medication"]
 
 [treatments]
 columns = ["renal_referral", "diabetes_education", "home_nurse", "fee_waiver",
-           "exercise_programme", "physio_referral", "dietitian_referral"]
+           "exercise_programme", "physio_referral", "dietitian_referral",
+           "talk_therapy", "bp_medication"]
 
 [covariates]
 columns = ["age", "female", "prior_admissions"]
@@ -155,6 +243,7 @@ def generate(n: int = 200_000, seed: int = 7):
     diet = (rng.random(n) < p_diet).astype(np.int8)
 
     wait = rng.integers(0, 121, n)
+    phq9, therapy, sbp, bp_med = _dated_rules(visit, np.random.default_rng([seed, 6]))
     admitted = (rng.random(n) < np.clip(0.08 + 0.002 * (age - 18) + 0.05 * (egfr < 45)
                                         + 0.03 * prior, 0, 1)).astype(np.int8)
     return pd.DataFrame({
@@ -166,7 +255,28 @@ def generate(n: int = 200_000, seed: int = 7):
         "renal_referral": renal, "diabetes_education": edu, "home_nurse": nurse,
         "fee_waiver": waiver, "exercise_programme": exercise, "physio_referral": physio,
         "dietitian_referral": diet, "admitted_12m": admitted,
+        "phq9": phq9, "sbp": sbp, "talk_therapy": therapy, "bp_medication": bp_med,
     })
+
+
+MIND_START = np.datetime64("2020-10-01")      # vm-mind-phq9-10 takes effect
+BP_MOVE = np.datetime64("2021-07-01")         # nm-bp-start: 150 mmHg → 140 mmHg
+
+
+def _dated_rules(visit, rng):
+    """The two rules with dates: PHQ-9 ≥ 10 from MIND_START; systolic 150 → 140 at BP_MOVE."""
+    n = visit.size
+    # Scores 0–27 with a linearly falling frequency, so the density is smooth at 10.
+    k = np.arange(28)
+    phq9 = rng.choice(k, n, p=(28 - k) / (28 - k).sum()).astype(float)
+    after = visit >= MIND_START
+    p_talk = 0.06 + 0.008 * phq9 + 0.30 * (after & (phq9 >= 10))
+    therapy = (rng.random(n) < p_talk).astype(np.int8)
+    sbp = np.clip(np.rint(rng.normal(136, 15, n)), 90, 220)
+    line = np.where(visit >= BP_MOVE, 140.0, 150.0)
+    p_med = 0.08 + 0.002 * (sbp - 120) + 0.45 * (sbp >= line)
+    bp_med = (rng.random(n) < np.clip(p_med, 0, 1)).astype(np.int8)
+    return phq9, therapy, sbp, bp_med
 
 
 def write_inputs(folder: Path, n: int = 200_000, seed: int = 7) -> Path:

@@ -23,6 +23,7 @@ from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
+from .timeline import BEFORE_AFTER_FIELDS, before_after
 
 
 @dataclass
@@ -173,7 +174,13 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     for i, c in enumerate(cands):
-        rows.append(evaluate(pooled[c.running], c, spec, density_cache))
+        row = evaluate(pooled[c.running], c, spec, density_cache)
+        # Declared rules with an effective date: jumps before/after it from the period keys.
+        row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
+        if c.rule is not None:
+            row.update(before_after(binned.stats[c.running], c, row["bandwidth"], spec.kernel,
+                                    spec.degree))
+        rows.append(row)
         if progress:
             progress("estimate", 1, len(cands))
     rows = finalize(rows, spec.alpha)

@@ -1,0 +1,184 @@
+"""Units of the quantities that rule catalogues refer to, and conversions between them.
+
+A rule stated in one unit (HbA1c in %) can be matched to a column recorded in another
+(HbA1c in mmol/mol) by converting the rule's cutoff onto the column's scale.  Each quantity
+belongs to a *dimension*; units convert only within a dimension, and a pair that cannot be
+converted raises :class:`UnitError` naming both units.
+
+Conversions and their sources
+-----------------------------
+=================  ========================================  ==============================================
+dimension          conversion                                source
+=================  ========================================  ==============================================
+hba1c              mmol/mol = (% − 2.15) / 0.0915            IFCC–NGSP master equation, NGSP = 0.0915·IFCC
+                   % = 0.0915 · mmol/mol + 2.15              + 2.15 (Hoelzel et al., Clin Chem 50:166–174,
+                                                             2004; ngsp.org/ifcc.asp). The slope 10.929 often
+                                                             quoted is 1/0.0915 rounded.
+glucose            mmol/L = mg/dL / 18.016                   glucose molar mass 180.156 g/mol (one mmol/L is
+                                                             180.156 mg/L = 18.0156 mg/dL)
+ldl / cholesterol  mmol/L = mg/dL / 38.67                    cholesterol molar mass 386.65 g/mol (from memory)
+albuminuria (ACR)  mg/g = 8.84 · mg/mmol                     creatinine molar mass 113.12 g/mol (from memory)
+haemoglobin        g/L = 10 · g/dL                           definition of the decilitre
+mass               kg = 0.45359237 · lb, g = 1000 · kg       international avoirdupois pound (1959), exact
+age / duration     years = days / 365.25 = months / 12,      Julian year of 365.25 days (common practice for
+                   weeks = days / 7                          ages in days)
+=================  ========================================  ==============================================
+
+Unit spellings are matched case-insensitively with spaces removed, so ``mg/dL``, ``mg/dl`` and
+``mg / dL`` are the same unit.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from .errors import InputError
+
+
+class UnitError(InputError):
+    """A cutoff cannot be moved from one unit to another."""
+
+
+@dataclass(frozen=True)
+class Unit:
+    """A unit as an affine map onto its dimension's base scale: ``base = scale · value + offset``."""
+
+    name: str
+    dimension: str
+    scale: float = 1.0
+    offset: float = 0.0
+
+
+# One entry per unit; the first unit listed for a dimension is its base (scale 1, offset 0).
+_HBA1C_SLOPE = 0.0915       # NGSP % per IFCC mmol/mol (IFCC–NGSP master equation)
+_HBA1C_OFFSET = 2.15        # NGSP % at IFCC 0 (IFCC–NGSP master equation)
+GLUCOSE_MG_DL_PER_MMOL_L = 18.016   # 180.156 g/mol / 10 dL per L, rounded as usually quoted
+CHOLESTEROL_MG_DL_PER_MMOL_L = 38.67  # 386.65 g/mol / 10 (from memory)
+ACR_MG_G_PER_MG_MMOL = 8.84   # 1000 / 113.12 g/mol creatinine (from memory)
+LB_KG = 0.45359237          # exact since the 1959 international yard and pound agreement
+DAYS_PER_YEAR = 365.25      # Julian year (common practice for ages given in days)
+
+UNITS: dict[str, Unit] = {}
+
+
+def _add(dimension: str, names, scale: float = 1.0, offset: float = 0.0) -> None:
+    names = [names] if isinstance(names, str) else names
+    for n in names:
+        UNITS[_norm(n)] = Unit(names[0], dimension, scale, offset)
+
+
+def _norm(name: str) -> str:
+    return "".join(str(name).split()).lower().replace("²", "2")
+
+
+# base unit of each dimension first
+_add("hba1c", ["%", "percent", "% NGSP", "%DCCT"])
+_add("hba1c", ["mmol/mol", "mmol/mol IFCC"], _HBA1C_SLOPE, _HBA1C_OFFSET)
+_add("glucose", ["mg/dL", "mg/100mL"])
+_add("glucose", ["mmol/L", "mM"], GLUCOSE_MG_DL_PER_MMOL_L)
+_add("acr", ["mg/g", "mg/g creatinine"])
+_add("acr", ["mg/mmol", "mg/mmol creatinine"], ACR_MG_G_PER_MG_MMOL)
+_add("haemoglobin", ["g/dL"])
+_add("haemoglobin", ["g/L"], 0.1)
+_add("mass", ["kg", "kilogram", "kilograms"])
+_add("mass", ["g", "gram", "grams"], 0.001)
+_add("mass", ["lb", "lbs", "pound", "pounds"], LB_KG)
+_add("duration", ["years", "year", "yr", "yrs", "y"])
+_add("duration", ["months", "month", "mo"], 1 / 12)
+_add("duration", ["weeks", "week", "wk", "wks"], 7 / DAYS_PER_YEAR)
+_add("duration", ["days", "day", "d"], 1 / DAYS_PER_YEAR)
+_add("egfr", ["mL/min/1.73m2", "ml/min/1.73 m2", "mL/min per 1.73m2"])
+_add("pressure", ["mmHg", "mm Hg"])
+_add("bmi", ["kg/m2"])
+_add("percent_risk", ["% 10-yr risk", "%10y"])
+_add("t_score", ["SD", "T-score", "standard deviations"])
+_add("percent_poverty", ["% FPL", "% of poverty line", "% poverty line"])
+_add("pack_years", ["pack-years", "pack years"])
+
+# Quantities name what is measured; several quantities share a dimension (fasting and 2-hour
+# glucose are both glucose).  Lipid quantities use their own table because mg/dL means a
+# different molar factor for cholesterol than for glucose.
+QUANTITIES: dict[str, str] = {
+    "egfr": "egfr", "acr": "acr",
+    "hba1c": "hba1c", "fasting_glucose": "glucose", "glucose_2h": "glucose", "glucose": "glucose",
+    "sbp": "pressure", "dbp": "pressure",
+    "ldl": "cholesterol", "total_cholesterol": "cholesterol",
+    "ascvd_risk": "percent_risk", "bmi": "bmi", "t_score": "t_score",
+    "birth_weight": "mass", "weight": "mass", "gestational_age": "duration",
+    "age": "duration", "haemoglobin": "haemoglobin",
+    "income_fpl": "percent_poverty", "pack_years": "pack_years",
+}
+
+_CHOLESTEROL = {_norm("mg/dL"): Unit("mg/dL", "cholesterol"),
+                _norm("mmol/L"): Unit("mmol/L", "cholesterol", CHOLESTEROL_MG_DL_PER_MMOL_L),
+                _norm("mM"): Unit("mmol/L", "cholesterol", CHOLESTEROL_MG_DL_PER_MMOL_L)}
+
+
+def lookup(name: str, quantity: str | None = None) -> Unit | None:
+    """The :class:`Unit` called ``name`` (for ``quantity`` when given), or None if unknown."""
+    key = _norm(name)
+    if quantity and QUANTITIES.get(quantity) == "cholesterol":
+        return _CHOLESTEROL.get(key)
+    unit = UNITS.get(key)
+    if unit and quantity in QUANTITIES and unit.dimension != QUANTITIES[quantity]:
+        return None
+    return unit
+
+
+def units_for(quantity: str) -> list[str]:
+    """Unit names accepted for a known quantity (empty for an unknown quantity)."""
+    dim = QUANTITIES.get(quantity)
+    if dim is None:
+        return []
+    table = _CHOLESTEROL if dim == "cholesterol" else UNITS
+    return sorted({u.name for u in table.values() if u.dimension == dim})
+
+
+def same_unit(a: str | None, b: str | None) -> bool:
+    """True when two spellings name the same unit (or either is missing)."""
+    if not a or not b:
+        return True
+    ua, ub = UNITS.get(_norm(a)), UNITS.get(_norm(b))
+    if ua and ub:
+        return ua == ub
+    return _norm(a) == _norm(b)
+
+
+def convert(value: float, from_unit: str, to_unit: str, quantity: str | None = None) -> float:
+    """Express ``value`` given in ``from_unit`` in ``to_unit``.
+
+    Parameters
+    ----------
+    value : the number to convert (e.g. a rule's cutoff).
+    from_unit, to_unit : unit spellings (see the module table).
+    quantity : optional quantity name; needed for lipids, whose mg/dL ↔ mmol/L factor differs
+        from glucose's.
+
+    Returns
+    -------
+    float, the same amount on the ``to_unit`` scale.
+
+    Raises
+    ------
+    UnitError when either unit is unknown or the two belong to different dimensions; the
+    message names both units.
+
+    Notes
+    -----
+    Affine maps through each dimension's base unit; sources in the module docstring.
+    """
+    if _norm(from_unit) == _norm(to_unit):
+        return float(value)
+    a, b = lookup(from_unit, quantity), lookup(to_unit, quantity)
+    what = f" for {quantity}" if quantity else ""
+    if a is None or b is None:
+        unknown = from_unit if a is None else to_unit
+        known = units_for(quantity) if quantity else []
+        hint = f" Units known{what}: {', '.join(known)}." if known else ""
+        raise UnitError(f"cannot convert {from_unit!r} to {to_unit!r}{what}: unit {unknown!r} is "
+                        f"not known.{hint} State the rule in the column's unit, or record the "
+                        "column in a listed unit.")
+    if a.dimension != b.dimension:
+        raise UnitError(f"cannot convert {from_unit!r} to {to_unit!r}{what}: they measure "
+                        f"different things ({a.dimension} vs {b.dimension}).")
+    base = a.scale * float(value) + a.offset
+    return (base - b.offset) / b.scale
