@@ -125,4 +125,4 @@ def test_unknown_spec_key_names_closest(tmp_path):
 def test_bad_rule_names_file_and_line(tmp_path):
     p = make(tmp_path)
     (tmp_path / "rules.toml").write_text(RULES.format(cutoff=50).replace("at_or_above", "over"))
-    fails(run_cli("scan", p, "--out", tmp_path / "o"), "rules.toml:line 1", "eligible = 'over'")
+    fails(run_cli("scan", p, "--out", tmp_path / "o"), "rules.toml:line 5", "eligible = 'over'")
