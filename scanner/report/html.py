@@ -14,13 +14,14 @@ from .exports import cautions
 
 esc = html.escape
 CARD_VERDICTS = ("usable", "caution", "doubtful")
+MAX_CARDS = 10    # cards for the best 10 candidates with a jump; the ranked table lists more
 
 CSS = """
 body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1120px;margin:1.5em auto;
 color:#222;padding:0 1em}
 h1{font-size:1.6em;margin:.2em 0}h2{font-size:1.2em;border-bottom:2px solid #1d4e89;padding-bottom:.15em;
 margin-top:1.6em}h3{font-size:1.05em;margin:.1em 0 .5em}h4{font-size:.92em;margin:.8em 0 .2em;color:#444}
-table{border-collapse:collapse;font-size:12.5px}td,th{padding:3px 7px;border-bottom:1px solid #ddd;
+table{border-collapse:collapse;font-size:12.5px}td,th{padding:3px 5px;border-bottom:1px solid #ddd;
 text-align:right;vertical-align:top;white-space:nowrap}th{background:#f3f3f3}.l{text-align:left;white-space:normal}
 .caution{border-left:5px solid #1d4e89;background:#f4f6f9;padding:.4em 1em;margin:1em 0}
 .card{border:1px solid #bbb;padding:.8em 1em;margin:1.2em 0;page-break-inside:avoid}
@@ -28,7 +29,7 @@ text-align:right;vertical-align:top;white-space:nowrap}th{background:#f3f3f3}.l{
 figcaption{font-size:12px;color:#444}.tag{display:inline-block;padding:0 .45em;border:1px solid #555;
 font-size:12px;margin-right:.3em}.v-usable{font-weight:700}.v-doubtful{font-style:italic}
 .bar{display:flex;height:16px;border:1px solid #555;max-width:420px}.bar span{display:block}
-.muted{color:#555;font-size:12.5px}
+.muted{color:#555;font-size:12.5px}.ci{color:#555;font-size:11px}
 """
 
 
@@ -102,7 +103,8 @@ def _ranking(results: dict, limit: int) -> list[str]:
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
     for c in results["candidates"][:limit]:
-        ci = "" if c["ci_low"] is None else f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}]"
+        ci = ("" if c["ci_low"] is None else
+              f"<br><span class='ci'>[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}]</span>")
         f = c.get("first_stage_f")
         parts.append(
             f"<tr><td>{c['rank']}</td><td class='l'>{esc(c['running'])}</td>"
@@ -273,7 +275,7 @@ def render(results: dict) -> str:
     parts += _overview(results)
     parts += _ranking(results, max(top, 20))
     parts.append("<section id='candidates'><h2>Candidate cards</h2>")
-    cards = [c for c in results["candidates"][:top] if c["verdict"] in CARD_VERDICTS]
+    cards = [c for c in results["candidates"][:top] if c["verdict"] in CARD_VERDICTS][:MAX_CARDS]
     if not cards:
         parts.append("<p>No candidate showed a clear jump in uptake.</p>")
     parts += [card(c, units.get(c["running"])) for c in cards]
