@@ -101,7 +101,8 @@ def _line(d, mask, w, degree, h, sign, scale):
     rss = _rss(d.n[mask], d.s1[mask], d.s2[mask], fit)
     meat = (R * (w[mask] ** 2 * rss)[:, None]).T @ R
     V = Ainv @ meat @ Ainv * scale
-    g = sign * np.linspace(0.0, h, LINE_POINTS)
+    # Drawn only as far as the data reach inside the window (a coarse variable may stop short).
+    g = sign * np.linspace(0.0, min(h, float(np.abs(d.u[mask]).max())), LINE_POINTS)
     G = np.vander(g, degree + 1, increasing=True)
     y = G @ beta
     half = Z95 * np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", G, V, G), 0.0))
