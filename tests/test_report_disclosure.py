@@ -9,7 +9,8 @@ import json
 import numpy as np
 import pandas as pd
 
-from scanner.report.disclosure import merge_sparse, protect_group, scrub, tighten
+from scanner.report.disclosure import (guard_window_counts, merge_sparse, protect_group, scrub,
+                                       tighten)
 
 from .conftest import run_cli
 
@@ -117,6 +118,19 @@ def test_tighten_keeps_bins_consistent():
 
 
 def test_min_cell_option_on_every_command():
+    from scanner.cli import _parser
+    p = _parser()
     for cmd in ("scan", "demo", "report"):
-        r = run_cli(cmd, "--help")
-        assert r.returncode == 0 and "--min-cell N" in r.stdout, cmd
+        args = p.parse_args([cmd, "x", "--min-cell", "25"] if cmd != "demo" else [cmd, "--min-cell", "25"])
+        assert args.min_cell == 25, cmd
+
+
+def test_window_count_is_nulled_when_bins_give_it_away():
+    # Hand-worked: 100 rows inside the bandwidth on the left, bins from the cutoff hold 50 and
+    # 55 rows; 105 − 100 = 5 rows would be revealed just beyond the window edge.
+    bins = [{"side": "left", "x_low": 9.0, "x_high": 10.0, "n": 50},
+            {"side": "left", "x_low": 8.0, "x_high": 9.0, "n": 55},
+            {"side": "right", "x_low": 10.0, "x_high": 11.0, "n": 80}]
+    row = {"cutoff": 10.0, "n_left": 100, "n_right": 60, "plot": {"bins": bins}}
+    assert guard_window_counts(row, 11) == 1
+    assert row["n_left"] is None and row["n_right"] == 60     # 80 − 60 = 20 is allowed

@@ -230,3 +230,28 @@ def tighten(results: dict, min_cell: int) -> dict:
                 suppressed_fields=disc.get("suppressed_fields", []) + caught,
                 suppressed_counts=disc.get("suppressed_counts", 0) + newly + len(caught))
     return r
+
+
+def guard_window_counts(row: dict, min_cell: int) -> int:
+    """Null ``n_left``/``n_right`` when a run of display bins from the cutoff differs from it by
+    1 .. min_cell − 1 (the difference would be a small count of rows near the window's edge).
+
+    Returns the number of counts nulled.  Runs of bins from the cutoff outward are the unions a
+    reader can form from one figure, and ``n_left``/``n_right`` count the rows inside the
+    bandwidth, so the two are compared like a total and its parts (complementary suppression).
+    """
+    nulled = 0
+    c = row.get("cutoff", 0.0)
+    for side, key in (("left", "n_left"), ("right", "n_right")):
+        n = row.get(key)
+        if n is None:
+            continue
+        for fig in ("plot", "plot_density"):
+            bins = sorted((b for b in (row.get(fig) or {}).get("bins", []) if b["side"] == side),
+                          key=lambda b: abs(b["x_low"] + b["x_high"] - 2 * c))
+            runs = np.cumsum([b["n"] or 0 for b in bins])
+            if any(is_small(abs(int(v) - int(n)), min_cell) for v in runs):
+                row[key] = None
+                nulled += 1
+                break
+    return nulled

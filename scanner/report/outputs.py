@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from .disclosure import is_small, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
+from .disclosure import guard_window_counts, is_small, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 RESULTS_VERSION = "1.0"
 COUNT_FIELDS = ("n_left", "n_right")
@@ -99,6 +99,7 @@ def results_dict(result) -> dict:
                 suppressed += 1
         rows.append(row)
     _figure_data(result, rows, m)
+    suppressed += sum(guard_window_counts(row, m) for row in rows)
     data, hidden = _protect_data(result.data, m)
     suppressed += hidden
     out = clean({
