@@ -85,6 +85,10 @@ def test_small_scan_suppresses_and_report_min_cell(tmp_path):
     html = (out / "report.html").read_text()
     assert "suppressed" in html and "id='suppression'" in html
     assert "2,997" not in html and "3,000" not in html   # neither rows_used figure leaks
+    # `cutscan report DIR` rebuilds the same report from results.json alone
+    first = (out / "report.html").read_bytes()
+    r = run_cli("report", out)
+    assert r.returncode == 0 and (out / "report.html").read_bytes() == first
     # a stricter rule at report time re-merges bins and re-suppresses
     r = run_cli("report", out, "--min-cell", "200")
     assert r.returncode == 0, r.stderr

@@ -221,6 +221,7 @@ def tighten(results: dict, min_cell: int) -> dict:
                 p["hidden_sides"] = p.get("hidden_sides", 0) + h1
                 merged += m1
                 hidden += h1
+        newly += guard_window_counts(c, min_cell)
     r, caught = scrub(r, min_cell)
     disc = r["disclosure"]
     disc.update(min_cell=min_cell, merged_bins=disc.get("merged_bins", 0) + merged,
