@@ -9,8 +9,8 @@ import json
 import numpy as np
 import pandas as pd
 
-from scanner.report.disclosure import (guard_window_counts, merge_sparse, protect_group, scrub,
-                                       tighten)
+from scanner.report.disclosure import (guard_window_counts, merge_sparse, protect_group,
+                                       reconcile, scrub, tighten)
 
 from .conftest import run_cli
 
@@ -138,3 +138,24 @@ def test_window_count_is_nulled_when_bins_give_it_away():
     row = {"cutoff": 10.0, "n_left": 100, "n_right": 60, "plot": {"bins": bins}}
     assert guard_window_counts(row, 11) == 1
     assert row["n_left"] is None and row["n_right"] == 60     # 80 − 60 = 20 is allowed
+
+
+def test_reconcile_removes_differencing_between_figures():
+    # Hand-worked: uptake runs from the cutoff hold 50 and 110 rows; density runs 30, 55, 105.
+    # 55 − 50 = 5 → merge density bins 2 and 3 → runs 30, 105; 110 − 105 = 5 → drop the
+    # outermost → runs 30 (differences 20 and 80 are allowed).
+    up = [{"side": "right", "x_low": 0.0, "x_high": 1.0, "n": 50},
+          {"side": "right", "x_low": 1.0, "x_high": 2.0, "n": 60}]
+    dens = [{"side": "right", "x_low": 0.0, "x_high": 0.5, "n": 30, "height": 0.6},
+            {"side": "right", "x_low": 0.5, "x_high": 1.1, "n": 25, "height": 0.25 / 0.6},
+            {"side": "right", "x_low": 1.1, "x_high": 1.8, "n": 50, "height": 0.5 / 0.7}]
+    out, changed = reconcile(up, dens, 0.0, 11)
+    assert [b["n"] for b in out] == [30] and changed == 2
+    out, changed = reconcile(up, dens[:2], 0.0, 11)   # 55 − 50 = 5 at the outer edge: dropped
+    assert [b["n"] for b in out] == [30] and changed == 1
+    # a merge without a drop: heights are width-weighted, so height = n / (N · width) still
+    # holds (N = 100 rows in this hand-worked case)
+    up2 = [dict(up[0]), dict(up[1], n=150)]
+    out, changed = reconcile(up2, dens, 0.0, 11)
+    assert [b["n"] for b in out] == [30, 75] and changed == 1
+    assert abs(out[1]["height"] - 75 / (100 * 1.3)) < 1e-12 and out[1]["x_low"] == 0.5

@@ -221,6 +221,10 @@ def tighten(results: dict, min_cell: int) -> dict:
                 p["hidden_sides"] = p.get("hidden_sides", 0) + h1
                 merged += m1
                 hidden += h1
+        if (c.get("plot") or {}).get("bins") and (c.get("plot_density") or {}).get("bins"):
+            c["plot_density"]["bins"], k = reconcile(c["plot"]["bins"], c["plot_density"]["bins"],
+                                                     c["cutoff"], min_cell)
+            merged += k
         newly += guard_window_counts(c, min_cell)
     r, caught = scrub(r, min_cell)
     disc = r["disclosure"]
@@ -256,3 +260,38 @@ def guard_window_counts(row: dict, min_cell: int) -> int:
                 nulled += 1
                 break
     return nulled
+
+
+def reconcile(ref_bins: list, bins: list, cutoff: float, min_cell: int) -> tuple[list, int]:
+    """Adjust histogram bins so that no run of them differs from a run of ``ref_bins`` by a
+    small count.
+
+    Both figures' runs of bins start at the cutoff, so two runs are nested intervals with a
+    shared end, and their difference is the count of rows between their outer edges.  Where that
+    difference is 1 .. min_cell − 1, the offending edge of ``bins`` is removed (its two bins are
+    merged; heights are re-weighted by width) or, for the outermost edge, the outermost bin is
+    dropped.  Returns (bins, number of bins merged or dropped).
+    """
+    def dist(b):
+        return abs(b["x_low"] + b["x_high"] - 2 * cutoff)
+    out, changed = [], 0
+    for side in ("left", "right"):
+        ref = np.cumsum([b["n"] or 0 for b in sorted((b for b in ref_bins if b["side"] == side), key=dist)])
+        mine = sorted((dict(b) for b in bins if b["side"] == side), key=dist)
+        while mine:
+            cum = np.cumsum([b["n"] for b in mine])
+            bad = [k for k, v in enumerate(cum) if any(is_small(abs(int(v) - int(r)), min_cell) for r in ref)]
+            if not bad:
+                break
+            k = bad[0]
+            changed += 1
+            if k == len(mine) - 1:
+                mine.pop()
+                continue
+            a, b = mine[k], mine.pop(k + 1)
+            wa, wb = a["x_high"] - a["x_low"], b["x_high"] - b["x_low"]
+            a["height"] = (a["height"] * wa + b["height"] * wb) / (wa + wb)
+            a["n"] += b["n"]
+            a["x_low"], a["x_high"] = min(a["x_low"], b["x_low"]), max(a["x_high"], b["x_high"])
+        out += mine
+    return out, changed

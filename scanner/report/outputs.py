@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from .disclosure import guard_window_counts, is_small, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
+from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 RESULTS_VERSION = "1.0"
 COUNT_FIELDS = ("n_left", "n_right")
@@ -79,6 +79,11 @@ def _figure_data(result, rows: list, m: int) -> None:
             continue
         row["plot"] = uptake_plot(st, row, m)
         row["plot_density"] = density_plot(st, row, m)
+        if row["plot"] and row["plot_density"]:
+            # the two histograms must not give away a small slice by difference
+            dens = row["plot_density"]
+            dens["bins"], k = reconcile(row["plot"]["bins"], dens["bins"], row["cutoff"], m)
+            dens["merged_bins"] += k
         if "sensitivity" not in row:
             row["plot_sensitivity"] = sensitivity_plot(st, row)
         if spec.date and "timeline" not in row:
