@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 OUT ?= demo-out
 
-.PHONY: demo test clean bench
+.PHONY: demo test clean bench chromium
 
 $(BIN)/python:
 	$(PY) -m venv $(VENV)
@@ -20,7 +20,19 @@ $(VENV)/.installed-test: pyproject.toml | $(BIN)/python
 demo: $(VENV)/.installed
 	$(BIN)/cutscan demo --out $(OUT) --force
 
-test: $(VENV)/.installed-test
+# The report test renders the demo report in headless Chromium (Debian package `chromium`).
+# Install it when missing and the machine allows (root + apt-get); otherwise that test skips
+# and says why.
+chromium:
+	@command -v chromium >/dev/null 2>&1 || command -v chromium-browser >/dev/null 2>&1 || { \
+	  if [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
+	    (apt-get update -q && apt-get install -y -q chromium) >/dev/null || \
+	      echo "make: could not install chromium; the report rendering test will be skipped"; \
+	  else \
+	    echo "make: chromium is missing and cannot be installed here (needs root and apt-get); the report rendering test will be skipped"; \
+	  fi; }
+
+test: $(VENV)/.installed-test chromium
 	$(BIN)/python -m pytest
 
 bench: $(VENV)/.installed-test

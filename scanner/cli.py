@@ -39,9 +39,14 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--rows", type=int, default=200_000, help="rows to generate (default 200000)")
     d.add_argument("--seed", type=int, default=7, help="random seed of the generator")
     d.add_argument("--quiet", action="store_true", help="no progress bars or table")
+    d.add_argument("--min-cell", type=int, default=None, metavar="N",
+                   help="suppress counts below N in every output (default 11)")
 
     r = sub.add_parser("report", help="rebuild report.html from an output folder's results.json")
     r.add_argument("dir", help="output folder holding results.json")
+    r.add_argument("--min-cell", type=int, default=None, metavar="N",
+                   help="re-apply suppression with a larger minimum cell size N (results.json "
+                        "itself is left as written)")
 
     ru = sub.add_parser("rules", help="work with rule catalogues")
     rsub = ru.add_subparsers(dest="rules_command", required=True, metavar="ACTION")
@@ -107,7 +112,7 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
     if not quiet:
         console.print(terminal_table(result.to_dict(), spec.top))
         console.print(f"[dim]{CAUTION}[/]")
-        console.print(f"Wrote {out}/results.json, candidates.csv and report.html")
+        console.print(f"Wrote {out}/results.json, candidates.csv, report.html, results.md and bins.csv")
     return 0
 
 
@@ -119,7 +124,7 @@ def _demo(args) -> int:
     tmp = Path(tempfile.mkdtemp(prefix="cutscan-demo-"))
     try:
         spec = write_inputs(tmp / "input", n=args.rows, seed=args.seed)
-        _run_scan(spec, out, args.force, None, None, args.quiet)
+        _run_scan(spec, out, args.force, args.min_cell, None, args.quiet)
         shutil.copytree(tmp / "input", out / "input")
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -127,7 +132,7 @@ def _demo(args) -> int:
 
 
 def _report(args) -> int:
-    from .report.html import write_report
+    from .report.outputs import write_derived
     folder = Path(args.dir)
     path = folder / "results.json"
     if not path.exists():
@@ -136,8 +141,20 @@ def _report(args) -> int:
         results = json.loads(path.read_text(encoding="utf-8"))
     except json.JSONDecodeError as exc:
         raise InputError(f"{path}: not valid JSON (line {exc.lineno}); re-run cutscan scan.") from None
-    write_report(results, folder / "report.html")
-    print(f"Wrote {folder / 'report.html'}")
+    if args.min_cell is not None:
+        old = results.get("disclosure", {}).get("min_cell", 11)
+        if args.min_cell < old:
+            raise InputError(f"--min-cell {args.min_cell}: {path} was written with minimum cell "
+                             f"size {old}; a smaller value cannot restore suppressed counts. "
+                             f"Use {old} or more, or re-run cutscan scan with --min-cell {args.min_cell}.")
+        from .report.disclosure import tighten
+        results = tighten(results, args.min_cell)
+    try:
+        write_derived(results, folder)
+    except (KeyError, TypeError) as exc:
+        raise InputError(f"{path}: field {exc} is missing or malformed; it was not written by "
+                         "this version of cutscan — re-run cutscan scan.") from None
+    print(f"Wrote {folder / 'report.html'}, results.md and bins.csv")
     return 0
 
 

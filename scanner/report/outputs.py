@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 RESULTS_VERSION = "1.0"
 COUNT_FIELDS = ("n_left", "n_right")
@@ -42,15 +43,55 @@ def clean(value):
     return value
 
 
-def suppress(count, min_cell: int):
-    """None for a count of 1..min_cell-1, else the count."""
-    if count is None:
-        return None
-    return None if 0 < count < min_cell else count
+def _protect_data(data: dict, m: int) -> tuple[dict, int]:
+    """Suppress small row counts in the data accounting, with complementary suppression.
+
+    rows_read = rows_used + repeat rows dropped, and all three are shown, so a single small
+    part could be recovered by subtraction; :func:`protect_group` hides a second part then.
+    """
+    data = dict(data)
+    dropped = [dict(d) for d in data.get("dropped", [])]
+    repeat = [i for i, d in enumerate(dropped) if d.get("reason", "").startswith("repeat rows")]
+    parts = [data.get("rows_used")] + [dropped[i]["rows"] for i in repeat]
+    shown, total_ok = protect_group(parts, m, total_shown=True)
+    n_hidden = sum(1 for a, b in zip(parts, shown) if a is not None and b is None)
+    data["rows_used"] = shown[0]
+    for i, v in zip(repeat, shown[1:]):
+        dropped[i]["rows"] = v
+    if not total_ok:
+        data["rows_read"] = None
+        n_hidden += 1
+    for i, d in enumerate(dropped):
+        if i not in repeat and is_small(d["rows"], m):
+            d["rows"] = None
+            n_hidden += 1
+    data["dropped"] = dropped
+    return data, n_hidden
+
+
+def _figure_data(result, rows: list, m: int) -> None:
+    """Attach disclosure-controlled display data for the report to the top candidates."""
+    from .plots import density_plot, sensitivity_plot, timeline_plot, uptake_plot
+    spec = result.spec
+    for row in rows[:spec.top]:
+        st = (result.stats or {}).get(row["running"])
+        if st is None:
+            continue
+        row["plot"] = uptake_plot(st, row, m)
+        row["plot_density"] = density_plot(st, row, m)
+        if row["plot"] and row["plot_density"]:
+            # the two histograms must not give away a small slice by difference
+            dens = row["plot_density"]
+            dens["bins"], k = reconcile(row["plot"]["bins"], dens["bins"], row["cutoff"], m)
+            dens["merged_bins"] += k
+        if "sensitivity" not in row:
+            row["plot_sensitivity"] = sensitivity_plot(st, row)
+        if spec.date and "timeline" not in row:
+            row["plot_timeline"] = timeline_plot(st, row, m)
 
 
 def results_dict(result) -> dict:
-    """The documented results.json structure (docs/output.md)."""
+    """The documented results.json structure (docs/output.md), disclosure-controlled."""
     spec = result.spec
     m = spec.min_cell
     rows = []
@@ -58,24 +99,15 @@ def results_dict(result) -> dict:
     for r in result.rows:
         row = dict(r)
         for f in COUNT_FIELDS:
-            if row.get(f) is not None and suppress(row[f], m) is None and row[f] > 0:
+            if is_small(row.get(f), m):
                 row[f] = None
                 suppressed += 1
         rows.append(row)
-    from .plots import uptake_bins
-    for row in rows[:spec.top]:
-        if result.stats and row["running"] in result.stats:
-            row["plot"] = uptake_bins(result.stats[row["running"]], row, m)
-    data = dict(result.data)
-    dropped = []
-    for d in data.get("dropped", []):
-        d = dict(d)
-        if suppress(d["rows"], m) is None:
-            d["rows"] = None
-            suppressed += 1
-        dropped.append(d)
-    data["dropped"] = dropped
-    return clean({
+    _figure_data(result, rows, m)
+    suppressed += sum(guard_window_counts(row, m) for row in rows)
+    data, hidden = _protect_data(result.data, m)
+    suppressed += hidden
+    out = clean({
         "version": RESULTS_VERSION,
         "cutscan_version": _pkg_version(),
         "created": result.created,
@@ -84,10 +116,23 @@ def results_dict(result) -> dict:
         "data": data,
         "n_candidates": len(rows),
         "n_tested": rows[0]["n_tested"] if rows else 0,
-        "disclosure": {"min_cell": m, "suppressed_counts": suppressed},
+        "disclosure": {},
         "notes": list(result.notes),
         "candidates": rows,
     })
+    out, caught = scrub(out, m)
+    merged = sum((c.get(k) or {}).get("merged_bins", 0) for c in out["candidates"]
+                 for k in ("plot", "plot_density"))
+    hidden_sides = sum((c.get(k) or {}).get("hidden_sides", 0) for c in out["candidates"]
+                       for k in ("plot", "plot_density"))
+    out["disclosure"] = {"min_cell": m, "suppressed_counts": suppressed + len(caught),
+                         "merged_bins": merged, "hidden_sides": hidden_sides,
+                         "rule": f"counts from 1 to {m - 1} are suppressed (US CMS cell size "
+                                 "suppression policy when min_cell = 11); display bins are merged "
+                                 "with neighbours until every bin holds 0 or at least "
+                                 f"{m} rows (and, for 0/1 columns, 0 or at least {m} ones and zeros)",
+                         "suppressed_fields": caught}
+    return out
 
 
 def _pkg_version():
@@ -118,7 +163,7 @@ def write_csv(results: dict, path: Path) -> None:
 
 
 def write_outputs(result, out: Path, force: bool = False) -> Path:
-    """Write results.json, candidates.csv and report.html into ``out``.
+    """Write results.json, candidates.csv, report.html, results.md and bins.csv into ``out``.
 
     Files are written into a temporary folder beside ``out`` and moved into place at the end, so
     an interrupted scan leaves no half-written output.  An existing ``out`` is replaced only
@@ -133,8 +178,7 @@ def write_outputs(result, out: Path, force: bool = False) -> Path:
         results = result.to_dict()
         write_json(results, tmp / "results.json")
         write_csv(results, tmp / "candidates.csv")
-        from .html import write_report
-        write_report(results, tmp / "report.html", result.stats)
+        write_derived(results, tmp)
         if out.exists():
             old = out.with_name(f".{out.name}.old")
             if old.exists():
@@ -148,6 +192,15 @@ def write_outputs(result, out: Path, force: bool = False) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return out
+
+
+def write_derived(results: dict, folder: Path) -> None:
+    """report.html, results.md and bins.csv: everything rebuilt from results.json alone."""
+    from .exports import write_bins_csv, write_markdown
+    from .html import write_report
+    write_report(results, folder / "report.html")
+    write_markdown(results, folder / "results.md")
+    write_bins_csv(results, folder / "bins.csv")
 
 
 def _num(v, fmt):
