@@ -106,6 +106,8 @@ def global_derivative(u, n, s1, order: int, deriv: int) -> float:
 def _pilot_pieces(u, n, s1, s2, c, kern, p):
     """At pilot c on one side: conventional variance, κ, x^q coefficient, its variance, its u^{q+1} shift."""
     q = p + 1
+    m = np.abs(u) < c          # only bins inside the pilot window carry weight
+    u, n, s1, s2 = u[m], n[m], s1[m], s2[m]
     op = side_operator(u, n, c, c, kern, p)
     fit_p = op.Rp @ (op.Lp @ s1)
     fit_q = op.Rq @ (op.Lq @ s1)
@@ -168,7 +170,7 @@ def mse_bandwidth(d: SideData, kernel: str = "triangular", p: int = 1, per_side:
     K = kernel_fn(kernel)
     pieces = []
     for s, b in zip(sides, bs):
-        w = K(s["u"] / b)
+        w = K(s["u"] / b)     # zero outside the window, so the masked arrays below are small
         m = w > 0
         if m.sum() < q + 1:
             return _nan(method, "too few values inside the bias pilot", c)
