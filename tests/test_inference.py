@@ -285,3 +285,39 @@ def test_sensitivity_runs_and_donut():
     assert [r["variant"] for r in runs] == ["h×0.5", "h×0.75", "h×1.5", "h×2", "donut 1", "donut 2"]
     again = robust_jump(d, 2 * sel.h_left, 2 * sel.b_left)
     assert_allclose(runs[3]["jump"], again.jump, rtol=1e-12)
+
+
+def test_fuzzy_bandwidth_is_the_sharp_one_on_the_linearised_outcome(design):
+    # METHODS.md §1/§2 (fuzzy): one bandwidth for Y − τ̃T, τ̃ the conventional ratio at the pilot.
+    # Reference: rows z = y − τ̃·d binned afresh, then the sharp selector.
+    from scanner.estimate.mse import fuzzy_side_data, pilot_ratio
+    df, st = design
+    dT, dY, sab = joint_side_data(st, "d", "y")
+    tau = pilot_ratio(dT, dY)
+    z = df.y.to_numpy() - tau * df.d.to_numpy()
+    ref = mse_bandwidth(side_data(to_bins(df.x.to_numpy(), {"z": z}), "z", 0.0))
+    got = mse_bandwidth(fuzzy_side_data(dT, dY, sab, tau))
+    assert_allclose([got.h_left, got.b_left], [ref.h_left, ref.b_left], rtol=1e-8)
+    # The pilot ratio is the local Wald ratio at the pilot bandwidth (fit_fuzzy, tested vs 2SLS).
+    from scanner.estimate import fit_fuzzy
+    assert_allclose(tau, fit_fuzzy(st, "d", "y", 0.0, ref.pilot).effect, rtol=1e-10)
+
+
+def test_per_side_bandwidths_hand_worked():
+    # Per side (CCT 2014, one bandwidth per side): h_s^5 = V_s(c)·c / (4(B_s² + 3·Var B̂_s)),
+    # recomputed from the common run's pilot c and each side's own b.
+    x, y = _small_example()
+    d = side_data(to_bins(x, {"y": y}), "y", 0.0)
+    got = mse_bandwidth(d, per_side=True)
+    c = got.pilot
+    tri = lambda v: np.clip(1 - np.abs(v), 0, None)  # noqa: E731
+    for side, b, h in ((x < 0, got.b_left, got.h_left), (x >= 0, got.b_right, got.h_right)):
+        u, ys = x[side], y[side]
+        L1, Z1 = _wls(u, ys, tri(u / c), 1)
+        kappa = L1[0] @ (u * u)
+        V = (L1[0] ** 2 * (ys - Z1 @ (L1 @ ys)) ** 2).sum() * c
+        L2, Z2 = _wls(u, ys, tri(u / b), 2)
+        e2 = ys - Z2 @ (L2 @ ys)
+        B = kappa * (L2[2] @ ys) / c ** 2
+        R = 3 * kappa ** 2 * (L2[2] ** 2 * e2 ** 2).sum() / c ** 4
+        assert_allclose(h, (V / (4 * (B * B + R))) ** 0.2, rtol=1e-8)

@@ -96,3 +96,10 @@ def test_stability_rule():
     assert "unstable" in flags(row, 0.05)
     row.update(stability_shift=0.1)   # statistically clear but small shift: not flagged
     assert "unstable" not in flags(row, 0.05)
+
+
+def test_robust_p_value_feeds_q_values():
+    res = scan(_spec(), data=_data())
+    for r in res.rows:
+        if r.get("interval") == "robust":
+            assert r["p_value"] == r["p_value_robust"]
