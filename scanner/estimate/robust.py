@@ -12,8 +12,11 @@ term would cause, and ``β_{p+1,s}`` is the ``u^{p+1}`` coefficient of a local p
 q = p + 1 with pilot bandwidth b.  The bias-corrected weights are ``ℓ − κ m`` (m the weights
 giving ``β_{p+1}``); the robust variance uses them with residuals from the order-q fit, so with
 b = h the corrected estimate is exactly the local quadratic one and the robust variance its
-sandwich (METHODS.md §3 item 6; checked in tests/test_inference.py).  Scaling is HC1,
-``n/(n − 2(q+1))`` for the robust variance and ``n/(n − 2(p+1))`` for the conventional one.
+sandwich (METHODS.md §3 item 6; checked in tests/test_inference.py).  The default variance is
+HC3 (squared residuals over (1 − leverage)², exact on exact bins because every row of a bin has
+the same leverage): in the CCT designs HC1 undercovered (robust coverage ≈ 0.90, see
+docs/methods.md).  HC1 scales by ``n/(n − 2(q+1))`` (robust) and ``n/(n − 2(p+1))``
+(conventional), as statsmodels does for the pooled regressions.
 
 Bias-aware intervals (Armstrong & Kolesár 2018, Econometrica 86(2); 2020, Quantitative Economics
 11(1); Kolesár & Rothe 2018, AER 108(8)): under ``|μ''| ≤ M`` on each side the bias of the local
@@ -60,7 +63,7 @@ class SideOperator:
 
     lp: np.ndarray
     lbc: np.ndarray
-    kappa: np.ndarray
+    kappa: float
     mq: np.ndarray
     Lp: np.ndarray
     Rp: np.ndarray
@@ -88,7 +91,7 @@ def side_operator(u, n, h, b, kern, p=1) -> SideOperator:
     Lpf[:, mh] = Lp
     Lqf = np.zeros((q + 1, u.size))
     Lqf[:, mb] = Lq
-    return SideOperator(lp, lbc, np.array(kappa), mq, Lpf, np.vander(u, p + 1, increasing=True),
+    return SideOperator(lp, lbc, kappa, mq, Lpf, np.vander(u, p + 1, increasing=True),
                         Lqf, np.vander(u, q + 1, increasing=True), mh, mh | mb)
 
 
@@ -96,7 +99,7 @@ def _hc1(nrows, k):
     return nrows / (nrows - k) if nrows > k else float("nan")
 
 
-VCE = ("hc2", "hc1", "hc3", "nn")
+VCE = ("hc3", "hc1", "hc2", "nn")   # hc3 is the default everywhere
 NN_J = 3   # neighbours, as in CCT (2014, supplement) [MEMORY]
 
 
@@ -105,8 +108,8 @@ def nn_sums(u, n, s1, s2, J: int = NN_J) -> np.ndarray:
 
     Each bin is grouped with its nearest neighbouring bins (a symmetric run of bins, cut at the
     side's ends) until the group holds at least J + 1 rows; ``n_b`` times the group's sample
-    variance estimates the bin's total conditional variance.  Unlike squared residuals it does
-    not shrink with the fit's leverage, which matters in the small windows RD uses.
+    variance estimates the bin's total conditional variance.  ``_sig`` applies it to residuals
+    of the fit, so a steep mean inside a group does not pass for noise.
 
     Notes
     -----
@@ -228,7 +231,7 @@ def _finish(conv, se, bc, se_rob, h, b) -> RobustFit:
 
 
 def _side_pieces(d: SideData, ops):
-    """Per side: (op, n, s1, s2) with the side's bins."""
+    """Per side (left, then right): the side's operator and its bin mask."""
     for side, op in zip((~d.right, d.right), ops):
         yield op, side
 
@@ -244,13 +247,14 @@ def robust_jump(d: SideData, h, b, kernel: str = "triangular", p: int = 1,
     b : pilot bandwidth of the bias fit; a number or (left, right).
     kernel : kernel name.
     p : order of the main fit (the bias fit has order p + 1).
-    vce : 'nn' (nearest-neighbour σ², default) or 'hc1' (squared residuals of the order-p fit
-        for the conventional and of the order-q fit for the robust variance, HC1 scaling).
+    vce : 'hc3' (default), 'hc1', 'hc2' or 'nn' (see ``_sig``).  Residuals come from the
+        order-p fit at h for the conventional variance and from the order-q fit at b for the
+        robust one.
 
     Returns
     -------
     RobustFit: ``jump``/``se`` conventional, ``jump_bc`` bias-corrected, ``se_robust`` its
-    HC1 standard error counting the bias estimate's variability; ``ci_low``/``ci_high`` the robust
+    standard error counting the bias estimate's variability; ``ci_low``/``ci_high`` the robust
     95% interval centred on ``jump_bc``; ``p_value`` robust.
 
     Notes
@@ -380,7 +384,7 @@ def curvature_bound(d: SideData, degree: int = 4) -> float:
     return float(best)
 
 
-def R_full(u, p):
+def _vander(u, p):
     return np.vander(u, p + 1, increasing=True)
 
 
@@ -437,7 +441,7 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
         conv += sign * (L[0] @ s1[m])
         Lf = np.zeros((p + 1, u.size))
         Lf[:, m] = L
-        se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, R_full(u, p))[m]).sum()
+        se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, _vander(u, p))[m]).sum()
         bias += 0.5 * M * (n[m] * np.abs(L[0]) * u[m] ** 2).sum()
         rows += n[m].sum()
     se = float(np.sqrt(se * _scale(vce, rows, 2 * (p + 1))))
