@@ -233,7 +233,7 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
     }
     if np.isfinite(fit.jump):
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
-        row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse))
+        row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
     row["design"] = _design(fit)
     key = (cand.running, c, cand.right_closed)
     if key not in density_cache:

@@ -14,7 +14,7 @@ stability     0.1     clip((4 − S) / 3, 0, 1): 1 for S ≤ 1, 0 for S ≥ 4 (S
 
 Stability (our rule): for each sensitivity run v (0.5, 0.75, 1.5, 2 × h; donuts dropping the
 1 and 2 support values nearest the cutoff) with conventional estimate τ_v and SE s_v, the shift
-from the main estimate τ (SE s) is standardised by the SE of a difference of nested estimates,
+from the run at 1 × h (estimate τ, SE s) is standardised by the SE of a difference of nested estimates,
 z_v = |τ_v − τ| / max(√|s_v² − s²|, s/2) (a Hausman-type approximation; the floor keeps near-equal
 SEs from inflating z).  S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
 also practically large, max_v |τ_v − τ| / |τ| > 0.2.
@@ -69,11 +69,16 @@ def _g(p):
 
 def stability(c: dict) -> tuple[float, float]:
     """(S, largest relative shift) over the row's sensitivity runs; NaN when there are none."""
-    tau, se = c.get("jump", np.nan), c.get("se", np.nan)
+    runs = c.get("sensitivity") or []
+    # Compare with the run at 1 × h when present: same variance estimator as the other runs.
+    base = next((v for v in runs if v.get("variant") == "h×1"), c)
+    tau, se = base.get("jump", np.nan), base.get("se", np.nan)
     zs, rel = [], []
-    if not (np.isfinite(tau) and np.isfinite(se) and se > 0):
+    if tau is None or se is None or not (np.isfinite(tau) and np.isfinite(se) and se > 0):
         return float("nan"), float("nan")
-    for v in c.get("sensitivity") or []:
+    for v in runs:
+        if v is base:
+            continue
         tv, sv = v.get("jump"), v.get("se")
         if tv is None or sv is None or not (np.isfinite(tv) and np.isfinite(sv)):
             continue

@@ -103,3 +103,11 @@ def test_robust_p_value_feeds_q_values():
     for r in res.rows:
         if r.get("interval") == "robust":
             assert r["p_value"] == r["p_value_robust"]
+
+
+def test_stability_compares_with_the_run_at_h():
+    # The 1 × h run (same variance estimator as the others) is the reference when present.
+    runs = [{"variant": "h×1", "jump": 0.5, "se": 0.04}, {"variant": "h×2", "jump": 0.53, "se": 0.03}]
+    S, rel = stability({"jump": 0.5, "se": 0.05, "sensitivity": runs})
+    assert math.isclose(S, 0.03 / math.sqrt(0.04 ** 2 - 0.03 ** 2), rel_tol=1e-12)
+    assert math.isclose(rel, 0.06, rel_tol=1e-12)

@@ -10,19 +10,22 @@ Which interval is reported as ``ci_low``/``ci_high`` (field ``interval``):
   curvature bound ``honest_bound_M``; ``p_value`` is then the honest one.  Otherwise the honest
   interval at h is reported beside the robust one.
 
-``jump`` stays the conventional estimate; the conventional interval is kept as
-``ci_low_conventional``/``ci_high_conventional``.
+``jump`` stays the conventional estimate; the conventional interval ``jump ± 1.96·se`` (HC1,
+as the core's ``se``) is kept as ``ci_low_conventional``/``ci_high_conventional``.  Robust and
+honest intervals use HC3 (``robust.py`` says why); ``se_conventional_hc3`` is the HC3 version of
+``se``.
 """
 from __future__ import annotations
 
 import numpy as np
 
-from .local import SideData
+from .local import SideData, Z95
 from .robust import curvature_bound, honest_best, honest_interval, robust_jump
 from .select import Selection, sensitivity
 
 
-def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coarse: bool) -> dict:
+def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coarse: bool,
+                     se_conventional: float | None = None) -> dict:
     """Robust, conventional and honest interval fields plus the sensitivity runs.
 
     Parameters
@@ -30,6 +33,9 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
     d : SideData of the candidate's column at the cutoff.
     sel : chosen bandwidths (``select.select_bandwidth``).
     coarse : report the bias-aware interval as the main one.
+    se_conventional : the row's conventional SE (HC1, ``local.fit_jump``); the conventional
+        interval is built from it so ``jump``, ``se`` and that interval agree.  When None, the
+        conventional part of the robust fit (HC3) is used.
 
     Returns
     -------
@@ -47,6 +53,7 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         "p_value_robust": rob.p_value,
         "ci_low_conventional": rob.ci_low_conventional,
         "ci_high_conventional": rob.ci_high_conventional,
+        "se_conventional_hc3": rob.se,
         "ci_low_honest": hon.ci_low, "ci_high_honest": hon.ci_high,
         "p_value_honest": hon.p_value, "honest_bound_M": hon.bound_M,
         "honest_max_bias": hon.max_bias, "honest_bandwidth": h_hon,
@@ -54,6 +61,9 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         "bias_bandwidth_left": sel.b_left, "bias_bandwidth_right": sel.b_right,
         "inference_reason": rob.reason,
     }
+    if se_conventional is not None and np.isfinite(rob.jump):
+        out["ci_low_conventional"] = rob.jump - Z95 * se_conventional
+        out["ci_high_conventional"] = rob.jump + Z95 * se_conventional
     use_honest = coarse and np.isfinite(hon.ci_low)
     if use_honest:
         out.update(interval="honest", ci_low=hon.ci_low, ci_high=hon.ci_high, p_value=hon.p_value)

@@ -6,7 +6,7 @@ each side holds ``min_distinct`` support points (the scan's rule; fewer means th
 flagged coarse).  A fixed number gives b = h (ρ = 1: the robust interval is then the local
 quadratic fit's, METHODS.md §3 item 6).  IK keeps the bias pilot b of the MSE procedure.
 
-``sensitivity`` refits at 0.5, 0.75, 1.5 and 2 × h (b scaled alike, so ρ stays fixed) and at
+``sensitivity`` refits at 0.5, 0.75, 1, 1.5 and 2 × h (b scaled alike, so ρ stays fixed) and at
 donut variants that drop the 1 and 2 support values nearest the cutoff on each side
 (Barreca, Lindo & Waddell 2016, Economic Inquiry 54(1), donut RD).
 """
@@ -22,7 +22,7 @@ from .mse import mse_bandwidth, reach
 from .robust import robust_jump
 
 METHODS = ("mse", "cer", "ik")
-FACTORS = (0.5, 0.75, 1.5, 2.0)
+FACTORS = (0.5, 0.75, 1.0, 1.5, 2.0)
 DONUTS = (1, 2)
 
 
