@@ -19,11 +19,11 @@ from scipy import stats as sps
 from scanner.bins import BinnedStats
 from scanner.engines.local import fold
 from scanner.estimate import side_data
-from scanner.estimate.mse import (fuzzy_side_data, mse_bandwidth, pilot_ratio)
+from scanner.estimate.inference import fuzzy_inference
+from scanner.estimate.mse import mse_bandwidth
 from scanner.estimate.bandwidth import ensure_support, ik_bandwidth
 from scanner.score import MIN_DISTINCT
-from scanner.estimate.robust import (curvature_bound, honest_best, honest_interval, robust_fuzzy,
-                                     robust_jump)
+from scanner.estimate.robust import curvature_bound, honest_best, honest_interval, robust_jump
 
 CCT = {  # METHODS.md §4 (CCT 2014 supplement Models 1 and 2)
     "cct1": ((0.48, 1.27, 7.18, 20.21, 21.54, 7.33), (0.52, 0.84, -3.00, 7.99, -9.01, 3.56), 0.04),
@@ -124,29 +124,13 @@ def coverage_fuzzy(reps: int, seed: int = 2) -> dict:
     for _ in range(reps):
         x, t, y, tau = draw_fuzzy(rng)
         st = to_bins(x, {"t": t, "y": y}, (("t", "y"),))
-        dT, dY, sab = joint_side_data(st, "t", "y")
-        ratio = pilot_ratio(dT, dY)
-        ch = mse_bandwidth(fuzzy_side_data(dT, dY, sab, ratio))
-        fit = robust_fuzzy(dT, dY, sab, (ch.h_left, ch.h_right), (ch.b_left, ch.b_right))
+        fit, sel = fuzzy_inference(st, "t", "y", 0.0, min_distinct=1)
         if not np.isfinite(fit.se_robust):
             continue
         ok += 1
-        hs.append(ch.h_left)
+        hs.append(sel.h_left)
         hits["conventional"] += bool(fit.ci_low_conventional <= tau <= fit.ci_high_conventional)
         hits["robust"] += bool(fit.ci_low <= tau <= fit.ci_high)
     out = {k: v / ok for k, v in hits.items()}
     out.update(reps=ok, h_median=float(np.median(hs)))
     return out
-
-
-def joint_side_data(st: BinnedStats, t: str, y: str, cutoff: float = 0.0):
-    """SideData of treatment and outcome over rows where both are present, plus Σ T·Y per bin."""
-    from scanner.estimate.local import SideData
-    q = st.pair(t, y)
-    n = st.pn[:, q].astype(float)
-    keep = n > 0
-    u = st.x[keep] - cutoff
-    right = u >= 0
-    dT = SideData(u, n[keep], st.pa[keep, q], st.paa[keep, q], right)
-    dY = SideData(u, n[keep], st.pb[keep, q], st.pbb[keep, q], right)
-    return dT, dY, st.pab[keep, q]

@@ -9,7 +9,8 @@ import statsmodels.api as sm
 from numpy.testing import assert_allclose
 from scipy import optimize, stats as sps
 
-from benchmarks.coverage_designs import joint_side_data, to_bins
+from benchmarks.coverage_designs import to_bins
+from scanner.estimate.inference import fuzzy_inference, joint_side_data
 from scanner.estimate import side_data
 from scanner.estimate.bandwidth import C_K, ik_bandwidth
 from scanner.estimate.kernels import KERNELS
@@ -107,7 +108,7 @@ def test_fuzzy_rho_one_equals_quadratic_2sls(design):
     e = y[m] - X @ beta
     B = np.linalg.inv(ZW @ X)
     V = B @ ((Z * (W ** 2 * e ** 2)[:, None]).T @ Z) @ B.T * m.sum() / (m.sum() - 6)
-    dT, dY, sab = joint_side_data(st, "d", "y")
+    dT, dY, sab = joint_side_data(st, "d", "y", 0.0)
     fit = robust_fuzzy(dT, dY, sab, h, h, vce="hc1")
     assert_allclose(fit.jump_bc, beta[1], rtol=1e-9)
     assert_allclose(fit.se_robust, np.sqrt(V[1, 1]), rtol=1e-9)
@@ -293,7 +294,7 @@ def test_fuzzy_bandwidth_is_the_sharp_one_on_the_linearised_outcome(design):
     # Reference: rows z = y − τ̃·d binned afresh, then the sharp selector.
     from scanner.estimate.mse import fuzzy_side_data, pilot_ratio
     df, st = design
-    dT, dY, sab = joint_side_data(st, "d", "y")
+    dT, dY, sab = joint_side_data(st, "d", "y", 0.0)
     tau = pilot_ratio(dT, dY)
     z = df.y.to_numpy() - tau * df.d.to_numpy()
     ref = mse_bandwidth(side_data(to_bins(df.x.to_numpy(), {"z": z}), "z", 0.0))
@@ -322,3 +323,18 @@ def test_per_side_bandwidths_hand_worked():
         B = kappa * (L2[2] @ ys) / c ** 2
         R = 3 * kappa ** 2 * (L2[2] ** 2 * e2 ** 2).sum() / c ** 4
         assert_allclose(h, (V / (4 * (B * B + R))) ** 0.2, rtol=1e-8)
+
+
+def test_fuzzy_inference_wires_selection_and_robust_fit(design):
+    # fuzzy_inference = selector on the linearised outcome + robust_fuzzy at those bandwidths.
+    from scanner.estimate.mse import fuzzy_side_data, pilot_ratio
+    df, st = design
+    fit, sel = fuzzy_inference(st, "d", "y", 0.0)
+    dT, dY, sab = joint_side_data(st, "d", "y", 0.0)
+    ref_sel = select_bandwidth(fuzzy_side_data(dT, dY, sab, pilot_ratio(dT, dY)), "mse")
+    assert_allclose(sel.h + sel.b, ref_sel.h + ref_sel.b, rtol=1e-12)
+    ref = robust_fuzzy(dT, dY, sab, sel.h, sel.b)
+    assert_allclose([fit.jump, fit.jump_bc, fit.se_robust], [ref.jump, ref.jump_bc, ref.se_robust],
+                    rtol=1e-12)
+    fixed, fsel = fuzzy_inference(st, "d", "y", 0.0, bandwidth=20.0)
+    assert fsel.method == "fixed" and fsel.b_left == 20.0

@@ -19,9 +19,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..bins import BinnedStats
 from .local import SideData, Z95
-from .robust import curvature_bound, honest_best, honest_interval, robust_jump
-from .select import Selection, sensitivity
+from .mse import fuzzy_side_data, pilot_ratio
+from .robust import curvature_bound, honest_best, honest_interval, robust_fuzzy, robust_jump
+from .select import Selection, select_bandwidth, sensitivity
 
 
 def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coarse: bool,
@@ -73,3 +75,44 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         out.update(interval="conventional")   # keeps the conventional fields already in the row
     out["sensitivity"] = sensitivity(d, sel, kernel, degree)
     return out
+
+
+def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
+                    right_closed: bool = True):
+    """SideData of treatment and outcome over rows where both are present, and Σ T·Y per bin."""
+    st = stats.pooled()
+    q = st.pair(treatment, outcome)
+    n = st.pn[:, q].astype(float)
+    keep = n > 0
+    u = st.x[keep] - cutoff
+    right = u >= 0 if right_closed else u > 0
+    dT = SideData(u, n[keep], st.pa[keep, q], st.paa[keep, q], right)
+    dY = SideData(u, n[keep], st.pb[keep, q], st.pbb[keep, q], right)
+    return dT, dY, st.pab[keep, q]
+
+
+def fuzzy_inference(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
+                    bandwidth="mse", kernel: str = "triangular", degree: int = 1,
+                    per_side: bool = False, right_closed: bool = True, min_distinct: int = 5):
+    """Fuzzy RD effect with a data-driven bandwidth and robust bias-corrected interval.
+
+    Parameters
+    ----------
+    stats : BinnedStats with joint sums for the (treatment, outcome) pair.
+    bandwidth : "mse", "cer", "ik" or a number (running-variable units), as ``search.bandwidth``.
+
+    Returns
+    -------
+    (RobustFit on the effect scale, Selection).
+
+    Notes
+    -----
+    The bandwidth is chosen for the linearised ratio Y − τ̃T (τ̃ the local Wald ratio at the
+    pilot bandwidth), one bandwidth for numerator and denominator; robust bias correction of
+    both jumps after Calonico, Cattaneo & Titiunik (2014).
+    """
+    dT, dY, sab = joint_side_data(stats, treatment, outcome, cutoff, right_closed)
+    tau = pilot_ratio(dT, dY, kernel, degree) if isinstance(bandwidth, str) else 0.0
+    target = fuzzy_side_data(dT, dY, sab, tau) if np.isfinite(tau) else dY
+    sel = select_bandwidth(target, bandwidth, kernel, degree, per_side, min_distinct)
+    return robust_fuzzy(dT, dY, sab, sel.h, sel.b, kernel, degree), sel
