@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..bins import BinnedStats
-from .local import SideData, Z95
+from .local import SideData, Z95, joint_side_data
 from .mse import fuzzy_side_data, pilot_ratio
 from .robust import curvature_bound, honest_best, honest_interval, robust_fuzzy, robust_jump
 from .select import Selection, select_bandwidth, sensitivity
@@ -75,20 +75,6 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         out.update(interval="conventional")   # keeps the conventional fields already in the row
     out["sensitivity"] = sensitivity(d, sel, kernel, degree)
     return out
-
-
-def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
-                    right_closed: bool = True):
-    """SideData of treatment and outcome over rows where both are present, and Σ T·Y per bin."""
-    st = stats.pooled()
-    q = st.pair(treatment, outcome)
-    n = st.pn[:, q].astype(float)
-    keep = n > 0
-    u = st.x[keep] - cutoff
-    right = u >= 0 if right_closed else u > 0
-    dT = SideData(u, n[keep], st.pa[keep, q], st.paa[keep, q], right)
-    dY = SideData(u, n[keep], st.pb[keep, q], st.pbb[keep, q], right)
-    return dT, dY, st.pab[keep, q]
 
 
 def fuzzy_inference(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,

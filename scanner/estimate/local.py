@@ -196,6 +196,20 @@ def _finish(cutoff, h, kern, degree, jump, se, bl, br, d, L, Rm) -> JumpFit:
                    int(L.sum()), int(Rm.sum()))
 
 
+def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
+                    right_closed: bool = True):
+    """SideData of treatment and outcome over rows where both are present, and Σ T·Y per bin."""
+    st = stats.pooled()
+    q = st.pair(treatment, outcome)
+    n = st.pn[:, q].astype(float)
+    keep = n > 0
+    u = st.x[keep] - cutoff
+    right = u >= 0 if right_closed else u > 0
+    dT = SideData(u, n[keep], st.pa[keep, q], st.paa[keep, q], right)
+    dY = SideData(u, n[keep], st.pb[keep, q], st.pbb[keep, q], right)
+    return dT, dY, st.pab[keep, q]
+
+
 @dataclass(frozen=True)
 class FuzzyFit:
     """A fuzzy RD estimate: reduced form / first stage with its delta-method SE."""
@@ -224,15 +238,8 @@ def fit_fuzzy(stats: BinnedStats, treatment: str, outcome: str, cutoff: float, b
     weighted 2SLS with controls (1, x, D·x), endogenous T and excluded instrument D.
     """
     st = stats.pooled()
-    q = st.pair(treatment, outcome)
-    pn = st.pn[:, q].astype(float)
-    keep = pn > 0
-    u = st.x[keep] - cutoff
-    right = u >= 0 if right_closed else u > 0
-    n, sa, sb = pn[keep], st.pa[keep, q], st.pb[keep, q]
-    saa, sbb, sab = st.paa[keep, q], st.pbb[keep, q], st.pab[keep, q]
-    dT = SideData(u, n, sa, saa, right)
-    dY = SideData(u, n, sb, sbb, right)
+    dT, dY, sab = joint_side_data(st, treatment, outcome, cutoff, right_closed)
+    u, n, sa, saa, sb, sbb = dT.u, dT.n, dT.s1, dT.s2, dY.s1, dY.s2
     fs = fit_jump(st, treatment, cutoff, bandwidth, kernel, degree, right_closed, data=dT)
     rf = fit_jump(st, outcome, cutoff, bandwidth, kernel, degree, right_closed, data=dY)
     nan = float("nan")
