@@ -5,7 +5,6 @@ the same published formulas; scipy distributions for critical values.
 """
 import numpy as np
 import pytest
-import statsmodels.api as sm
 from numpy.testing import assert_allclose
 from scipy import optimize, stats as sps
 

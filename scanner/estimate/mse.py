@@ -30,7 +30,7 @@ from dataclasses import dataclass, asdict
 import numpy as np
 
 from .local import SideData, _rss
-from .robust import _pair, coef_weights, side_operator
+from .robust import coef_weights, side_operator
 from .kernels import kernel as kernel_fn
 
 PILOT_C = 1.84     # METHODS.md §2: normal-reference constant of the IK density pilot
@@ -234,7 +234,3 @@ def pilot_ratio(dT: SideData, dY: SideData, kernel: str = "triangular", p: int =
             j += sign * (L[0] @ d.s1[side][m])
         jumps.append(j)
     return jumps[1] / jumps[0] if jumps[0] != 0 else float("nan")
-
-
-def as_pair(h) -> tuple[float, float]:
-    return _pair(h)
