@@ -4,12 +4,15 @@ Steps (p = 1 main fit, q = p + 1 bias fit), all on bin sums:
 
 0. Pilot ``c = 1.84·S_X·N^(-1/5)`` (normal reference, METHODS.md §2), widened to hold ``q + 2``
    distinct values per side.
-1. ``μ^{(q+1)}`` per side from a global polynomial of order q + 2 on that side (the pilot for
-   the pilot; our choice, in the spirit of Imbens & Kalyanaraman's global cubic).
+1. ``μ^{(q+1)}`` per side from a global quintic on that side (the pilot for the pilot; our
+   choice, in the spirit of Imbens & Kalyanaraman's global cubic).  A quartic underestimated the
+   third derivative of CCT Model 1 (median 32 vs the true 121 on the left), which made b and h
+   too large and robust coverage 0.926 instead of 0.944 (1,000 replications).
 2. Pilot ``b``: MSE-optimal for estimating the bias term ``Σ_s ±κ_s β_{q,s}``.  At bandwidth c the
    sample operators give its variance ``V_b(c)`` (scaling ``(c/b)^{2q+1}``) and its leading bias
    ``B_b(c)`` (the ``u^{q+1}`` shift of the order-q fit, scaling ``b/c``), so
-   ``b^{2q+3} = (2q+1)·V_b(c)·c^{2q+1} / (2·(B_b(c)/c)²)``.
+   ``b^{2q+3} = (2q+1)·V_b(c)·c^{2q+1} / (2·(B_b(c)/c)²)``, widened to hold q + 2 support
+   values per side.
 3. ``h``: ``MSE(h) = h^{2(p+1)}·(B² + R) + V(c)·c/h`` with the bias constant ``B = Σ_s ±κ_s(c)
    β̂_{q,s}(b) / c^{p+1}``, the conventional variance ``V(c)`` at the pilot and the regulariser
    ``R = 3·Var(B̂)`` (IK's factor 3, which keeps h finite when the curvature is the same on both
@@ -35,7 +38,7 @@ from .kernels import kernel as kernel_fn
 
 PILOT_C = 1.84     # METHODS.md §2: normal-reference constant of the IK density pilot
 REG_FACTOR = 3.0   # Imbens & Kalyanaraman (2012): regulariser = 3 × variance of the bias estimate
-GLOBAL_ORDER = 5  # order q + 3 of the per-side global polynomial giving μ^(q+1) (see module notes)
+GLOBAL_ORDER = 5   # per-side global polynomial giving μ^(q+1) (step 1; = q + 3 for p = 1)
 
 
 @dataclass(frozen=True)
