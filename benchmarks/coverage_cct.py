@@ -25,6 +25,8 @@ def main(reps: int) -> None:
                                ("CCT Model 2 (curved), τ = −3.45", "cct2", "mse"),
                                ("CCT Model 1, CER bandwidth", "cct1", "cer"),
                                ("CCT Model 2, CER bandwidth", "cct2", "cer"),
+                               ("CCT Model 1, per-side MSE bandwidths", "cct1", "mse-sides"),
+                               ("CCT Model 2, per-side MSE bandwidths", "cct2", "mse-sides"),
                                ("CCT Model 1, IK bandwidth", "cct1", "ik"),
                                ("CCT Model 2, IK bandwidth", "cct2", "ik"),
                                ("Discrete, 10 support points per side", "discrete", "mse")):
@@ -45,7 +47,7 @@ def main(reps: int) -> None:
         "`ci_low_conventional` uses the HC1 `se`, a little narrower); robust = robust "
         "bias-corrected; honest = bias-aware interval with the rule-of-thumb curvature bound "
         "(at h for the CCT models, at its shortest bandwidth for the discrete design).", "",
-        "| design | bandwidth | median h | conventional | robust | honest | median length conv / robust / honest |",
+        "| design | bandwidth | median h (left) | conventional | robust | honest | median length conv / robust / honest |",
         "|---|---|---|---|---|---|---|"]
     for r in rows:
         hon = f"{r['honest']:.3f}" if "honest" in r else "—"

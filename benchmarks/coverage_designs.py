@@ -73,7 +73,7 @@ def one_sharp(x, y, selector="mse", widen=False):
     """(conventional covers?, robust covers?, honest covers?) pieces for one sample."""
     st = to_bins(x, {"y": y})
     d = side_data(st, "y", 0.0)
-    ch = mse_bandwidth(d, cer=selector == "cer")
+    ch = mse_bandwidth(d, cer=selector == "cer", per_side=selector == "mse-sides")
     h, b = (ch.h_left, ch.h_right), (ch.b_left, ch.b_right)
     if selector == "ik":
         hi = ik_bandwidth(st, "y", 0.0, data=d).h
