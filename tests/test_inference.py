@@ -337,3 +337,10 @@ def test_fuzzy_inference_wires_selection_and_robust_fit(design):
                     rtol=1e-12)
     fixed, fsel = fuzzy_inference(st, "d", "y", 0.0, bandwidth=20.0)
     assert fsel.method == "fixed" and fsel.b_left == 20.0
+
+
+def test_honest_interval_needs_degree_one_or_more(design):
+    # A bound on μ'' does not bound the bias of local constant weights (they leave the slope).
+    df, st = design
+    assert np.isnan(honest_interval(side_data(st, "y", 0.0), 16.0, 0.002, p=0).ci_low)
+    assert np.isfinite(honest_interval(side_data(st, "y", 0.0), 16.0, 0.002, p=2).ci_low)

@@ -420,9 +420,14 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
     Notes
     -----
     Kolesár & Rothe (2018), AER 108(8), bounded-second-derivative class; critical values from
-    Armstrong & Kolesár (2018, 2020). The bound on the bias is METHODS.md §7b.
+    Armstrong & Kolesár (2018, 2020). The bound on the bias is METHODS.md §7b; it holds for any
+    degree p ≥ 1 (the weights reproduce lines, leaving the Taylor remainder |r(u)| ≤ M u²/2).
     """
     nan = float("nan")
+    if p < 1:
+        # Local constant weights do not reproduce slopes, so a bound on μ'' alone does not
+        # bound their bias: no bias-aware interval for degree 0.
+        return HonestFit(nan, nan, nan, nan, float(M), nan)
     hl, hr = _pair(h)
     conv = se = 0.0
     bias = 0.0
