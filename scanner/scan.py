@@ -17,8 +17,9 @@ from .candidates import Candidate, declared, round_cutoffs
 from .diagnostics import covariate_balance, heap_near, heap_tests, mccrary_test
 from .engines import BinPlan, bin_table
 from .errors import InputError
-from .estimate import fit_jump, ik_bandwidth, side_data
-from .estimate.bandwidth import ensure_support
+from .estimate import fit_jump, side_data
+from .estimate.inference import inference_fields
+from .estimate.select import select_bandwidth
 from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
@@ -220,20 +221,10 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
     """All estimates and diagnostics for one candidate, as a flat dict."""
     t, c = cand.treatment, cand.cutoff
     d = side_data(stats, t, c, cand.right_closed)
-    bw_note = None
-    if spec.bandwidth == "ik":
-        choice = ik_bandwidth(stats, t, c, spec.kernel, cand.right_closed, data=d)
-        h, method, bw_note = choice.h, "ik", choice.note
-        if not np.isfinite(h):
-            span = float(np.abs(d.u).max()) if d.u.size else float("nan")
-            h, bw_note = span / 4, (choice.note or "") + "; fell back to a quarter of the range"
-            method = "fallback"
-    else:
-        h, method = float(spec.bandwidth), "fixed"
-    if method != "fixed" and d.u.size:
-        h, widened = ensure_support(h, d, spec.degree, minimum=MIN_DISTINCT)
-        bw_note = widened or bw_note
-    fit = fit_jump(stats, t, c, h, spec.kernel, spec.degree, cand.right_closed, data=d)
+    sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
+    h = (sel.h_left + sel.h_right) / 2   # diagnostics below use one window
+    fit = fit_jump(stats, t, c, sel.h_left, spec.kernel, spec.degree, cand.right_closed, data=d,
+                   bandwidth_right=sel.h_right)
     row = {
         "running": cand.running, "treatment": t, "cutoff": float(c), "origin": cand.origin,
         "rule_id": cand.rule_id, "eligible_side": cand.eligible_side,
@@ -241,12 +232,15 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         "jump": fit.jump, "se": fit.se, "ci_low": fit.ci_low, "ci_high": fit.ci_high,
         "p_value": fit.p_value, "z": fit.z, "first_stage_f": fit.z ** 2 if np.isfinite(fit.z) else float("nan"),
         "left": fit.left, "right": fit.right, "slope_left": fit.slope_left,
-        "slope_right": fit.slope_right, "bandwidth": fit.bandwidth, "bandwidth_method": method,
-        "bandwidth_note": bw_note, "kernel": spec.kernel, "degree": spec.degree,
+        "slope_right": fit.slope_right, "bandwidth": fit.bandwidth, "bandwidth_method": sel.method,
+        "bandwidth_note": sel.note, "kernel": spec.kernel, "degree": spec.degree,
         "n_left": fit.n_left, "n_right": fit.n_right, "distinct_left": fit.distinct_left,
         "distinct_right": fit.distinct_right, "reason": fit.reason,
         "right_closed": cand.right_closed,
     }
+    if np.isfinite(fit.jump):
+        coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
+        row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
     row["design"] = _design(fit)
     key = (cand.running, c, cand.right_closed)
     if key not in density_cache:

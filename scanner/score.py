@@ -9,7 +9,15 @@ strength      0.4     min(1, |jump| / 0.5) × min(1, F / 10)   (F = t² of the f
 density       0.2     g(density_p), g(p) = clip((log10 p + 3) / 2, 0, 1): 1 for p ≥ 0.1, 0 for p ≤ 0.001
 balance       0.2     g(balance_p)
 support       0.2     min(1, log10(min(n_left, n_right)) / 3) × min(1, min distinct values per side / 10)
+stability     0.1     clip((4 − S) / 3, 0, 1): 1 for S ≤ 1, 0 for S ≥ 4 (S defined below)
 ============  ======  =====================================================================
+
+Stability (our rule): for each sensitivity run v (0.5, 0.75, 1.5, 2 × h; donuts dropping the
+1 and 2 support values nearest the cutoff) with conventional estimate τ_v and SE s_v, the shift
+from the run at 1 × h (estimate τ, SE s) is standardised by the SE of a difference of nested estimates,
+z_v = |τ_v − τ| / max(√|s_v² − s²|, s/2) (a Hausman-type approximation; the floor keeps near-equal
+SEs from inflating z).  S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
+also practically large, max_v |τ_v − τ| / |τ| > 0.2.
 
 A sub-score that could not be computed is left out and the weights of the others rescaled.
 Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and then by
@@ -24,7 +32,9 @@ import numpy as np
 
 from .diagnostics.heaping import HEAP_P, HEAP_RATIO
 
-WEIGHTS = {"strength": 0.4, "density": 0.2, "balance": 0.2, "support": 0.2}
+WEIGHTS = {"strength": 0.4, "density": 0.2, "balance": 0.2, "support": 0.2, "stability": 0.1}
+UNSTABLE_Z = 3.0       # our rule, see the table above
+UNSTABLE_REL = 0.2
 VERDICTS = ("usable", "caution", "doubtful", "no jump", "not estimable")
 SERIOUS = {"sorting", "heaping", "imbalance", "overlap"}
 F_WEAK = 10.0          # common practice: first-stage F below 10 is weak (Staiger & Stock 1997)
@@ -57,6 +67,28 @@ def _g(p):
     return float(np.clip((math.log10(max(p, 1e-300)) + 3) / 2, 0, 1))
 
 
+def stability(c: dict) -> tuple[float, float]:
+    """(S, largest relative shift) over the row's sensitivity runs; NaN when there are none."""
+    runs = c.get("sensitivity") or []
+    # Compare with the run at 1 × h when present: same variance estimator as the other runs.
+    base = next((v for v in runs if v.get("variant") == "h×1"), c)
+    tau, se = base.get("jump", np.nan), base.get("se", np.nan)
+    zs, rel = [], []
+    if tau is None or se is None or not (np.isfinite(tau) and np.isfinite(se) and se > 0):
+        return float("nan"), float("nan")
+    for v in runs:
+        if v is base:
+            continue
+        tv, sv = v.get("jump"), v.get("se")
+        if tv is None or sv is None or not (np.isfinite(tv) and np.isfinite(sv)):
+            continue
+        zs.append(abs(tv - tau) / max(math.sqrt(abs(sv * sv - se * se)), se / 2))
+        rel.append(abs(tv - tau) / max(abs(tau), 1e-12))
+    if not zs:
+        return float("nan"), float("nan")
+    return float(max(zs)), float(max(rel))
+
+
 def subscores(c: dict) -> dict:
     """Named sub-scores of one candidate row (None where not computable)."""
     out = {"strength": None, "density": _g(c.get("density_p")), "balance": _g(c.get("balance_p")),
@@ -67,6 +99,8 @@ def subscores(c: dict) -> dict:
         nmin = min(c.get("n_left") or 0, c.get("n_right") or 0)
         dmin = min(c.get("distinct_left") or 0, c.get("distinct_right") or 0)
         out["support"] = float(min(1, math.log10(max(nmin, 1)) / 3) * min(1, dmin / 10))
+    S = c.get("stability_z", np.nan)
+    out["stability"] = float(np.clip((4 - S) / 3, 0, 1)) if np.isfinite(S) else None
     return out
 
 
@@ -95,6 +129,9 @@ def flags(c: dict, alpha: float) -> list[str]:
         out.append("coarse")
     if min(c.get("n_left") or 0, c.get("n_right") or 0) < MIN_SIDE_ROWS:
         out.append("thin")
+    S, rel = c.get("stability_z", np.nan), c.get("stability_shift", np.nan)
+    if np.isfinite(S) and S > UNSTABLE_Z and rel > UNSTABLE_REL:
+        out.append("unstable")
     out.extend(f for f in c.get("extra_flags", []) if f not in out)
     return out
 
@@ -146,6 +183,10 @@ def reasons(c: dict, alpha: float) -> list[str]:
                    "estimate mostly picks up that one.")
     if "thin" in fl:
         out.append("few rows near the cutoff on at least one side.")
+    if "unstable" in fl:
+        out.append(f"the estimate moves by up to {100 * c['stability_shift']:.0f}% "
+                   f"({c['stability_z']:.1f} SE of the difference) when the bandwidth is halved or "
+                   "doubled or the values nearest the cutoff are dropped.")
     if c.get("q_value") is not None and np.isfinite(c["q_value"]) and c["q_value"] >= alpha:
         out.append(f"no jump after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
                    f"(q = {_fmt_p(c['q_value'])} ≥ {alpha:g}).")
@@ -179,6 +220,7 @@ def finalize(rows: list[dict], alpha: float) -> list[dict]:
     tested = int(np.isfinite(q).sum())
     overlaps(rows)
     for r, qv in zip(rows, q):
+        r["stability_z"], r["stability_shift"] = stability(r)
         r["q_value"] = float(qv)
         r["n_tested"] = tested
         r["flags"] = flags(r, alpha)

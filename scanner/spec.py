@@ -22,7 +22,7 @@ KNOWN = {
     "outcomes": {"columns", "effects"},
     "rules": {"catalogues"},
     "search": {"round_numbers", "discover", "alpha", "kernel", "degree", "bandwidth", "seed",
-               "min_rows"},
+               "min_rows", "per_side"},
     "output": {"min_cell", "top"},
 }
 
@@ -58,7 +58,8 @@ class ScanSpec:
     alpha: float = 0.05
     kernel: str = "triangular"
     degree: int = 1
-    bandwidth: str | float = "ik"
+    bandwidth: str | float = "mse"
+    per_side: bool = False
     seed: int = 20261201
     min_rows: int = 50
     min_cell: int = 11
@@ -158,10 +159,17 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
     if kern not in KERNELS:
         raise _err(f"{where}:{_line_of(text, 'kernel')}",
                    f"kernel = '{kern}' is unknown{closest(kern, KERNELS)}; choose one of {', '.join(KERNELS)}.")
-    bw = search.get("bandwidth", "ik")
-    if not (bw == "ik" or (isinstance(bw, (int, float)) and not isinstance(bw, bool) and bw > 0)):
+    bw = search.get("bandwidth", "mse")
+    choices = ("mse", "cer", "ik")
+    if not (bw in choices or (isinstance(bw, (int, float)) and not isinstance(bw, bool) and bw > 0)):
+        hint = closest(bw, choices) if isinstance(bw, str) else ""
         raise _err(f"{where}:{_line_of(text, 'bandwidth')}",
-                   f"bandwidth = {bw!r} must be 'ik' or a positive number (running-variable units).")
+                   f"bandwidth = {bw!r}{hint} must be 'mse' (default), 'cer', 'ik' or a positive "
+                   "number (running-variable units).")
+    per_side = search.get("per_side", False)
+    if not isinstance(per_side, bool):
+        raise _err(f"{where}:{_line_of(text, 'per_side')}",
+                   f"per_side = {per_side!r} must be true or false.")
     cats = raw.get("rules", {}).get("catalogues", [])
     if isinstance(cats, str):
         cats = [cats]
@@ -178,7 +186,7 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         engine=data.get("engine", "local"), batch_rows=int(data.get("batch_rows", 1_000_000)),
         catalogues=tuple(cats), round_numbers=bool(search.get("round_numbers", True)),
         discover=bool(search.get("discover", True)), alpha=float(alpha), kernel=kern,
-        degree=int(degree), bandwidth=bw if bw == "ik" else float(bw),
+        degree=int(degree), bandwidth=bw if isinstance(bw, str) else float(bw), per_side=per_side,
         seed=int(search.get("seed", 20261201)), min_rows=int(search.get("min_rows", 50)),
         min_cell=int(min_cell), top=int(output.get("top", 20)), path=path)
 

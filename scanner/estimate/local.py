@@ -107,9 +107,14 @@ def _not_estimable(cutoff, h, kern, degree, reason, nl=0, nr=0, dl=0, dr=0) -> J
                    int(nl), int(nr), int(dl), int(dr), reason)
 
 
-def _windows(data: SideData, h, kern, degree):
+def _windows(data: SideData, h, kern, degree, h_right=None):
+    """Kernel weights and side masks; ``h_right`` (optional) is a separate right-side bandwidth."""
     K = kernel_fn(kern)
-    w = K(data.u / h) if h > 0 else np.zeros_like(data.u)
+    hr = h if h_right is None else h_right
+    if h > 0 and hr > 0:
+        w = np.where(data.right, K(data.u / hr), K(data.u / h))
+    else:
+        w = np.zeros_like(data.u)
     inside = w > 0
     L = inside & ~data.right
     Rm = inside & data.right
@@ -133,7 +138,7 @@ def _check_support(cutoff, h, kern, degree, L, Rm, data):
 
 def fit_jump(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
              kernel: str = "triangular", degree: int = 1, right_closed: bool = True,
-             data: SideData | None = None) -> JumpFit:
+             data: SideData | None = None, bandwidth_right: float | None = None) -> JumpFit:
     """Local polynomial estimate of the jump in E[column | x] at ``cutoff``.
 
     Parameters
@@ -145,6 +150,7 @@ def fit_jump(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     kernel : 'triangular' (default), 'epanechnikov' or 'uniform'.
     degree : polynomial degree on each side (0, 1 or 2).
     right_closed : rows at x == cutoff belong to the right side (x ≥ c) when True.
+    bandwidth_right : optional separate bandwidth on the right (then ``bandwidth`` is the left one).
 
     Returns
     -------
@@ -156,8 +162,8 @@ def fit_jump(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     """
     d = data if data is not None else side_data(stats, column, cutoff, right_closed)
     h = float(bandwidth)
-    w, L, Rm = _windows(d, h, kernel, degree)
-    bad = _check_support(cutoff, h, kernel, degree, L, Rm, d)
+    w, L, Rm = _windows(d, h, kernel, degree, bandwidth_right)
+    bad = _check_support(cutoff, min(h, bandwidth_right or h), kernel, degree, L, Rm, d)
     if bad:
         return bad
     try:
@@ -190,6 +196,20 @@ def _finish(cutoff, h, kern, degree, jump, se, bl, br, d, L, Rm) -> JumpFit:
                    int(L.sum()), int(Rm.sum()))
 
 
+def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
+                    right_closed: bool = True):
+    """SideData of treatment and outcome over rows where both are present, and Σ T·Y per bin."""
+    st = stats.pooled()
+    q = st.pair(treatment, outcome)
+    n = st.pn[:, q].astype(float)
+    keep = n > 0
+    u = st.x[keep] - cutoff
+    right = u >= 0 if right_closed else u > 0
+    dT = SideData(u, n[keep], st.pa[keep, q], st.paa[keep, q], right)
+    dY = SideData(u, n[keep], st.pb[keep, q], st.pbb[keep, q], right)
+    return dT, dY, st.pab[keep, q]
+
+
 @dataclass(frozen=True)
 class FuzzyFit:
     """A fuzzy RD estimate: reduced form / first stage with its delta-method SE."""
@@ -218,15 +238,8 @@ def fit_fuzzy(stats: BinnedStats, treatment: str, outcome: str, cutoff: float, b
     weighted 2SLS with controls (1, x, D·x), endogenous T and excluded instrument D.
     """
     st = stats.pooled()
-    q = st.pair(treatment, outcome)
-    pn = st.pn[:, q].astype(float)
-    keep = pn > 0
-    u = st.x[keep] - cutoff
-    right = u >= 0 if right_closed else u > 0
-    n, sa, sb = pn[keep], st.pa[keep, q], st.pb[keep, q]
-    saa, sbb, sab = st.paa[keep, q], st.pbb[keep, q], st.pab[keep, q]
-    dT = SideData(u, n, sa, saa, right)
-    dY = SideData(u, n, sb, sbb, right)
+    dT, dY, sab = joint_side_data(st, treatment, outcome, cutoff, right_closed)
+    u, n, sa, saa, sb, sbb = dT.u, dT.n, dT.s1, dT.s2, dY.s1, dY.s2
     fs = fit_jump(st, treatment, cutoff, bandwidth, kernel, degree, right_closed, data=dT)
     rf = fit_jump(st, outcome, cutoff, bandwidth, kernel, degree, right_closed, data=dY)
     nan = float("nan")

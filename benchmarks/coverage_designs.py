@@ -1,0 +1,136 @@
+"""Simulation designs and coverage loops shared by benchmarks/coverage_cct.py and the tests.
+
+Rows are drawn, folded into exact-support BinnedStats with ``scanner.engines.local.fold`` (the
+engine's own binning), and every estimate is then computed from the bins only.
+
+Designs
+-------
+* ``cct1`` / ``cct2``: Calonico, Cattaneo & Titiunik (2014) Models 1 and 2 — X = 2·Beta(2,4) − 1,
+  fifth-order polynomials on each side, ε ~ N(0, 0.1295²), n = 500; true jumps 0.04 and −3.45
+  (coefficients from METHODS.md §4, verified there against public replication scripts).
+* ``discrete``: invented; 10 support points per side (x = ±0.05, ±0.15, …), strongly curved mean.
+* ``fuzzy``: invented; X uniform on [−1, 1], first stage 0.4, effect 1.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import stats as sps
+
+from scanner.bins import BinnedStats
+from scanner.engines.local import fold
+from scanner.estimate import side_data
+from scanner.estimate.inference import fuzzy_inference
+from scanner.estimate.mse import mse_bandwidth
+from scanner.estimate.bandwidth import ensure_support, ik_bandwidth
+from scanner.score import MIN_DISTINCT
+from scanner.estimate.robust import curvature_bound, honest_best, honest_interval, robust_jump
+
+CCT = {  # METHODS.md §4 (CCT 2014 supplement Models 1 and 2)
+    "cct1": ((0.48, 1.27, 7.18, 20.21, 21.54, 7.33), (0.52, 0.84, -3.00, 7.99, -9.01, 3.56), 0.04),
+    "cct2": ((3.71, 2.30, 3.28, 1.45, 0.23, 0.03), (0.26, 18.49, -54.81, 74.30, -45.02, 9.83), -3.45),
+}
+SIGMA = 0.1295
+
+
+def to_bins(x, cols: dict, pairs=()) -> BinnedStats:
+    """Exact-support BinnedStats of rows ``x`` with tracked columns ``cols`` (engine fold)."""
+    names = tuple(cols)
+    tmpl = BinnedStats.empty("x", names, pairs)
+    m = x.size
+    return fold("x", x, x, np.full(m, -1, np.int32), np.full(m, -1, np.int8),
+                {k: np.asarray(v, float) for k, v in cols.items()}, pairs, tmpl)
+
+
+def draw_cct(model: str, rng, n: int = 500):
+    left, right, tau = CCT[model]
+    x = 2 * rng.beta(2, 4, n) - 1
+    mu = np.where(x >= 0, np.polyval(right[::-1], x), np.polyval(left[::-1], x))
+    return x, mu + rng.normal(0, SIGMA, n), tau
+
+
+def draw_discrete(rng, n: int = 5000):
+    # Invented: 10 support points per side; μ(x) = 2x + 3x² on the left and 0.5 + 2x − 3x² on
+    # the right (curved, |μ''| = 6, opposite signs so the biases add), jump 0.5, sd 0.5.
+    support = np.r_[-np.arange(0.05, 1.0, 0.1)[::-1], np.arange(0.05, 1.0, 0.1)]
+    x = rng.choice(support, n)
+    right = x >= 0
+    y = 2 * x + np.where(right, 0.5 - 3 * x ** 2, 3 * x ** 2) + rng.normal(0, 0.5, n)
+    return np.round(x, 10), y, 0.5
+
+
+def draw_fuzzy(rng, n: int = 2000):
+    # Invented: P(T = 1) = 0.3 + 0.4·1{x ≥ 0} + 0.1x; Y = 0.5 + 0.6x − 0.4x² + 1·T + ε, with
+    # uptake endogenous (ε correlated 0.5 with the uptake shock), as in real fuzzy designs.
+    x = rng.uniform(-1, 1, n)
+    v = rng.normal(size=n)
+    t = (sps.norm.cdf(v) < 0.3 + 0.4 * (x >= 0) + 0.1 * x).astype(float)
+    eps = 0.5 * (0.5 * v + np.sqrt(0.75) * rng.normal(size=n))
+    y = 0.5 + 0.6 * x - 0.4 * x ** 2 + 1.0 * t + eps
+    return x, t, y, 1.0
+
+
+def one_sharp(x, y, selector="mse", widen=False):
+    """(conventional covers?, robust covers?, honest covers?) pieces for one sample."""
+    st = to_bins(x, {"y": y})
+    d = side_data(st, "y", 0.0)
+    ch = mse_bandwidth(d, cer=selector == "cer", per_side=selector == "mse-sides")
+    h, b = (ch.h_left, ch.h_right), (ch.b_left, ch.b_right)
+    if selector == "ik":
+        hi = ik_bandwidth(st, "y", 0.0, data=d).h
+        h = (hi, hi)
+    if widen:
+        # As the scan does: at least MIN_DISTINCT support points per side inside h.
+        hw, _ = ensure_support(max(h), d, 1, minimum=MIN_DISTINCT)
+        h = (hw, hw)
+        b = (max(b[0], hw), max(b[1], hw))
+    fit = robust_jump(d, h, b)
+    M = curvature_bound(d)
+    hon = honest_best(d, M)[0] if widen else honest_interval(d, h, M)
+    return fit, hon, ch
+
+
+def coverage_sharp(design: str, reps: int, seed: int = 1, selector="mse") -> dict:
+    """Coverage of conventional, robust and honest 95% intervals over ``reps`` samples."""
+    rng = np.random.default_rng(seed)
+    hits = {"conventional": 0, "robust": 0, "honest": 0}
+    ok = 0
+    hs, lengths = [], {"conventional": [], "robust": [], "honest": []}
+    for _ in range(reps):
+        if design == "discrete":
+            x, y, tau = draw_discrete(rng)
+        else:
+            x, y, tau = draw_cct(design, rng)
+        fit, hon, ch = one_sharp(x, y, selector, widen=design == "discrete")
+        if not np.isfinite(fit.se_robust):
+            continue
+        ok += 1
+        hs.append(fit.h_left)
+        for k, lo, hi in (("conventional", fit.ci_low_conventional, fit.ci_high_conventional),
+                          ("robust", fit.ci_low, fit.ci_high), ("honest", hon.ci_low, hon.ci_high)):
+            hits[k] += bool(lo <= tau <= hi)
+            lengths[k].append(hi - lo)
+    out = {k: v / ok for k, v in hits.items()}
+    out.update(reps=ok, h_median=float(np.median(hs)),
+               **{f"length_{k}": float(np.nanmedian(v)) for k, v in lengths.items()})
+    return out
+
+
+def coverage_fuzzy(reps: int, seed: int = 2) -> dict:
+    """Coverage of conventional and robust 95% intervals for the fuzzy design (first stage 0.4)."""
+    rng = np.random.default_rng(seed)
+    hits = {"conventional": 0, "robust": 0}
+    ok = 0
+    hs = []
+    for _ in range(reps):
+        x, t, y, tau = draw_fuzzy(rng)
+        st = to_bins(x, {"t": t, "y": y}, (("t", "y"),))
+        fit, sel = fuzzy_inference(st, "t", "y", 0.0, min_distinct=1)
+        if not np.isfinite(fit.se_robust):
+            continue
+        ok += 1
+        hs.append(sel.h_left)
+        hits["conventional"] += bool(fit.ci_low_conventional <= tau <= fit.ci_high_conventional)
+        hits["robust"] += bool(fit.ci_low <= tau <= fit.ci_high)
+    out = {k: v / ok for k, v in hits.items()}
+    out.update(reps=ok, h_median=float(np.median(hs)))
+    return out
