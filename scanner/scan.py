@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import __version__
@@ -22,7 +23,7 @@ from .errors import InputError
 from .estimate import fit_jump, ik_bandwidth, side_data
 from .estimate.bandwidth import ensure_support
 from .io import cleaned, open_table
-from .parsing import DateParser, to_timestamps
+from .parsing import NULL_TOKENS, DateParser, to_timestamps
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
@@ -126,7 +127,7 @@ def _keep_first(table, spec: ScanSpec, needed: list[str]):
                          DateParser(spec.date, table.name, spec.date_format))
     frame = pd.DataFrame({"unit": t.column(spec.unit).to_pandas(),
                           "when": pd.Series(when.to_pandas()), "row": np.arange(t.num_rows)})
-    no_unit = frame["unit"].isna()
+    no_unit = frame["unit"].isna() | frame["unit"].astype(str).str.strip().str.lower().isin(NULL_TOKENS)
     frame = frame[~no_unit].sort_values(["when", "row"], kind="stable", na_position="last")
     keep = np.sort(frame.drop_duplicates("unit", keep="first")["row"].to_numpy())
     repeats = int((~no_unit).sum() - keep.size)
@@ -154,6 +155,9 @@ def unit_repeats(table, spec: ScanSpec) -> str | None:
         if first is None or first.num_rows == 0:
             continue
         arr = first.column(0).drop_null()
+        if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):
+            arr = arr.filter(pc.invert(pc.is_in(pc.utf8_lower(pc.utf8_trim_whitespace(arr)),
+                                                value_set=pa.array(NULL_TOKENS))))
         repeats = len(arr) - len(pc.unique(arr))
         if repeats:
             how = "declared as data.unit" if spec.unit else "looks like a unit identifier"
@@ -238,6 +242,8 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         rows.append(evaluate(pooled[c.running], c, spec, density_cache))
         if progress:
             progress("estimate", 1, len(cands))
+    for row in rows:
+        explain_nan(row)
     rows = finalize(rows, spec.alpha)
     data_info = _data_info(binned, spec, deduped)
     _add_cleaning_info(data_info, table, spec, no_unit)
@@ -266,6 +272,18 @@ def checked_rules(paths) -> list:
                                 "quantity, unit, description and source are text, treatments a "
                                 "list of column names.")
     return load_rules(paths)
+
+
+def explain_nan(row: dict) -> None:
+    """Give every estimate that came out NaN a reason (a "not estimable" row always says why).
+
+    The fit can lose all precision without raising — sums of x² overflow for |x| near 1e154 and
+    above, or underflow for spacings near 1e-160 and below — which leaves NaN with no reason.
+    """
+    if not np.isfinite(row.get("jump", np.nan)) and not row.get("reason"):
+        row["reason"] = ("the local fit lost precision (running-variable values or spacings of "
+                         "extreme magnitude overflow or underflow the sums); rescale the running "
+                         "variable, e.g. to thousands or millionths")
 
 
 def _text_columns(spec: ScanSpec) -> list[str]:
