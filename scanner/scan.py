@@ -202,6 +202,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         if warn:
             notes.append(warn)
         table = cleaned(table, spec.codes(), _roles(spec), spec.date, spec.date_format)
+    coded = getattr(table, "coded", None) or {}     # filled as batches are read; kept past keep-first
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
     columns = tuple(dict.fromkeys(spec.treatments + spec.covariates + spec.outcomes))
     pairs = tuple((t, y) for t in spec.treatments for y in spec.outcomes if y != t)
@@ -239,14 +240,14 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     for i, c in enumerate(cands):
-        rows.append(evaluate(pooled[c.running], c, spec, density_cache))
+        rows.append(evaluate_contained(pooled[c.running], c, spec, density_cache))
         if progress:
             progress("estimate", 1, len(cands))
     for row in rows:
         explain_nan(row)
     rows = finalize(rows, spec.alpha)
     data_info = _data_info(binned, spec, deduped)
-    _add_cleaning_info(data_info, table, spec, no_unit)
+    _add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"))
 
@@ -272,6 +273,36 @@ def checked_rules(paths) -> list:
                                 "quantity, unit, description and source are text, treatments a "
                                 "list of column names.")
     return load_rules(paths)
+
+
+NUMERIC_FAILURES = (np.linalg.LinAlgError, FloatingPointError, ZeroDivisionError, OverflowError)
+
+
+def evaluate_contained(stats: BinnedStats, cand: Candidate, spec: ScanSpec, cache: dict) -> dict:
+    """:func:`evaluate`, with a numerical failure kept to its own candidate.
+
+    A step that raises on degenerate sums (a singular matrix in a bandwidth pilot, say) turns the
+    candidate into a "not estimable" row naming the failure; the scan goes on.
+    """
+    try:
+        return evaluate(stats, cand, spec, cache)
+    except NUMERIC_FAILURES as exc:
+        nan = float("nan")
+        row = {k: nan for k in ("jump", "se", "ci_low", "ci_high", "p_value", "z", "first_stage_f",
+                                "left", "right", "slope_left", "slope_right", "bandwidth",
+                                "density_p", "density_theta", "density_ratio", "balance_p",
+                                "placebo_p")}
+        row.update(running=cand.running, treatment=cand.treatment, cutoff=float(cand.cutoff),
+                   origin=cand.origin, rule_id=cand.rule_id, eligible_side=cand.eligible_side,
+                   rule_description=cand.rule.description if cand.rule else None,
+                   bandwidth_method=None, bandwidth_note=None, kernel=spec.kernel,
+                   degree=spec.degree, n_left=0, n_right=0, distinct_left=0, distinct_right=0,
+                   right_closed=cand.right_closed, design="unknown", density_method=None,
+                   density_reason=None, balance=[], balance_worst=None, heap_p=None,
+                   heap_ratio=None, heap_value=None,
+                   reason=f"numerical failure ({type(exc).__name__}: {exc}); the sums near this "
+                          "cutoff are degenerate — values of extreme magnitude, or too few distinct values")
+        return row
 
 
 def explain_nan(row: dict) -> None:
@@ -301,13 +332,12 @@ def _roles(spec: ScanSpec) -> dict:
     return roles
 
 
-def _add_cleaning_info(info: dict, table, spec: ScanSpec, no_unit: int) -> None:
+def _add_cleaning_info(info: dict, coded: dict, spec: ScanSpec, no_unit: int) -> None:
     """Record values set missing by declared codes and rows without a unit (keep = first)."""
     if no_unit:
         info["dropped"].insert(0, {"column": spec.unit, "treatment": None,
                                    "reason": "unit missing (keep = first)", "rows": no_unit})
         info["rows_read"] += no_unit
-    coded = getattr(table, "coded", None) or {}
     info["missing_codes"] = [{"column": c, "codes": list(spec.codes()[c]), "values": n}
                              for c, n in coded.items() if c in spec.codes()]
 

@@ -190,3 +190,13 @@ def test_inputs_are_never_modified(tmp_path, base):
     scan(spec)
     assert (path.read_bytes(), path.stat().st_mtime_ns) == before
     assert spec.read_bytes() == spec_before
+
+
+def test_missing_code_counts_survive_keep_first(tmp_path):
+    df = clean_frame()
+    df.loc[:9, "score"] = 999.0
+    df["pid"] = [f"{i:05d}" for i in range(len(df))]          # every unit once: nothing deduplicated
+    got = run(tmp_path, "k.parquet", lambda p: df.to_parquet(p, index=False),
+              data='unit = "pid"\nkeep = "first"\nmissing = [999]')
+    counts = {m["column"]: m["values"] for m in got.data["missing_codes"]}
+    assert counts["score"] == 10
