@@ -268,6 +268,10 @@ def checked_rules(paths) -> list:
             tr = r.get("treatments")
             if tr is not None and not (isinstance(tr, list) and all(isinstance(t, str) for t in tr)):
                 bad.append("treatments")
+            cut = r.get("cutoff")
+            if isinstance(cut, float) and not math.isfinite(cut):
+                raise SpecError(f"{p}: rule number {i} has cutoff = {cut}; a cutoff must be a "
+                                "finite number.")
             if bad:
                 raise SpecError(f"{p}: rule number {i} has '{bad[0]}' of the wrong type; id, "
                                 "quantity, unit, description and source are text, treatments a "

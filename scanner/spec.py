@@ -213,7 +213,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         if not isinstance(r.get("column"), str):
             raise _err(where, "each [[running]] needs column = \"<name>\".")
         bw = r.get("bin_width")
-        if bw is not None and not (isinstance(bw, (int, float)) and bw > 0):
+        if bw is not None and not (isinstance(bw, (int, float)) and not isinstance(bw, bool)
+                                   and 0 < bw < float("inf")):
             raise _err(f"{where}:{_line_of(text, 'bin_width')}", "bin_width must be a positive number.")
         tr = r.get("treatments")
         if isinstance(tr, str):
@@ -248,7 +249,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         raise _err(f"{where}:{_line_of(text, 'kernel')}",
                    f"kernel = '{kern}' is unknown{closest(str(kern), KERNELS)}; choose one of {', '.join(KERNELS)}.")
     bw = search.get("bandwidth", "ik")
-    if not (bw == "ik" or (isinstance(bw, (int, float)) and not isinstance(bw, bool) and bw > 0)):
+    if not (bw == "ik" or (isinstance(bw, (int, float)) and not isinstance(bw, bool)
+                           and 0 < bw < float("inf"))):
         raise _err(f"{where}:{_line_of(text, 'bandwidth')}",
                    f"bandwidth = {bw!r} must be 'ik' or a positive number (running-variable units).")
     cats = raw.get("rules", {}).get("catalogues", [])

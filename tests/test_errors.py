@@ -156,12 +156,14 @@ SPEC_CASES = [
     ("S1", "", "", "[search\nalpha = 0.05", r"spec\.toml:line \d+: the scan spec is not valid TOML"),
     ("S2", "", "", "[search]\nalpah = 0.1", r"line 13: unknown key \[search\] 'alpah' \(did you mean 'alpha'\?\)"),
     ("S6", "", "bin_width = -1", "", r"bin_width must be a positive number"),
+    ("S6", "", "bin_width = inf", "", r"bin_width must be a positive number"),
     ("S9", 'keep = "last"', "", "", r"keep = 'last' must be 'all' or 'first'"),
     ("S10", 'keep = "first"', "", "", r"keep = 'first' needs both data\.unit and data\.date"),
     ("S11", "", "", "[search]\nalpha = 5", r"alpha = 5 must be between 0 and 1"),
     ("S12", "", "", "[search]\ndegree = 4", r"degree = 4 must be 0, 1 or 2"),
     ("S13", "", "", '[search]\nkernel = "triangle"', r"kernel = 'triangle' is unknown \(did you mean 'triangular'\?\)"),
     ("S14", "", "", '[search]\nbandwidth = "wide"', r"bandwidth = 'wide' must be 'ik' or a positive number"),
+    ("S14", "", "", "[search]\nbandwidth = nan", r"bandwidth = nan must be 'ik' or a positive number"),
     ("S15", "", "", "[output]\nmin_cell = 0", r"output\.min_cell = 0 must be a whole number ≥ 1"),
     ("S16", "", "", "[rules]\ncatalogues = [1]", r"rules\.catalogues must be a list of file paths"),
     ("S17", "", "", '[search]\nseed = "abc"', r"search\.seed = 'abc' must be a whole number ≥ 0"),
@@ -252,6 +254,7 @@ RULE_CASES = [
     ("R9", RULE + "\n" + RULE, r"line 8: duplicate rule id 'r1' \(first at .*line 1\)"),
     ("R10", RULE.replace('id = "r1"', "id = 7"), r"rule number 1 has 'id' of the wrong type"),
     ("R11", "rule = 5\n", r"'rule' must be a list of \[\[rule\]\] tables"),
+    ("R12", RULE.replace("cutoff = 50", "cutoff = nan"), r"rule number 1 has cutoff = nan; a cutoff must be a finite number"),
 ]
 
 
