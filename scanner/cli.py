@@ -130,7 +130,7 @@ def _report(args) -> int:
 
 
 def _rules_validate(args) -> int:
-    from .scan import checked_rules
+    from .guards import checked_rules
     n = 0
     for f in args.files:
         n += len(checked_rules([f]))

@@ -6,13 +6,10 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.compute as pc
 
 from . import __version__
 from .bins import BinnedStats
@@ -22,8 +19,9 @@ from .engines import BinPlan, bin_table
 from .errors import InputError
 from .estimate import fit_jump, ik_bandwidth, side_data
 from .estimate.bandwidth import ensure_support
+from .guards import (add_cleaning_info, checked_rules, evaluate_contained, explain_nan,
+                     keep_first, roles, text_columns, unit_repeats)
 from .io import cleaned, open_table
-from .parsing import NULL_TOKENS, DateParser, to_timestamps
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
@@ -102,72 +100,6 @@ def _check_columns(table, spec: ScanSpec) -> None:
                                  f"treatment '{t}', which is not under [treatments] columns.")
 
 
-def _keep_first(table, spec: ScanSpec, needed: list[str]):
-    """One row per unit: its earliest row by date.
-
-    Ties on the date keep the row that comes first in the file; rows with a missing date count
-    as later than any dated row; rows with a missing unit cannot be matched to a unit and are
-    dropped (counted separately).  The rows kept stay in file order, so the seeded half split is
-    unchanged by the de-duplication.
-
-    This runs in memory: the needed columns of every row are held at once (about 8 bytes per
-    number plus the identifier text), which suits tables up to some tens of millions of rows on
-    a 24 GB machine.  For larger tables de-duplicate upstream (one row per unit) and scan that.
-
-    Returns (table, repeat rows dropped, rows dropped for a missing unit).
-    """
-    import pandas as pd
-    import pyarrow as pa
-    cols = list(dict.fromkeys(needed + [spec.unit, spec.date]))
-    parts = list(table.batches(cols))
-    if not parts:
-        return table, 0, 0
-    t = pa.Table.from_batches(parts)
-    when = to_timestamps(t.column(spec.date).combine_chunks(), spec.date, table.name,
-                         DateParser(spec.date, table.name, spec.date_format))
-    frame = pd.DataFrame({"unit": t.column(spec.unit).to_pandas(),
-                          "when": pd.Series(when.to_pandas()), "row": np.arange(t.num_rows)})
-    no_unit = frame["unit"].isna() | frame["unit"].astype(str).str.strip().str.lower().isin(NULL_TOKENS)
-    frame = frame[~no_unit].sort_values(["when", "row"], kind="stable", na_position="last")
-    keep = np.sort(frame.drop_duplicates("unit", keep="first")["row"].to_numpy())
-    repeats = int((~no_unit).sum() - keep.size)
-    return open_table(t.take(pa.array(keep)), table.name), repeats, int(no_unit.sum())
-
-
-UNIT_NAME = re.compile(r"(^|_)(id|pid|person|patient|member|subject)(_?id)?$", re.IGNORECASE)
-UNIT_CHECK_ROWS = 1_000_000
-
-
-def unit_repeats(table, spec: ScanSpec) -> str | None:
-    """A warning when a unit column (declared, or named like one) repeats and keep != 'first'.
-
-    Only the first ``UNIT_CHECK_ROWS`` rows are looked at: a repeat there is enough to warn, and
-    the check stays cheap on large tables.
-    """
-    if spec.keep == "first":
-        return None
-    names = [spec.unit] if spec.unit else [c for c in table.columns if UNIT_NAME.search(c)]
-    for col in names:
-        try:
-            first = next(iter(table.batches([col], UNIT_CHECK_ROWS)), None)
-        except InputError:
-            continue
-        if first is None or first.num_rows == 0:
-            continue
-        arr = first.column(0).drop_null()
-        if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):
-            arr = arr.filter(pc.invert(pc.is_in(pc.utf8_lower(pc.utf8_trim_whitespace(arr)),
-                                                value_set=pa.array(NULL_TOKENS))))
-        repeats = len(arr) - len(pc.unique(arr))
-        if repeats:
-            how = "declared as data.unit" if spec.unit else "looks like a unit identifier"
-            return (f"warning: column '{col}' {how} and repeats ({repeats:,} of the first "
-                    f"{first.num_rows:,} rows share a value with an earlier row), so units with "
-                    f"many rows count many times; add data.unit = '{col}' and data.keep = 'first' "
-                    "to count each unit once, by its earliest date.")
-    return None
-
-
 def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     """Screen a table for regression-discontinuity candidates.
 
@@ -194,14 +126,14 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                 raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
                                  "or pass data= to scan().")
             table = open_table(spec.resolve(spec.source),
-                               text_columns=_text_columns(spec))
+                               text_columns=text_columns(spec))
         else:
             table = open_table(data)
         _check_columns(table, spec)
         warn = unit_repeats(table, spec)
         if warn:
             notes.append(warn)
-        table = cleaned(table, spec.codes(), _roles(spec), spec.date, spec.date_format)
+        table = cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format)
     coded = getattr(table, "coded", None) or {}     # filled as batches are read; kept past keep-first
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
     columns = tuple(dict.fromkeys(spec.treatments + spec.covariates + spec.outcomes))
@@ -212,7 +144,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                    date=spec.date, split_seed=None)
     deduped = no_unit = 0
     if spec.keep == "first" and engine == "local":
-        table, deduped, no_unit = _keep_first(table, spec, plan.needed)
+        table, deduped, no_unit = keep_first(table, spec, plan.needed)
     elif spec.keep == "first":
         notes.append("warning: keep = 'first' is applied by the local engine only; with the "
                      f"{engine} engine de-duplicate units before the scan.")
@@ -240,110 +172,16 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     for i, c in enumerate(cands):
-        rows.append(evaluate_contained(pooled[c.running], c, spec, density_cache))
+        rows.append(evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache))
         if progress:
             progress("estimate", 1, len(cands))
     for row in rows:
         explain_nan(row)
     rows = finalize(rows, spec.alpha)
     data_info = _data_info(binned, spec, deduped)
-    _add_cleaning_info(data_info, coded, spec, no_unit)
+    add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"))
-
-
-def checked_rules(paths) -> list:
-    """load_rules, after checking each catalogue is readable UTF-8 TOML (clean errors, no traceback)."""
-    from .errors import SpecError, parse_toml, read_text
-    text_keys = ("id", "quantity", "unit", "description", "source")
-    for p in paths:
-        if not Path(p).exists():
-            continue
-        raw = parse_toml(read_text(p, "rule catalogue"), p, "rule catalogue")
-        entries = raw.get("rule", [])
-        if not isinstance(entries, list) or not all(isinstance(r, dict) for r in entries):
-            raise SpecError(f"{p}: 'rule' must be a list of [[rule]] tables.")
-        for i, r in enumerate(entries, 1):
-            bad = [k for k in text_keys if k in r and not isinstance(r[k], str)]
-            tr = r.get("treatments")
-            if tr is not None and not (isinstance(tr, list) and all(isinstance(t, str) for t in tr)):
-                bad.append("treatments")
-            cut = r.get("cutoff")
-            if isinstance(cut, float) and not math.isfinite(cut):
-                raise SpecError(f"{p}: rule number {i} has cutoff = {cut}; a cutoff must be a "
-                                "finite number.")
-            if bad:
-                raise SpecError(f"{p}: rule number {i} has '{bad[0]}' of the wrong type; id, "
-                                "quantity, unit, description and source are text, treatments a "
-                                "list of column names.")
-    return load_rules(paths)
-
-
-NUMERIC_FAILURES = (np.linalg.LinAlgError, FloatingPointError, ZeroDivisionError, OverflowError)
-
-
-def evaluate_contained(stats: BinnedStats, cand: Candidate, spec: ScanSpec, cache: dict) -> dict:
-    """:func:`evaluate`, with a numerical failure kept to its own candidate.
-
-    A step that raises on degenerate sums (a singular matrix in a bandwidth pilot, say) turns the
-    candidate into a "not estimable" row naming the failure; the scan goes on.
-    """
-    try:
-        return evaluate(stats, cand, spec, cache)
-    except NUMERIC_FAILURES as exc:
-        nan = float("nan")
-        row = {k: nan for k in ("jump", "se", "ci_low", "ci_high", "p_value", "z", "first_stage_f",
-                                "left", "right", "slope_left", "slope_right", "bandwidth",
-                                "density_p", "density_theta", "density_ratio", "balance_p",
-                                "placebo_p")}
-        row.update(running=cand.running, treatment=cand.treatment, cutoff=float(cand.cutoff),
-                   origin=cand.origin, rule_id=cand.rule_id, eligible_side=cand.eligible_side,
-                   rule_description=cand.rule.description if cand.rule else None,
-                   bandwidth_method=None, bandwidth_note=None, kernel=spec.kernel,
-                   degree=spec.degree, n_left=0, n_right=0, distinct_left=0, distinct_right=0,
-                   right_closed=cand.right_closed, design="unknown", density_method=None,
-                   density_reason=None, balance=[], balance_worst=None, heap_p=None,
-                   heap_ratio=None, heap_value=None,
-                   reason=f"numerical failure ({type(exc).__name__}: {exc}); the sums near this "
-                          "cutoff are degenerate — values of extreme magnitude, or too few distinct values")
-        return row
-
-
-def explain_nan(row: dict) -> None:
-    """Give every estimate that came out NaN a reason (a "not estimable" row always says why).
-
-    The fit can lose all precision without raising — sums of x² overflow for |x| near 1e154 and
-    above, or underflow for spacings near 1e-160 and below — which leaves NaN with no reason.
-    """
-    if not np.isfinite(row.get("jump", np.nan)) and not row.get("reason"):
-        row["reason"] = ("the local fit lost precision (running-variable values or spacings of "
-                         "extreme magnitude overflow or underflow the sums); rescale the running "
-                         "variable, e.g. to thousands or millionths")
-
-
-def _text_columns(spec: ScanSpec) -> list[str]:
-    """CSV columns read as text: the unit (keeps leading zeros) and columns with text codes."""
-    cols = [spec.unit] if spec.unit else []
-    cols += [c for c, cc in spec.codes().items() if any(isinstance(v, str) for v in cc)]
-    return cols
-
-
-def _roles(spec: ScanSpec) -> dict:
-    roles = {c: "outcome" for c in spec.outcomes}
-    roles.update({c: "covariate" for c in spec.covariates})
-    roles.update({c: "treatment" for c in spec.treatments})
-    roles.update({r.column: "running variable" for r in spec.running})
-    return roles
-
-
-def _add_cleaning_info(info: dict, coded: dict, spec: ScanSpec, no_unit: int) -> None:
-    """Record values set missing by declared codes and rows without a unit (keep = first)."""
-    if no_unit:
-        info["dropped"].insert(0, {"column": spec.unit, "treatment": None,
-                                   "reason": "unit missing (keep = first)", "rows": no_unit})
-        info["rows_read"] += no_unit
-    info["missing_codes"] = [{"column": c, "codes": list(spec.codes()[c]), "values": n}
-                             for c, n in coded.items() if c in spec.codes()]
 
 
 def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:

@@ -261,6 +261,14 @@ def test_repeated_units_warn_without_keep_first(tmp_path):
     assert any("declared as data.unit and repeats" in n for n in res.notes)
 
 
+def test_no_warning_for_columns_that_repeat_by_design(tmp_path):
+    df = frame(n=800)
+    df.insert(0, "clinic_id", [f"C{i % 5}" for i in range(len(df))])
+    df.insert(0, "visit_id", [f"V{i % 400}" for i in range(len(df))])
+    res = scan(write(tmp_path, df))
+    assert not any(n.startswith("warning:") for n in res.notes)
+
+
 def test_no_warning_when_units_are_unique(tmp_path):
     df = frame(n=800)
     df.insert(0, "person_id", [f"VM-{i}" for i in range(len(df))])
