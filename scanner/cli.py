@@ -161,6 +161,16 @@ def main(argv=None) -> int:
 
 
 def _dispatch(args) -> int:
+    import warnings
+    with warnings.catch_warnings():
+        if not args.debug:
+            # numpy's overflow/invalid-value warnings on degenerate sums are internals: the
+            # affected candidates already say "not estimable" and why.
+            warnings.simplefilter("ignore", RuntimeWarning)
+        return _guarded(args)
+
+
+def _guarded(args) -> int:
     try:
         if args.command == "scan":
             return _run_scan(args.spec, args.out, args.force, args.min_cell, args.top, args.quiet)

@@ -484,3 +484,17 @@ def test_catalogue_is_complete():
     assert doc_codes, "docs/errors.md lists no codes"
     assert doc_codes - tested == set(), f"documented but untested: {sorted(doc_codes - tested)}"
     assert tested - doc_codes == set(), f"tested but undocumented: {sorted(tested - doc_codes)}"
+
+
+def test_boundary_numeric_warnings_stay_quiet(tmp_path, capsys):
+    """Degenerate sums (values near 1e300) give "not estimable" rows, not numpy warnings."""
+    df = frame(2000)
+    df["score"] = (df["score"] - 50) * 1e300
+    spec = setup(tmp_path, df=df)
+    import warnings
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        rc = main(["scan", str(spec), "--out", str(tmp_path / "o"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 0 and "RuntimeWarning" not in err and "Traceback" not in err
+    assert not [w for w in seen if issubclass(w.category, RuntimeWarning)]
