@@ -88,8 +88,8 @@ def check(spec_or_path, rule_id: str, data=None, treatment: str | None = None,
     treatment : only this treatment (default: every treatment the rule concerns).
     granularity : 'quarter', 'year' or 'auto' (chosen from the rows near the line).
     """
-    from .io import open_table
-    from .scan import _check_columns, _keep_first, evaluate
+    from .guards import keep_first
+    from .scan import evaluate, open_for_scan
     spec = spec_or_path if isinstance(spec_or_path, ScanSpec) else load_spec(spec_or_path)
     where = spec.path or "<spec>"
     if not spec.catalogues:
@@ -114,15 +114,14 @@ def check(spec_or_path, rule_id: str, data=None, treatment: str | None = None,
                          f"none of which is a treatment of '{running.column}' in the spec.")
     group = group_of(rule, rules)
     cutoffs = {r.id: rule_cutoff(r, running) for r in group}
-    table = open_table(spec.resolve(spec.source) if data is None else data)
-    _check_columns(table, spec)
+    table, _, _ = open_for_scan(spec, data)
     spec = replace(spec, running=(running,), outcomes=())
     plan = BinPlan(running=(running.column,), columns=tuple(dict.fromkeys(trs + list(spec.covariates))),
                    treatments=tuple(trs),
                    bin_width={running.column: running.bin_width} if running.bin_width else {},
                    date=spec.date)
     if spec.keep == "first":
-        table, _ = _keep_first(table, spec, plan.needed)
+        table, _, _ = keep_first(table, spec, plan.needed)
     stats = bin_table(table, plan, engine=spec.engine).stats[running.column]
     if not (stats.period >= 0).any():
         raise InputError(f"{table.name}: date column '{spec.date}' holds no usable dates.")

@@ -91,10 +91,11 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
     from .report.outputs import terminal_table, write_outputs
     from .scan import scan
     from .spec import load_spec
+    from .report.outputs import check_out
     out = Path(out)
-    if out.exists() and not force:
-        raise InputError(f"{out}: output folder exists; choose another --out or add --force to replace it.")
     spec = load_spec(spec_path)
+    protect = [spec.path] + ([spec.resolve(spec.source)] if spec.source else [])
+    check_out(out, force, protect)   # before the scan: a refused --out should not cost a scan
     if min_cell is not None:
         if min_cell < 1:
             raise InputError(f"--min-cell {min_cell}: the minimum cell size must be at least 1.")
@@ -108,7 +109,10 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
         bar, tick = _progress(console)
         with bar:
             result = scan(spec, data, progress=tick)
-    write_outputs(result, out, force=force)
+    write_outputs(result, out, force=force, protect=protect)
+    for note in result.notes:
+        if note.startswith("warning:"):
+            print(f"cutscan: {note}", file=sys.stderr)
     if not quiet:
         console.print(terminal_table(result.to_dict(), spec.top))
         console.print(f"[dim]{CAUTION}[/]")
@@ -118,9 +122,9 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
 
 def _demo(args) -> int:
     from .demo import write_inputs
+    from .report.outputs import check_out
     out = Path(args.out)
-    if out.exists() and not args.force:
-        raise InputError(f"{out}: output folder exists; choose another --out or add --force to replace it.")
+    check_out(out, args.force)
     tmp = Path(tempfile.mkdtemp(prefix="cutscan-demo-"))
     try:
         spec = write_inputs(tmp / "input", n=args.rows, seed=args.seed)
@@ -162,7 +166,7 @@ def _rules_validate(args) -> int:
     from .rules import validate_catalogues
     rules, problems = validate_catalogues(args.files)
     for p in problems:
-        print(p, file=sys.stderr)
+        print(f"cutscan: {p}", file=sys.stderr)
     if problems:
         print(f"cutscan: {len(problems)} problem(s) in {len(args.files)} catalogue(s).", file=sys.stderr)
         return 2
@@ -226,8 +230,39 @@ def _check(args) -> int:
     return 0
 
 
+def _on_term(signum, frame):
+    raise KeyboardInterrupt   # unwinds through write_outputs, which removes its temporary folder
+
+
 def main(argv=None) -> int:
-    args = _parser().parse_args(argv)
+    """Run the command; returns the exit code (0 ok, 2 bad input, 1 internal, 130 interrupted)."""
+    import signal
+    import threading
+    try:
+        args = _parser().parse_args(argv)
+    except SystemExit as exc:   # argparse: usage errors exit 2 with its own message
+        return int(exc.code or 0)
+    previous = None
+    if threading.current_thread() is threading.main_thread():
+        previous = signal.signal(signal.SIGTERM, _on_term)
+    try:
+        return _dispatch(args)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _dispatch(args) -> int:
+    import warnings
+    with warnings.catch_warnings():
+        if not args.debug:
+            # numpy's overflow/invalid-value warnings on degenerate sums are internals: the
+            # affected candidates already say "not estimable" and why.
+            warnings.simplefilter("ignore", RuntimeWarning)
+        return _guarded(args)
+
+
+def _guarded(args) -> int:
     try:
         if args.command == "scan":
             return _run_scan(args.spec, args.out, args.force, args.min_cell, args.top, args.quiet)
@@ -247,7 +282,8 @@ def main(argv=None) -> int:
         print(f"cutscan: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("cutscan: interrupted; no output was written.", file=sys.stderr)
+        print("cutscan: interrupted; no partial output was written (an existing output folder "
+              "is left as it was).", file=sys.stderr)
         return 130
     except Exception as exc:  # internal failure
         if args.debug:

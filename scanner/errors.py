@@ -39,3 +39,43 @@ def closest(word: str, choices) -> str:
     """Return a ' (did you mean 'x'?)' hint for an unknown key, or ''."""
     close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.5)
     return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+class OutputError(ScanError):
+    """The output folder cannot be written or replaced as asked."""
+
+
+def read_text(path, what: str) -> str:
+    """Read a UTF-8 text file (a byte-order mark is allowed) or raise a :class:`SpecError`.
+
+    ``what`` names the file's role for the message, e.g. "scan spec" or "rule catalogue".
+    """
+    from pathlib import Path
+    p = Path(path)
+    try:
+        return p.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = p.read_bytes()[:exc.start].count(b"\n") + 1
+        raise SpecError(f"{p}:line {line}: the {what} is not UTF-8 text (byte {exc.start}); "
+                        "save it as UTF-8.") from None
+    except IsADirectoryError:
+        raise SpecError(f"{p}: is a folder; give the path of the {what} file (TOML).") from None
+    except OSError as exc:
+        raise SpecError(f"{p}: cannot read the {what}: {exc.strerror or exc}. Check the path "
+                        "and its permissions.") from None
+
+
+def parse_toml(text: str, path, what: str) -> dict:
+    """Parse TOML text; errors become a :class:`SpecError` naming the file and line."""
+    import re
+    import tomllib
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        m = re.search(r"line (\d+)", str(exc))
+        line = f"line {m.group(1)}" if m else "line ?"
+        raise SpecError(f"{path}:{line}: the {what} is not valid TOML ({exc}). Check quotes, "
+                        "brackets and 'key = value' on that line.") from None
+    except RecursionError:
+        raise SpecError(f"{path}: the {what} nests arrays or tables too deeply to read; "
+                        "flatten it.") from None

@@ -17,6 +17,8 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
 from .errors import ColumnNotFoundError, InputError
+from .parsing import (DateParser, check_not_temporal, csv_conversion_message, drop_codes,
+                      split_codes, text_to_numbers, to_timestamps)
 
 BATCH_ROWS = 1_000_000
 
@@ -63,8 +65,50 @@ def _format_of(path: Path) -> str:
                      "(file or folder), .feather/.arrow, .dta and .sas7bdat.")
 
 
-def open_table(source, name: str | None = None) -> Table:
-    """Open a file path, a folder of Parquet files, a pandas DataFrame or a pyarrow Table."""
+def _csv_format(path: Path, text_columns=()):
+    """CSV read options: quoted newlines allowed; integer-looking columns read as float64
+    (so a later '1.5' is not an error); ``text_columns`` (identifiers, columns with text
+    missing codes) read as text, so '007' keeps its zeros and codes reach the parser."""
+    import pyarrow.csv as pcsv
+    parse = pcsv.ParseOptions(delimiter=sniff_delimiter(path), newlines_in_values=True)
+    first = ds.dataset(str(path), format=ds.CsvFileFormat(parse_options=parse))
+    types = {f.name: pa.float64() for f in first.schema if pa.types.is_integer(f.type)}
+    types.update({c: pa.string() for c in text_columns if c in first.schema.names})
+    return ds.CsvFileFormat(parse_options=parse,
+                            convert_options=pcsv.ConvertOptions(column_types=types))
+
+
+def sniff_delimiter(path: Path) -> str:
+    """',' unless the file is .tsv or its header line has no comma but exactly one of ; tab |."""
+    if path.is_dir() or ".tsv" in [s.lower() for s in path.suffixes]:
+        return "\t" if not path.is_dir() else ","
+    try:
+        import gzip
+        opener = gzip.open if path.suffix.lower() == ".gz" else open
+        with opener(path, "rb") as fh:
+            head = fh.readline(65536).decode("utf-8", "replace")
+    except OSError:
+        return ","
+    if "," in head:
+        return ","
+    found = [d for d in (";", "\t", "|") if d in head]
+    return found[0] if len(found) == 1 else ","
+
+
+def _arrow_reason(exc: Exception) -> str:
+    """pyarrow's message without its wrapper text ('Error creating dataset ... Invalid: ')."""
+    text = str(exc)
+    for marker in ("Invalid: ", "CSV parse error: "):
+        if marker in text:
+            text = text.rsplit(marker, 1)[-1]
+    return text.strip().rstrip(".")
+
+
+def open_table(source, name: str | None = None, text_columns=()) -> Table:
+    """Open a file path, a folder of Parquet files, a pandas DataFrame or a pyarrow Table.
+
+    ``text_columns`` are read as text from CSV files (see :func:`_csv_format`).
+    """
     if isinstance(source, pa.Table):
         return _from_arrow(source, name or "<pyarrow Table>")
     if _is_pandas(source):
@@ -76,18 +120,24 @@ def open_table(source, name: str | None = None) -> Table:
     fmt = _format_of(path)
     if fmt in ("csv", "parquet", "ipc"):
         try:
-            dataset = ds.dataset(str(path), format=fmt)
+            dataset = ds.dataset(str(path), format=_csv_format(path, text_columns)
+                                 if fmt == "csv" else fmt)
             columns = list(dataset.schema.names)
-        except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
-            raise InputError(f"{path}: cannot be read as {fmt}: {exc}") from None
+        except (pa.ArrowInvalid, pa.ArrowTypeError, OSError, UnicodeDecodeError) as exc:
+            fix = ("check that it is UTF-8 text with one header row of unique names, the same "
+                   "number of cells in every row, and quotes closed" if fmt == "csv" else
+                   f"check that it is a complete {fmt} file")
+            raise InputError(f"{path}: cannot be read as {fmt}: {_arrow_reason(exc)}; {fix}.") from None
 
         def batches(cols, rows, dataset=dataset):
             try:
                 for b in dataset.to_batches(columns=cols, batch_size=rows):
                     yield b
-            except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
-                raise InputError(f"{path}: cannot be read: {exc}. Check the file's format "
-                                 "and that the columns hold one type each.") from None
+            except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
+                clear = csv_conversion_message(exc, path, columns)
+                raise InputError(clear or f"{path}: cannot be read: {_arrow_reason(exc)}; check the "
+                                 "file's format, that every row has as many cells as the header, "
+                                 "and that each column holds one type.") from None
         return Table(str(path), columns, batches)
     return _from_pandas_reader(path, fmt)
 
@@ -133,8 +183,12 @@ def _from_pandas_reader(path: Path, fmt: str) -> Table:
 
 
 # ---------------------------------------------------------------------- conversion
-def numeric(batch: pa.RecordBatch, column: str, source: str, role: str) -> np.ndarray:
-    """A batch column as float64 (missing → NaN); booleans become 0/1; text is refused."""
+def numeric(batch: pa.RecordBatch, column: str, source: str, role: str, codes=()) -> np.ndarray:
+    """A batch column as float64 (missing → NaN); booleans become 0/1.
+
+    Text is parsed by :func:`scanner.parsing.text_to_numbers` (numbers, thousands separators,
+    yes/no) or refused; ``codes`` are declared missing codes.
+    """
     arr = batch.column(batch.schema.get_field_index(column))
     t = arr.type
     if pa.types.is_dictionary(t):
@@ -147,15 +201,12 @@ def numeric(batch: pa.RecordBatch, column: str, source: str, role: str) -> np.nd
     elif pa.types.is_null(t):
         return np.full(len(arr), np.nan)
     elif pa.types.is_string(t) or pa.types.is_large_string(t):
-        sample = [v for v in pc.unique(arr.drop_null()).to_pylist()[:4]]
-        raise InputError(
-            f"{source}: {role} column '{column}' holds text "
-            f"({', '.join(repr(s) for s in sample)}{', ...' if sample else ''}); {role} columns "
-            "must be numeric — cast it, or declare non-numeric codes as missing.")
+        return text_to_numbers(arr, column, source, role, codes)
     else:
+        check_not_temporal(t, column, source, role)
         raise InputError(f"{source}: {role} column '{column}' has type {t}; it must be numeric "
                          "(integer, float, decimal or boolean).")
-    return arr.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+    return drop_codes(arr.to_numpy(zero_copy_only=False).astype(np.float64, copy=False), codes)
 
 
 def check_binary(values: np.ndarray, column: str, source: str) -> None:
@@ -168,24 +219,69 @@ def check_binary(values: np.ndarray, column: str, source: str) -> None:
                          f"values seen: {shown}. Recode it to 0/1, or list it under covariates.")
 
 
-def period_codes(batch: pa.RecordBatch, column: str, source: str) -> np.ndarray:
+def period_codes(batch: pa.RecordBatch, column: str, source: str,
+                 parser: DateParser | None = None) -> np.ndarray:
     """Calendar quarter codes (year*4 + quarter-1) for a date column; -1 where missing."""
     arr = batch.column(batch.schema.get_field_index(column))
     t = arr.type
-    if pa.types.is_string(t) or pa.types.is_large_string(t):
-        import pandas as pd
-        vals = pd.to_datetime(pd.Series(arr.to_pylist()), errors="coerce", format="mixed")
-        bad = vals.isna() & pd.Series(arr.is_valid().to_pylist())
-        if bad.any():
-            example = arr.to_pylist()[int(np.flatnonzero(bad.to_numpy())[0])]
-            raise InputError(f"{source}: date column '{column}' holds '{example}', which is not "
-                             "a date; use ISO dates (2021-03-31) or leave the cell empty.")
-        years = vals.dt.year.to_numpy(dtype=float, na_value=np.nan)
-        quarters = vals.dt.quarter.to_numpy(dtype=float, na_value=np.nan)
-    elif pa.types.is_timestamp(t) or pa.types.is_date(t):
-        years = pc.year(arr).to_numpy(zero_copy_only=False).astype(float)
-        quarters = pc.quarter(arr).to_numpy(zero_copy_only=False).astype(float)
-    else:
-        raise InputError(f"{source}: date column '{column}' has type {t}; it must hold dates.")
+    if not (pa.types.is_timestamp(t) or pa.types.is_date(t) or pa.types.is_null(t)):
+        arr = to_timestamps(arr, column, source, parser)
+    if pa.types.is_null(arr.type):
+        return np.full(len(arr), -1, np.int32)
+    years = pc.year(arr).to_numpy(zero_copy_only=False).astype(float)
+    quarters = pc.quarter(arr).to_numpy(zero_copy_only=False).astype(float)
     code = years * 4 + quarters - 1
     return np.where(np.isnan(code), -1, code).astype(np.int32)
+
+
+# ---------------------------------------------------------------------- spec-driven cleaning
+def cleaned(table: Table, codes: dict, roles: dict, date: str | None = None,
+            date_format: str | None = None) -> Table:
+    """``table`` with declared missing codes applied and the date column parsed, batch by batch.
+
+    ``codes`` maps a column to its missing codes; ``roles`` maps it to its role (for messages).
+    Coded columns leave as float64, the date column as timestamps; one :class:`DateParser` serves
+    every batch, so the day/month order cannot change part-way through a file.  The number of
+    values set missing by a code is counted per column in the returned table's ``coded``.
+    """
+    if not codes and not date:
+        return table
+    parser = DateParser(date, table.name, date_format) if date else None
+    counts = dict.fromkeys(codes, 0)
+
+    def batches(cols, rows):
+        for b in table.batches(cols, rows):
+            names = b.schema.names
+            arrays = list(b.columns)
+            for c, cc in codes.items():
+                if c in names:
+                    i = names.index(c)
+                    with_codes = numeric(b, c, table.name, roles.get(c, "scanned"), cc)
+                    counts[c] += _code_hits(b.column(i), with_codes, cc, c, table.name, roles)
+                    arrays[i] = pa.array(with_codes, from_pandas=True)
+            if parser and date in names:
+                i = names.index(date)
+                arrays[i] = to_timestamps(arrays[i], date, table.name, parser)
+            yield pa.RecordBatch.from_arrays(arrays, names=names)
+    out = Table(table.name, table.columns, batches, table.num_rows)
+    out.coded = counts
+    return out
+
+
+def _code_hits(arr, with_codes, codes, column, source, roles) -> int:
+    """How many cells of one batch column a declared code turned into missing."""
+    text, _ = split_codes(codes)
+    t = arr.type.value_type if pa.types.is_dictionary(arr.type) else arr.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        s = pc.utf8_trim_whitespace(arr.cast(pa.string()))
+        hits = int(pc.sum(pc.is_in(s, value_set=pa.array(sorted(text)))).as_py() or 0) if text else 0
+        base = text_to_numbers(arr, column, source, roles.get(column, "scanned"), sorted(text))
+        return hits + int(np.isnan(with_codes).sum() - np.isnan(base).sum())
+    return int(np.isnan(with_codes).sum() - np.isnan(numeric_plain(arr)).sum())
+
+
+def numeric_plain(arr) -> np.ndarray:
+    """A numeric or boolean array as float64 without any codes."""
+    if pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_decode()
+    return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(np.float64, copy=False)

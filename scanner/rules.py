@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+import math
 import re
 import tomllib
 from dataclasses import dataclass, asdict
@@ -85,7 +86,7 @@ class Problem:
     message: str
 
     def __str__(self) -> str:
-        return f"{self.file}:line {self.line or '?'}: {self.message}"
+        return f"{self.file}:line {self.line}: {self.message}" if self.line else f"{self.file}: {self.message}"
 
 
 def _date(value):
@@ -133,8 +134,8 @@ def _read(path: Path) -> tuple[dict | None, str, list[Problem]]:
     except tomllib.TOMLDecodeError as exc:
         m = re.search(r"line (\d+)", str(exc))
         return None, text, [Problem(str(path), int(m.group(1)) if m else 0,
-                                    f"not valid TOML ({exc}); dates are written 2013-01-01 and "
-                                    "must exist in the calendar.")]
+                                    f"not valid TOML ({exc}). Check quotes and brackets on that "
+                                    "line; dates are written 2013-01-01 and must exist.")]
 
 
 def _parse(path: Path, seen: dict) -> tuple[list[Rule], dict, list[Problem]]:
@@ -179,6 +180,11 @@ def _parse(path: Path, seen: dict) -> tuple[list[Rule], dict, list[Problem]]:
         cut = r.get("cutoff")
         if "cutoff" in r and (not isinstance(cut, (int, float)) or isinstance(cut, bool)):
             bad.append(Problem(p, at("cutoff"), f"cutoff = {cut!r} must be a number."))
+        elif "cutoff" in r and not math.isfinite(cut):
+            bad.append(Problem(p, at("cutoff"), f"cutoff = {cut} must be a finite number."))
+        for k in ("id", "quantity", "unit", "description", "source"):
+            if k in r and not isinstance(r[k], str):
+                bad.append(Problem(p, at(k), f"{k} = {r[k]!r} must be text (in quotes)."))
         elig = r.get("eligible")
         if "eligible" in r and elig not in ELIGIBLE:
             bad.append(Problem(p, at("eligible"), f"eligible = '{elig}' must be one of "

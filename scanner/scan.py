@@ -20,7 +20,9 @@ from .errors import InputError
 from .estimate import fit_jump, side_data
 from .estimate.inference import inference_fields
 from .estimate.select import select_bandwidth
-from .io import open_table
+from .guards import (add_cleaning_info, checked_rules, evaluate_contained, explain_nan,
+                     keep_first, roles, text_columns, unit_repeats)
+from .io import cleaned, open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
@@ -91,6 +93,8 @@ def _check_columns(table, spec: ScanSpec) -> None:
         table.require(spec.date, "date")
     if spec.unit:
         table.require(spec.unit, "unit")
+    for c in spec.missing_by_column:
+        table.require(c, "data.missing_by_column")
     for r in spec.running:
         for t in r.treatments or ():
             if t not in spec.treatments:
@@ -98,18 +102,27 @@ def _check_columns(table, spec: ScanSpec) -> None:
                                  f"treatment '{t}', which is not under [treatments] columns.")
 
 
-def _keep_first(table, spec: ScanSpec, needed: list[str]):
-    """One row per unit: the earliest by date (in memory; see docs)."""
-    import pandas as pd
-    import pyarrow as pa
-    cols = list(dict.fromkeys(needed + [spec.unit, spec.date]))
-    parts = [b.to_pandas() for b in table.batches(cols)]
-    df = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=cols)
-    before = len(df)
-    dates = pd.to_datetime(df[spec.date], errors="coerce", format="mixed") if df[spec.date].dtype == object else df[spec.date]
-    df = df.assign(_order=dates).sort_values(["_order"], kind="stable", na_position="last")
-    df = df.drop_duplicates(spec.unit, keep="first").drop(columns="_order").sort_index()
-    return open_table(pa.Table.from_pandas(df, preserve_index=False), table.name), before - len(df)
+def open_for_scan(spec: ScanSpec, data=None):
+    """Open the table a spec names (or ``data``), check its columns and wrap it for cleaning.
+
+    Returns ``(table, engine, notes)``; a Spark DataFrame passes through to the Spark engine.
+    """
+    notes = []
+    engine = spec.engine
+    if data is not None and type(data).__module__.startswith("pyspark"):
+        return data, "spark", notes
+    if data is None:
+        if not spec.source:
+            raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
+                             "or pass data= to scan().")
+        table = open_table(spec.resolve(spec.source), text_columns=text_columns(spec))
+    else:
+        table = open_table(data)
+    _check_columns(table, spec)
+    warn = unit_repeats(table, spec)
+    if warn:
+        notes.append(warn)
+    return cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format), engine, notes
 
 
 def scan(spec_or_path, data=None, progress=None) -> ScanResult:
@@ -127,30 +140,21 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     ScanResult with candidates best first.
     """
     spec = _as_spec(spec_or_path)
-    notes = []
-    engine = spec.engine
-    if data is not None and type(data).__module__.startswith("pyspark"):
-        engine = "spark"
-        table = data
-    else:
-        if data is None:
-            if not spec.source:
-                raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
-                                 "or pass data= to scan().")
-            table = open_table(spec.resolve(spec.source))
-        else:
-            table = open_table(data)
-        _check_columns(table, spec)
-    rules = load_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
+    table, engine, notes = open_for_scan(spec, data)
+    coded = getattr(table, "coded", None) or {}     # filled as batches are read; kept past keep-first
+    rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
     columns = tuple(dict.fromkeys(spec.treatments + spec.covariates + spec.outcomes))
     pairs = tuple((t, y) for t in spec.treatments for y in spec.outcomes if y != t)
     plan = BinPlan(running=tuple(r.column for r in spec.running), columns=columns,
                    treatments=spec.treatments, pairs=pairs,
                    bin_width={r.column: r.bin_width for r in spec.running if r.bin_width},
                    date=spec.date, split_seed=None)
-    deduped = 0
+    deduped = no_unit = 0
     if spec.keep == "first" and engine == "local":
-        table, deduped = _keep_first(table, spec, plan.needed)
+        table, deduped, no_unit = keep_first(table, spec, plan.needed)
+    elif spec.keep == "first":
+        notes.append("warning: keep = 'first' is applied by the local engine only; with the "
+                     f"{engine} engine de-duplicate units before the scan.")
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
     binned = bin_table(table, plan, engine=engine, progress=tick)
     for r in spec.running:
@@ -175,17 +179,20 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     for i, c in enumerate(cands):
-        row = evaluate(pooled[c.running], c, spec, density_cache)
+        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
         # Declared rules with an effective date: jumps before/after it from the period keys.
         row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
-        if c.rule is not None:
+        if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
             row.update(before_after(binned.stats[c.running], c, row["bandwidth"], spec.kernel,
                                     spec.degree))
         rows.append(row)
         if progress:
             progress("estimate", 1, len(cands))
+    for row in rows:
+        explain_nan(row)
     rows = finalize(rows, spec.alpha)
     data_info = _data_info(binned, spec, deduped)
+    add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"))
 

@@ -6,16 +6,16 @@ naming the file and line.  Paths resolve relative to the spec file.
 from __future__ import annotations
 
 import re
-import tomllib
 from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
-from .errors import SpecError, closest
+from .errors import SpecError, closest, parse_toml, read_text
 
 KNOWN = {
     "": {"title", "data", "running", "treatments", "covariates", "outcomes", "rules", "search",
          "output"},
-    "data": {"source", "date", "unit", "keep", "engine", "batch_rows"},
+    "data": {"source", "date", "unit", "keep", "engine", "batch_rows", "missing",
+             "missing_by_column", "date_format"},
     "running": {"column", "quantity", "unit", "bin_width", "treatments"},
     "treatments": {"columns"},
     "covariates": {"columns"},
@@ -65,6 +65,19 @@ class ScanSpec:
     min_cell: int = 11
     top: int = 20
     path: str | None = None
+    missing: tuple = ()                 # codes meaning "missing" in every scanned column
+    missing_by_column: dict = field(default_factory=dict)   # column -> extra missing codes
+    date_format: str | None = None      # strptime format of data.date when it is ambiguous text
+
+    def codes(self) -> dict:
+        """Declared missing codes per scanned column (global codes plus the column's own)."""
+        cols = [r.column for r in self.running] + list(self.treatments + self.covariates + self.outcomes)
+        out = {}
+        for c in dict.fromkeys(cols + list(self.missing_by_column)):
+            cc = tuple(self.missing) + tuple(self.missing_by_column.get(c, ()))
+            if cc:
+                out[c] = cc
+        return out
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -88,7 +101,41 @@ def _line_of(text: str, key: str) -> str:
     return "?"
 
 
+_TEXT, _BOOL, _WHOLE = (str,), (bool,), (int,)
+# Expected TOML types of plain keys (section, key) -> (types, words for the message).
+TYPES = {
+    ("", "title"): (_TEXT, "text"), ("data", "source"): (_TEXT, "a path (text)"),
+    ("data", "date"): (_TEXT, "a column name"), ("data", "unit"): (_TEXT, "a column name"),
+    ("data", "engine"): (_TEXT, "'local' or 'spark'"), ("data", "batch_rows"): (_WHOLE, "a whole number ≥ 1"),
+    ("running", "quantity"): (_TEXT, "text"), ("running", "unit"): (_TEXT, "text"),
+    ("outcomes", "effects"): (_BOOL, "true or false"),
+    ("search", "round_numbers"): (_BOOL, "true or false"), ("search", "discover"): (_BOOL, "true or false"),
+    ("search", "seed"): (_WHOLE, "a whole number ≥ 0"), ("search", "min_rows"): (_WHOLE, "a whole number ≥ 1"),
+    ("output", "top"): (_WHOLE, "a whole number ≥ 1"),
+}
+_LOWEST = {("data", "batch_rows"): 1, ("search", "seed"): 0, ("search", "min_rows"): 1,
+           ("output", "top"): 1}
+
+
+def _check_types(table: dict, section: str, where: str, text: str) -> None:
+    for k, v in table.items():
+        want = TYPES.get((section, k))
+        if not want:
+            continue
+        types, words = want
+        wrong = not isinstance(v, types) or (bool not in types and isinstance(v, bool))
+        if not wrong and (section, k) in _LOWEST:
+            wrong = v < _LOWEST[(section, k)] or v > 2 ** 62
+        if wrong:
+            label = f"{section}.{k}" if section else k
+            raise _err(f"{where}:{_line_of(text, k)}", f"{label} = {v!r} must be {words}.")
+    if section == "data" and table.get("engine", "local") not in ("local", "spark"):
+        raise _err(f"{where}:{_line_of(text, 'engine')}",
+                   f"data.engine = {table['engine']!r} is not an engine; use 'local' or 'spark'.")
+
+
 def _check_keys(table: dict, section: str, where: str, text: str) -> None:
+    _check_types(table, section, where, text)
     for k in table:
         if k not in KNOWN[section]:
             label = f"[{section}] " if section else ""
@@ -108,6 +155,42 @@ def _columns(raw, section, where) -> tuple[str, ...]:
     if not isinstance(cols, list) or not all(isinstance(c, str) for c in cols):
         raise _err(where, f"[{section}] columns must be a list of column names.")
     return tuple(cols)
+
+
+def _code_list(value, where: str, key: str) -> tuple:
+    if isinstance(value, (int, float, str)) and not isinstance(value, bool):
+        value = [value]
+    if not isinstance(value, list) or not all(
+            isinstance(v, (int, float, str)) and not isinstance(v, bool) for v in value):
+        raise _err(where, f"{key} = {value!r} must be a list of numbers or text codes, "
+                   "e.g. [999, -1, \"unknown\"].")
+    return tuple(value)
+
+
+def _missing(data: dict, where: str, text: str):
+    codes = _code_list(data.get("missing", []), f"{where}:{_line_of(text, 'missing')}", "data.missing")
+    per = data.get("missing_by_column", {})
+    if not isinstance(per, dict):
+        raise _err(f"{where}:{_line_of(text, 'missing_by_column')}",
+                   "data.missing_by_column must be a table of column = [codes], e.g. "
+                   "[data.missing_by_column] followed by age = [999].")
+    by_col = {str(k): _code_list(v, f"{where}:{_line_of(text, str(k))}", f"missing_by_column.{k}")
+              for k, v in per.items()}
+    fmt = data.get("date_format")
+    if fmt is not None:
+        import datetime as _dt
+        ok = isinstance(fmt, str) and "%" in fmt
+        if ok:
+            try:
+                sample = _dt.datetime(2021, 3, 31)
+                ok = _dt.datetime.strptime(sample.strftime(fmt), fmt).date() == sample.date()
+            except ValueError:
+                ok = False
+        if not ok:
+            raise _err(f"{where}:{_line_of(text, 'date_format')}",
+                       f"date_format = {fmt!r} is not a full date format; write it with %d, %m "
+                       "and %Y, e.g. '%d/%m/%Y'.")
+    return codes, by_col, fmt
 
 
 def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | None = None) -> ScanSpec:
@@ -131,9 +214,15 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         if not isinstance(r.get("column"), str):
             raise _err(where, "each [[running]] needs column = \"<name>\".")
         bw = r.get("bin_width")
-        if bw is not None and not (isinstance(bw, (int, float)) and bw > 0):
+        if bw is not None and not (isinstance(bw, (int, float)) and not isinstance(bw, bool)
+                                   and 0 < bw < float("inf")):
             raise _err(f"{where}:{_line_of(text, 'bin_width')}", "bin_width must be a positive number.")
         tr = r.get("treatments")
+        if isinstance(tr, str):
+            tr = [tr]
+        if tr is not None and not (isinstance(tr, list) and all(isinstance(t, str) for t in tr)):
+            raise _err(f"{where}:{_line_of(text, 'treatments')}",
+                       "running.treatments must be a list of treatment column names.")
         running.append(RunningSpec(r["column"], r.get("quantity"), r.get("unit"),
                                    float(bw) if bw else None, tuple(tr) if tr else None))
     treatments = _columns(raw.get("treatments"), "treatments", where)
@@ -148,20 +237,22 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         raise _err(f"{where}:{_line_of(text, 'keep')}", f"keep = '{keep}' must be 'all' or 'first'.")
     if keep == "first" and not (data.get("unit") and data.get("date")):
         raise _err(where, "keep = 'first' needs both data.unit and data.date (earliest row per unit).")
+    codes, by_col, date_format = _missing(data, where, text)
     alpha = search.get("alpha", 0.05)
     if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
         raise _err(f"{where}:{_line_of(text, 'alpha')}", f"alpha = {alpha!r} must be between 0 and 1.")
     degree = search.get("degree", 1)
-    if degree not in (0, 1, 2):
+    if isinstance(degree, bool) or degree not in (0, 1, 2):
         raise _err(f"{where}:{_line_of(text, 'degree')}", f"degree = {degree!r} must be 0, 1 or 2.")
     kern = search.get("kernel", "triangular")
     from .estimate.kernels import KERNELS
-    if kern not in KERNELS:
+    if not isinstance(kern, str) or kern not in KERNELS:
         raise _err(f"{where}:{_line_of(text, 'kernel')}",
-                   f"kernel = '{kern}' is unknown{closest(kern, KERNELS)}; choose one of {', '.join(KERNELS)}.")
+                   f"kernel = '{kern}' is unknown{closest(str(kern), KERNELS)}; choose one of {', '.join(KERNELS)}.")
     bw = search.get("bandwidth", "mse")
     choices = ("mse", "cer", "ik")
-    if not (bw in choices or (isinstance(bw, (int, float)) and not isinstance(bw, bool) and bw > 0)):
+    if not (bw in choices or (isinstance(bw, (int, float)) and not isinstance(bw, bool)
+                              and 0 < bw < float("inf"))):
         hint = closest(bw, choices) if isinstance(bw, str) else ""
         raise _err(f"{where}:{_line_of(text, 'bandwidth')}",
                    f"bandwidth = {bw!r}{hint} must be 'mse' (default), 'cer', 'ik' or a positive "
@@ -173,8 +264,11 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
     cats = raw.get("rules", {}).get("catalogues", [])
     if isinstance(cats, str):
         cats = [cats]
+    if not isinstance(cats, list) or not all(isinstance(c, str) for c in cats):
+        raise _err(f"{where}:{_line_of(text, 'catalogues')}",
+                   "rules.catalogues must be a list of file paths, e.g. [\"rules/kidney.toml\"].")
     min_cell = output.get("min_cell", 11)
-    if not (isinstance(min_cell, int) and min_cell >= 1):
+    if isinstance(min_cell, bool) or not (isinstance(min_cell, int) and min_cell >= 1):
         raise _err(where, f"output.min_cell = {min_cell!r} must be a whole number ≥ 1.")
     return ScanSpec(
         running=tuple(running), treatments=treatments,
@@ -188,7 +282,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         discover=bool(search.get("discover", True)), alpha=float(alpha), kernel=kern,
         degree=int(degree), bandwidth=bw if isinstance(bw, str) else float(bw), per_side=per_side,
         seed=int(search.get("seed", 20261201)), min_rows=int(search.get("min_rows", 50)),
-        min_cell=int(min_cell), top=int(output.get("top", 20)), path=path)
+        min_cell=int(min_cell), top=int(output.get("top", 20)), path=path,
+        missing=codes, missing_by_column=by_col, date_format=date_format)
 
 
 def load_spec(path) -> ScanSpec:
@@ -196,12 +291,6 @@ def load_spec(path) -> ScanSpec:
     p = Path(path)
     if not p.exists():
         raise SpecError(f"{p}: spec file not found.")
-    text = p.read_text(encoding="utf-8-sig")
-    try:
-        raw = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        m = re.search(r"line (\d+)", str(exc))
-        line = f"line {m.group(1)}" if m else "?"
-        raise SpecError(f"{p}:{line}: not valid TOML ({exc}). Check quotes, brackets and "
-                        "'key = value' on that line.") from None
+    text = read_text(p, "scan spec")
+    raw = parse_toml(text, p, "scan spec")
     return parse_spec(raw, str(p), text, str(p.resolve()))

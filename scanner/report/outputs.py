@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import OutputError
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 RESULTS_VERSION = "1.0"
@@ -162,32 +162,126 @@ def write_csv(results: dict, path: Path) -> None:
             w.writerow({k: ("" if v is None else v) for k, v in row.items()})
 
 
-def write_outputs(result, out: Path, force: bool = False) -> Path:
-    """Write results.json, candidates.csv, report.html, results.md and bins.csv into ``out``.
+TMP_MARK, OLD_MARK = ".tmp-", ".old-"
 
-    Files are written into a temporary folder beside ``out`` and moved into place at the end, so
-    an interrupted scan leaves no half-written output.  An existing ``out`` is replaced only
-    with ``force``.
+
+def check_out(out: Path, force: bool, protect=()) -> None:
+    """Refuse an output folder that exists (unless ``force``) or that is not cutscan's to replace.
+
+    With ``force`` a folder is replaced only when it is empty or holds a results.json (written by
+    cutscan), is not a file, and does not hold any path in ``protect`` (the spec and the data),
+    so inputs are never deleted by a mistyped --out.
     """
     out = Path(out)
-    if out.exists() and not force:
-        raise InputError(f"{out}: output folder exists; choose another --out or add --force to replace it.")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    if not out.exists():
+        return
+    if not force:
+        raise OutputError(f"{out}: output folder exists; choose another --out or add --force to "
+                          "replace it.")
+    if not out.is_dir():
+        raise OutputError(f"{out}: is a file, not an output folder; choose another --out.")
+    if any(out.iterdir()) and not (out / "results.json").exists():
+        raise OutputError(f"{out}: folder was not written by cutscan (no results.json), so "
+                          "--force will not replace it; choose another --out.")
+    here = out.resolve()
+    for p in protect:
+        if p is not None and (Path(p).resolve() == here or here in Path(p).resolve().parents):
+            raise OutputError(f"{out}: holds the scan's input {p}; choose another --out.")
+
+
+def recover(out: Path) -> None:
+    """Tidy what a killed earlier write left beside ``out``.
+
+    A run killed with SIGKILL cannot clean up: it may leave a temporary folder, or (only between
+    the two renames of the fallback swap) the previous output moved aside.  The previous output
+    is put back and temporary folders are removed.
+    """
+    out = Path(out)
+    if not out.parent.exists():
+        return
+    for p in out.parent.glob(f".{out.name}{OLD_MARK}*"):
+        if not out.exists():
+            os.replace(p, out)
+        else:
+            shutil.rmtree(p, ignore_errors=True)
+    for p in out.parent.glob(f".{out.name}{TMP_MARK}*"):
+        shutil.rmtree(p, ignore_errors=True)
+
+
+def _fsync(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Atomically swap two paths (Linux renameat2 RENAME_EXCHANGE); False where unsupported."""
+    try:
+        import ctypes
+        libc = ctypes.CDLL(None, use_errno=True)
+        fn = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    at_fdcwd, rename_exchange = -100, 2
+    return fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange) == 0
+
+
+def _swap_in(tmp: Path, out: Path) -> None:
+    """Put the finished ``tmp`` folder at ``out``; the previous ``out`` is never half-replaced.
+
+    SIGINT and SIGTERM are held back while the folders move, so an interrupt lands before or
+    after the swap, never between the two renames of the fallback path.
+    """
+    import signal
+    held = {signal.SIGINT, signal.SIGTERM}
+    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    try:
+        if not out.exists():
+            os.replace(tmp, out)
+        elif _exchange(tmp, out):
+            shutil.rmtree(tmp)               # tmp now holds the previous output
+        else:
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}{OLD_MARK}", dir=out.parent))
+            os.rmdir(old)
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old)
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
+
+
+def write_outputs(result, out: Path, force: bool = False, protect=()) -> Path:
+    """Write results.json, candidates.csv, report.html, results.md and bins.csv into ``out``.
+
+    Files are written into a temporary folder beside ``out``, flushed to disk, and swapped into
+    place at the end (an atomic exchange where the system offers one), so an interrupted scan
+    leaves no half-written output and the previous folder stays whole.  An existing ``out`` is
+    replaced only with ``force`` and only when :func:`check_out` allows it.
+    """
+    out = Path(out)
+    recover(out)
+    check_out(out, force, protect)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}{TMP_MARK}", dir=out.parent))
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot create the output folder: {exc.strerror or exc}; choose "
+                          "a folder you can write to.") from None
     try:
         results = result.to_dict()
         write_json(results, tmp / "results.json")
         write_csv(results, tmp / "candidates.csv")
         write_derived(results, tmp)
-        if out.exists():
-            old = out.with_name(f".{out.name}.old")
-            if old.exists():
-                shutil.rmtree(old)
-            os.replace(out, old)
-            os.replace(tmp, out)
-            shutil.rmtree(old)
-        else:
-            os.replace(tmp, out)
+        for f in tmp.iterdir():
+            _fsync(f)
+        _swap_in(tmp, out)
+        _fsync(out.parent)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"{out}: cannot write the outputs: {exc.strerror or exc}; check free "
+                          "space and permissions, or choose another --out.") from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

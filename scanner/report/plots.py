@@ -72,11 +72,12 @@ def imse_bins(u, n, s1, s2, reach: float, degree: int = 4) -> float:
     fit = R @ beta
     sigma2 = float(_rss(n, s1, s2, fit).sum() / N)
     dbeta = beta[1:] * np.arange(1, p + 1)
-    slope = np.vander(z, p, increasing=True) @ dbeta / scale
-    B = float((n * slope ** 2).sum() / N)
+    # Slope in scaled units (dμ/dz = reach·dμ/du), so R²·∫μ'²f is computed without forming R².
+    slope_z = np.vander(z, p, increasing=True) @ dbeta
+    B_scaled = float((n * slope_z ** 2).sum() / N)
     if sigma2 <= 0:
         return float("inf")
-    return float((reach ** 2 * B / (6 * sigma2)) ** (1 / 3) * N ** (1 / 3))
+    return float((B_scaled / (6 * sigma2)) ** (1 / 3) * N ** (1 / 3))
 
 
 def _side_bins(a, n, s1, sx, J, reach, left):
