@@ -83,7 +83,9 @@ def open_table(source, name: str | None = None) -> Table:
 
         def batches(cols, rows, dataset=dataset):
             try:
-                for b in dataset.to_batches(columns=cols, batch_size=rows):
+                # Bounded read-ahead keeps peak memory at a few batches, whatever the file size.
+                for b in dataset.to_batches(columns=cols, batch_size=rows, batch_readahead=2,
+                                            fragment_readahead=1):
                     yield b
             except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
                 raise InputError(f"{path}: cannot be read: {exc}. Check the file's format "
