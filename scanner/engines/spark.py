@@ -57,7 +57,7 @@ def local_session(master: str = "local[2]"):
     require_java()
     SparkSession, _, _ = _pyspark()
     return (SparkSession.builder.master(master).appName("cutscan")
-            .config("spark.sql.shuffle.partitions", "4")
+            .config("spark.sql.shuffle.partitions", "2")
             .config("spark.ui.enabled", "false")
             .config("spark.ui.showConsoleProgress", "false")
             .config("spark.sql.execution.arrow.pyspark.enabled", "true").getOrCreate())
@@ -186,14 +186,13 @@ def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
         return acc.finish()
     exact = rows.groupBy(x.alias("key"), "period", "half").agg(*_row_aggs(F, x, cols, plan)).cache()
     try:
-        values = exact.select("key").distinct().cache()
-        distinct = values.count()
+        distinct, big = exact.agg(F.countDistinct("key"), F.max(F.abs(F.col("key")))).collect()[0]
         if distinct <= plan.fine_keys:
             acc.stats = _collect(exact, acc.stats, plan)
             return acc.finish()
         # The settled power-of-ten level: one finer than the coarsest level that still has more
         # than fine_keys occupied bins (same rule the local engine reaches by coarsening).
-        big = values.agg(F.max(F.abs(F.col("key")))).collect()[0][0]
+        values = exact.select("key").distinct()
         e = grid.top_level(np.array([big]))
         while True:
             levels = list(range(e, e - 6, -1))
