@@ -46,14 +46,15 @@ def frame():
 @pytest.mark.spark
 def test_spark_bins_equal_local_bins(spark):
     df = frame()
-    plan = BinPlan(**PLAN, date="visit", bin_width={"lab": 0.5})
+    # Spark jobs are slow to start, so two running variables cover the two non-exact paths.
+    plan = BinPlan(**{**PLAN, "running": ("cont", "lab")}, date="visit", bin_width={"lab": 0.5})
     local = bin_table(open_table(df), plan)
     remote = bin_table(spark.createDataFrame(df), plan, engine="spark")
     assert remote.rows_read == local.rows_read
     assert remote.missing == local.missing and remote.nonfinite == local.nonfinite
-    # power-of-ten grid past fine_keys (cont, age) and a user width (lab); exact support is
+    # power-of-ten grid past fine_keys (cont) and a user width (lab); exact support is
     # covered by the scan test below
-    assert [local.stats[r].kind for r in plan.running] == ["width", "width", "width"]
+    assert [local.stats[r].kind for r in plan.running] == ["width", "width"]
     for r in plan.running:
         assert_same_stats(remote.stats[r], local.stats[r])
 

@@ -199,18 +199,35 @@ class Accumulator:
     def key(self, x: np.ndarray, ok: np.ndarray):
         """Row keys for the current state, and whether they are integers (dense codes)."""
         if self.state == "exact":
+            self._maybe_leave_exact(x[ok])
+        if self.state == "exact":
             return x, False
         return np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0), True
+
+    def _maybe_leave_exact(self, xs: np.ndarray) -> None:
+        """Switch to the power-of-ten grid before folding a batch that would overflow fine_keys.
+
+        Any set of more than fine_keys of the table's values certifies the start level (see
+        :func:`scanner.engines.grid.start_level`), so a spread subset of them is enough.
+        """
+        import pandas as pd
+        f = self.plan.fine_keys
+        new = pd.unique(xs)
+        if new.size + self.stats.n_bins <= f:
+            return
+        vals = np.union1d(new, self.stats.key)
+        if vals.size <= f:
+            return
+        if vals.size > 4 * f:
+            vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
+        self.level = grid.start_level(vals, f)
+        self.grid = grid.power_grid(self.level)
+        self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
+        self.state = "fine"
 
     def add(self, part: BinnedStats) -> None:
         self.stats = self.stats.merge(part)
         f = self.plan.fine_keys
-        if self.state == "exact" and self.stats.distinct_values() > f:
-            vals = np.unique(self.stats.key)
-            self.level = grid.start_level(vals, f)
-            self.grid = grid.power_grid(self.level)
-            self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
-            self.state = "fine"
         while self.state == "fine" and self.stats.distinct_values() > f:
             self.level += 1
             self.grid = grid.power_grid(self.level)

@@ -131,7 +131,7 @@ def bin_spark(table, plan: BinPlan, progress=None) -> BinResult:
     else:
         sel.append(F.lit(-1).alias("period"))
     sel.append(F.lit(-1).alias("half"))
-    base = df.select(*sel)
+    base = df.select(*sel).cache()     # read once; every aggregation below starts from here
     cols = [f"c{j}" for j in range(len(plan.columns))]
     # Accounting and treatment checks in one job.
     checks = [F.count(F.lit(1)).alias("rows")]
@@ -150,10 +150,13 @@ def bin_spark(table, plan: BinPlan, progress=None) -> BinResult:
                              f"seen: {', '.join(f'{v:g}' for v in seen if v is not None)}. Recode it "
                              "to 0/1, or list it under covariates.")
     stats = {}
-    for i, r in enumerate(plan.running):
-        stats[r] = _bin_one(F, base, f"x{i}", r, cols, plan).validate()
-        if progress:
-            progress(0)
+    try:
+        for i, r in enumerate(plan.running):
+            stats[r] = _bin_one(F, base, f"x{i}", r, cols, plan).validate()
+            if progress:
+                progress(0)
+    finally:
+        base.unpersist()
     missing = {r: int(acct[f"miss{i}"] or 0) for i, r in enumerate(plan.running)}
     nonfinite = {r: int(acct[f"inf{i}"] or 0) for i, r in enumerate(plan.running)}
     return BinResult(stats, int(acct["rows"]), missing, nonfinite)
