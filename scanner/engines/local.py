@@ -199,36 +199,31 @@ class Accumulator:
     def key(self, x: np.ndarray, ok: np.ndarray):
         """Row keys for the current state, and whether they are integers (dense codes)."""
         if self.state == "exact":
-            self._maybe_leave_exact(x[ok])
-        if self.state == "exact":
             return x, False
         return np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0), True
 
-    def _maybe_leave_exact(self, xs: np.ndarray) -> None:
-        """Switch to the power-of-ten grid before folding a batch that would overflow fine_keys.
-
-        Any set of more than fine_keys of the table's values certifies the start level (see
-        :func:`scanner.engines.grid.start_level`), so a spread subset of them is enough.
-        """
-        import pandas as pd
-        f = self.plan.fine_keys
-        new = pd.unique(xs)
-        if new.size + self.stats.n_bins <= f:
-            return
-        vals = np.union1d(new, self.stats.key)
-        if vals.size <= f:
-            return
-        if vals.size > 4 * f:
-            vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
-        self.level = grid.start_level(vals, f)
-        self.grid = grid.power_grid(self.level)
-        self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
-        self.state = "fine"
+    def _distinct(self, st: BinnedStats) -> int:
+        # Bins are unique per key unless period/half keys split them.
+        return st.distinct_values() if st.keyed else st.n_bins
 
     def add(self, part: BinnedStats) -> None:
-        self.stats = self.stats.merge(part)
+        """Add one batch's bins, leaving exact bins first if the batch would overflow them."""
         f = self.plan.fine_keys
-        while self.state == "fine" and self.stats.distinct_values() > f:
+        if self.state == "exact" and self._distinct(part) + self._distinct(self.stats) > f:
+            vals = np.union1d(part.key, self.stats.key)
+            if vals.size > f:
+                # Any set of more than fine_keys of the table's values certifies the start
+                # level (grid.start_level), so a spread subset of them is enough.
+                if vals.size > 4 * f:
+                    vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
+                self.level = grid.start_level(vals, f)
+                self.grid = grid.power_grid(self.level)
+                # Exact keys are the raw values, so keying them is keying the rows.
+                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
+                part = regroup(part, grid.keys(part.key, *self.grid), *self.grid)
+                self.state = "fine"
+        self.stats = self.stats.merge(part)
+        while self.state == "fine" and self._distinct(self.stats) > f:
             self.level += 1
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(self.stats.key.astype(np.int64), 10),
