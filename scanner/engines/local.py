@@ -2,8 +2,9 @@
 
 Streaming.  The table is read batch by batch (``plan.batch_rows`` rows at most; Parquet files
 and folders, CSV and Feather through ``pyarrow.dataset``, reading only the columns the plan
-needs).  Each batch is folded into per-bin sums and added to the running totals, then dropped,
-so peak memory is one batch plus the bins — never the table.
+needs, two batches of read-ahead).  Each batch is folded into per-bin sums and added to the
+running totals, then dropped, so peak memory is a few batches plus at most ``plan.fine_keys``
+bins per running variable (times the period and half keys present) — never the table.
 
 Bin grid, without re-reading the data.  Our "first look" is the exact support itself: while a
 running variable has at most ``plan.fine_keys`` distinct values its bins are exact (lossless);
@@ -18,7 +19,10 @@ batch size or a Spark partitioning cannot change the grid.  An outlier costs one
 Speed.  Per batch every tracked column is turned into float64 once; the sums for all columns are
 one sparse one-hot product per running variable (scipy, a single pass in C), with a plain
 ``np.bincount`` path kept for checking (``plan.kernel = "bincount"``).  Group keys use hash
-factorisation (exact values) or dense offsets (grid keys) instead of sorting.
+factorisation (exact values) or dense offsets (grid keys) instead of sorting.  There is no
+compiled kernel: the sparse product already runs the scatter-add loop in C, and a compiled loop
+would only pay off if it fused all running variables into one pass over the rows (open; the
+measured cost against plain reading is in ``benchmarks/results/scale.md``).
 """
 from __future__ import annotations
 
@@ -121,13 +125,14 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
     return g, np.asarray(uniq), nb
 
 
-def fold(running: str, key: np.ndarray, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
-         template: BinnedStats, dense: bool, kernel: str = "sparse") -> BinnedStats:
+def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
+         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
     """Per-bin sums of one batch for rows with ``ok`` (finite running variable).
 
-    ``extra`` is None or (period, half) per row; ``template`` gives layout, kind and grid.
+    ``codes`` is ``_codes(key, ok, ...)``; ``extra`` is None or (period, half) per row;
+    ``template`` gives layout, kind and grid.
     """
-    g, ukey, nb = _codes(key, ok, dense)
+    g, ukey, nb = codes
     if nb == 0:
         return template
     if extra is None:
@@ -206,11 +211,17 @@ class Accumulator:
         # Bins are unique per key unless period/half keys split them.
         return st.distinct_values() if st.keyed else st.n_bins
 
-    def add(self, part: BinnedStats) -> None:
-        """Add one batch's bins, leaving exact bins first if the batch would overflow them."""
+    def codes(self, x: np.ndarray, ok: np.ndarray):
+        """Group codes of a batch's rows, leaving exact bins first if the batch would overflow.
+
+        Checked before folding, so a batch of continuous values never becomes a batch-sized
+        set of exact bins.
+        """
+        key, dense = self.key(x, ok)
+        out = _codes(key, ok, dense)
         f = self.plan.fine_keys
-        if self.state == "exact" and self._distinct(part) + self._distinct(self.stats) > f:
-            vals = np.union1d(part.key, self.stats.key)
+        if self.state == "exact" and out[2] + self._distinct(self.stats) > f:
+            vals = np.union1d(out[1], self.stats.key)
             if vals.size > f:
                 # Any set of more than fine_keys of the table's values certifies the start
                 # level (grid.start_level), so a spread subset of them is enough.
@@ -220,10 +231,15 @@ class Accumulator:
                 self.grid = grid.power_grid(self.level)
                 # Exact keys are the raw values, so keying them is keying the rows.
                 self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
-                part = regroup(part, grid.keys(part.key, *self.grid), *self.grid)
                 self.state = "fine"
+                key, dense = self.key(x, ok)
+                out = _codes(key, ok, dense)
+        return out
+
+    def add(self, part: BinnedStats) -> None:
+        """Add one batch's bins; coarsen the power-of-ten grid while it holds too many."""
         self.stats = self.stats.merge(part)
-        while self.state == "fine" and self._distinct(self.stats) > f:
+        while self.state == "fine" and self._distinct(self.stats) > self.plan.fine_keys:
             self.level += 1
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(self.stats.key.astype(np.int64), 10),
@@ -272,9 +288,9 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             missing[r] += int(isn.sum())
             nonfinite[r] += int(m - ok.sum() - isn.sum())
             a = acc[r]
-            key, dense = a.key(x, ok)
+            codes = a.codes(x, ok)
             empty = a.stats.restrict(np.zeros(a.stats.n_bins, bool))
-            a.add(fold(r, key, x, ok, extra, packed, empty, dense, plan.kernel))
+            a.add(fold(r, codes, x, ok, extra, packed, empty, plan.kernel))
         rows += m
         if progress:
             progress(m)
