@@ -17,7 +17,7 @@ import numpy as np
 from scipy import stats as sps
 
 from scanner.bins import BinnedStats
-from scanner.engines.local import fold
+from scanner.engines.local import exact_bins
 from scanner.estimate import side_data
 from scanner.estimate.inference import fuzzy_inference
 from scanner.estimate.mse import mse_bandwidth
@@ -34,11 +34,7 @@ SIGMA = 0.1295
 
 def to_bins(x, cols: dict, pairs=()) -> BinnedStats:
     """Exact-support BinnedStats of rows ``x`` with tracked columns ``cols`` (engine fold)."""
-    names = tuple(cols)
-    tmpl = BinnedStats.empty("x", names, pairs)
-    m = x.size
-    return fold("x", x, x, np.full(m, -1, np.int32), np.full(m, -1, np.int8),
-                {k: np.asarray(v, float) for k, v in cols.items()}, pairs, tmpl)
+    return exact_bins("x", x, cols, pairs)
 
 
 def draw_cct(model: str, rng, n: int = 500):

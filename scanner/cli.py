@@ -103,12 +103,17 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
     if top is not None:
         spec = replace(spec, top=top)
     console = Console(stderr=False)
-    if quiet:
-        result = scan(spec, data)
-    else:
-        bar, tick = _progress(console)
-        with bar:
-            result = scan(spec, data, progress=tick)
+    session = _spark_session(spec) if data is None else None
+    try:
+        if quiet:
+            result = scan(spec, data)
+        else:
+            bar, tick = _progress(console)
+            with bar:
+                result = scan(spec, data, progress=tick)
+    finally:
+        if session is not None:
+            session.stop()
     write_outputs(result, out, force=force, protect=protect)
     for note in result.notes:
         if note.startswith("warning:"):
@@ -118,6 +123,18 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
         console.print(f"[dim]{CAUTION}[/]")
         console.print(f"Wrote {out}/results.json, candidates.csv, report.html, results.md and bins.csv")
     return 0
+
+
+def _spark_session(spec):
+    """``data.engine = "spark"`` from the command line: start a local[2] session (the library
+    itself never starts one).  Returns the session to stop, or None."""
+    if spec.engine != "spark":
+        return None
+    from .engines.spark import _pyspark, local_session   # pyspark only on this branch
+    SparkSession = _pyspark()[0]
+    if SparkSession.getActiveSession() is not None:
+        return None
+    return local_session("local[2]")
 
 
 def _demo(args) -> int:

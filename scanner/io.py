@@ -131,7 +131,9 @@ def open_table(source, name: str | None = None, text_columns=()) -> Table:
 
         def batches(cols, rows, dataset=dataset):
             try:
-                for b in dataset.to_batches(columns=cols, batch_size=rows):
+                # Bounded read-ahead keeps peak memory at a few batches, whatever the file size.
+                for b in dataset.to_batches(columns=cols, batch_size=rows, batch_readahead=2,
+                                            fragment_readahead=1):
                     yield b
             except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
                 clear = csv_conversion_message(exc, path, columns)

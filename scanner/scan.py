@@ -148,13 +148,13 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     plan = BinPlan(running=tuple(r.column for r in spec.running), columns=columns,
                    treatments=spec.treatments, pairs=pairs,
                    bin_width={r.column: r.bin_width for r in spec.running if r.bin_width},
-                   date=spec.date, split_seed=None)
+                   date=spec.date, split_seed=None, batch_rows=spec.batch_rows)
     deduped = no_unit = 0
+    if spec.keep == "first" and engine == "spark":
+        raise InputError(f"{spec.path or '<spec>'}: keep = 'first' is not available with the Spark "
+                         "engine; deduplicate the DataFrame first (e.g. a window over data.unit).")
     if spec.keep == "first" and engine == "local":
         table, deduped, no_unit = keep_first(table, spec, plan.needed)
-    elif spec.keep == "first":
-        notes.append("warning: keep = 'first' is applied by the local engine only; with the "
-                     f"{engine} engine de-duplicate units before the scan.")
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
     binned = bin_table(table, plan, engine=engine, progress=tick)
     for r in spec.running:

@@ -1,18 +1,39 @@
-"""Local engine: stream record batches and fold them into BinnedStats with numpy.
+"""Local engine: stream record batches and fold them into BinnedStats with numpy/scipy.
 
-Bin grid: a running variable starts with exact-support bins.  As soon as the rows seen so far
-hold more than ``plan.max_exact`` distinct values, the grid is settled from those rows — a
-1-2-5 width of about 1/``target_bins`` of their central 98% range, origin 0 — the exact bins
-accumulated so far are re-binned onto it (their sums stay exact), and every later batch goes
-straight onto that grid.  The data are never re-read; peak memory is one batch plus the bins.
+Streaming.  The table is read batch by batch (``plan.batch_rows`` rows at most; Parquet files
+and folders, CSV and Feather through ``pyarrow.dataset``, reading only the columns the plan
+needs, two batches of read-ahead).  Each batch is folded into per-bin sums and added to the
+running totals, then dropped, so peak memory is a few batches plus at most ``plan.fine_keys``
+bins per running variable (times the period and half keys present) — never the table.
+
+Bin grid, without re-reading the data.  Our "first look" is the exact support itself: while a
+running variable has at most ``plan.fine_keys`` distinct values its bins are exact (lossless);
+past that, rows go onto a power-of-ten grid that is made ten times coarser whenever it holds
+more than ``plan.fine_keys`` bins (regrouping keys is exact).  At the end a variable with at
+most ``plan.max_exact`` distinct values keeps exact bins, and any other gets the finest 1-2-5
+width with at most ``plan.max_bins`` occupied bins (:mod:`scanner.engines.grid`).  We chose this
+over a sample of the first rows or Parquet min/max statistics because the result depends only
+on the set of values: a table sorted by the running variable, a stray outlier, a different
+batch size or a Spark partitioning cannot change the grid.  An outlier costs one bin.
+
+Speed.  Per batch every tracked column is turned into float64 once; the sums for all columns are
+one sparse one-hot product per running variable (scipy, a single pass in C), with a plain
+``np.bincount`` path kept for checking (``plan.kernel = "bincount"``).  Group keys use hash
+factorisation (exact values) or dense offsets (grid keys) instead of sorting.  There is no
+compiled kernel: the sparse product already runs the scatter-add loop in C, and a compiled loop
+would only pay off if it fused all running variables into one pass over the rows (open; the
+measured cost against plain reading is in ``benchmarks/results/scale.md``).
 """
 from __future__ import annotations
+
+from dataclasses import replace
 
 import numpy as np
 
 from ..bins import BinnedStats
 from ..io import check_binary, numeric, period_codes
-from .plan import BinPlan, BinResult, nice_width, weighted_quantile
+from . import grid
+from .plan import BinPlan, BinResult
 
 
 def half_split(index: np.ndarray, seed: int) -> np.ndarray:
@@ -25,111 +46,278 @@ def half_split(index: np.ndarray, seed: int) -> np.ndarray:
     return (z & np.uint64(1)).astype(np.int8)
 
 
-def fold(running: str, key: np.ndarray, x: np.ndarray, period: np.ndarray, half: np.ndarray,
-         cols: dict, pairs, template: BinnedStats) -> BinnedStats:
-    """Group rows (already restricted to a finite running variable) into bins of ``template``'s kind."""
-    if key.size == 0:
-        return template
-    ukey, kinv = np.unique(key, return_inverse=True)
-    if (period >= 0).any() or (half >= 0).any():
-        uper, pinv = np.unique(period, return_inverse=True)
-        comp = (kinv.astype(np.int64) * len(uper) + pinv) * 3 + (half.astype(np.int64) + 1)
-        ucomp, g = np.unique(comp, return_inverse=True)
-        bkey = ukey[ucomp // 3 // len(uper)]
-        bper = uper[(ucomp // 3) % len(uper)].astype(np.int32)
-        bhalf = (ucomp % 3 - 1).astype(np.int8)
-    else:
-        g = kinv
-        bkey = ukey
-        bper = np.full(ukey.size, -1, np.int32)
-        bhalf = np.full(ukey.size, -1, np.int8)
-    nb = bkey.size
-    n = np.bincount(g, minlength=nb).astype(np.int64)
-    sx = np.bincount(g, weights=x, minlength=nb)
-    sxx = np.bincount(g, weights=x * x, minlength=nb)
-    k = len(template.columns)
-    cnt = np.zeros((nb, k), np.int64)
-    s1 = np.zeros((nb, k))
-    s2 = np.zeros((nb, k))
-    present = {}
-    for j, name in enumerate(template.columns):
-        v = cols[name]
-        ok = np.isfinite(v)
-        present[name] = ok
-        if ok.all():
-            gj, vj = g, v
+# ---------------------------------------------------------------------- per-batch columns
+class Columns:
+    """The tracked columns of one batch laid out as one matrix of per-row addends.
+
+    ``layout`` maps a BinnedStats field to (column of ``mat`` or None, fallback) so that the
+    per-bin sums of every field are columns of ``G @ mat`` for the one-hot bin matrix ``G``.
+    """
+
+    def __init__(self, cols: dict, names, pairs, binary):
+        m = len(next(iter(cols.values()))) if cols else 0
+        parts, self.index = [], {}
+
+        def add(tag, v):
+            self.index[tag] = len(parts)
+            parts.append(v)
+        present, zero = {}, {}
+        for name in names:
+            v = cols[name]
+            ok = np.isfinite(v)
+            full = bool(ok.all())
+            present[name] = None if full else ok.astype(np.float64)
+            z = v if full else np.where(ok, v, 0.0)
+            zero[name] = z
+            add(("s1", name), z)
+            if name not in binary:          # a 0/1 column's Σy² is its Σy
+                add(("s2", name), z * z)
+            if not full:
+                add(("cnt", name), present[name])
+        for a, b in pairs:
+            pa_, pb_ = present[a], present[b]
+            za, zb = zero[a], zero[b]
+            add(("pab", a, b), za * zb)
+            if pa_ is None and pb_ is None:
+                continue
+            both = (pa_ if pa_ is not None else 1.0) * (pb_ if pb_ is not None else 1.0)
+            add(("pn", a, b), np.broadcast_to(both, (m,)).astype(np.float64))
+            add(("pa", a, b), za * (pb_ if pb_ is not None else 1.0))
+            add(("pb", a, b), zb * (pa_ if pa_ is not None else 1.0))
+            add(("paa", a, b), za * za * (pb_ if pb_ is not None else 1.0))
+            add(("pbb", a, b), zb * zb * (pa_ if pa_ is not None else 1.0))
+        self.mat = np.column_stack(parts) if parts else np.zeros((m, 0))
+        self.names, self.pairs, self.binary = tuple(names), tuple(pairs), set(binary)
+
+
+def _segment_sums(g: np.ndarray, nb: int, mat: np.ndarray, kernel: str) -> np.ndarray:
+    """Column sums of ``mat`` per group ``g`` (0..nb-1); rows with g == nb are dropped."""
+    if mat.shape[1] == 0:
+        return np.zeros((nb, 0))
+    if kernel == "bincount":
+        return np.column_stack([np.bincount(g, weights=mat[:, j], minlength=nb + 1)[:nb]
+                                for j in range(mat.shape[1])])
+    import scipy.sparse as sp
+    m = g.size
+    one_hot = sp.csc_matrix((np.ones(m), g, np.arange(m + 1)), shape=(nb + 1, m))
+    return np.asarray(one_hot @ mat)[:nb]
+
+
+def _decimal_codes(x: np.ndarray):
+    """Integer codes k with x == k / 10^d exactly for a short decimal support (d ≤ 3), or None.
+
+    Registry values are mostly integers or recorded to a fixed number of decimals; for those,
+    dense integer offsets replace hashing the floats (several times faster).
+    """
+    if x.size == 0 or not np.isfinite(x).all():
+        return None
+    for d in range(4):
+        s = 10.0 ** d
+        k = np.rint(x * s)
+        if np.abs(k).max() < 2 ** 52 and ((k / s) == x).all():
+            return k.astype(np.int64), s
+    return None
+
+
+def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
+    """Group codes 0..nb-1 for rows with ``ok``, nb for the rest; and the key of each group."""
+    import pandas as pd
+    kk = key[ok]
+    if not dense:
+        dec = _decimal_codes(kk)
+        if dec is not None and int(dec[0].max()) - int(dec[0].min()) <= 4 * dec[0].size + 1024:
+            g, uniq, nb = _codes(dec[0], np.ones(dec[0].size, bool), True)
+            out = np.full(key.size, nb, np.int64)
+            out[ok] = g
+            return out, uniq / dec[1], nb
+    if dense and kk.size:
+        lo, hi = int(kk.min()), int(kk.max())
+        if hi - lo <= 4 * kk.size + 1024:
+            used = np.zeros(hi - lo + 1, bool)
+            used[kk - lo] = True
+            uniq = np.flatnonzero(used) + lo
+            lookup = np.cumsum(used) - 1
+            codes = lookup[kk - lo]
         else:
-            gj, vj = g[ok], v[ok]
-        cnt[:, j] = np.bincount(gj, minlength=nb)
-        s1[:, j] = np.bincount(gj, weights=vj, minlength=nb)
-        s2[:, j] = np.bincount(gj, weights=vj * vj, minlength=nb)
-    p = len(pairs)
-    pf = {f: np.zeros((nb, p)) for f in ("pa", "pb", "paa", "pbb", "pab")}
-    pn = np.zeros((nb, p), np.int64)
-    for q, (a, b) in enumerate(pairs):
-        ok = present[a] & present[b]
-        ga, va, vb = g[ok], cols[a][ok], cols[b][ok]
-        pn[:, q] = np.bincount(ga, minlength=nb)
-        pf["pa"][:, q] = np.bincount(ga, weights=va, minlength=nb)
-        pf["pb"][:, q] = np.bincount(ga, weights=vb, minlength=nb)
-        pf["paa"][:, q] = np.bincount(ga, weights=va * va, minlength=nb)
-        pf["pbb"][:, q] = np.bincount(ga, weights=vb * vb, minlength=nb)
-        pf["pab"][:, q] = np.bincount(ga, weights=va * vb, minlength=nb)
-    out = BinnedStats(running, template.columns, template.kind, template.width, template.origin,
-                      bkey.astype(float), bper, bhalf, n, sx, sxx, cnt, s1, s2,
-                      template.pairs, pn, **pf)
-    return out
+            codes, uniq = pd.factorize(kk)
+    else:
+        codes, uniq = pd.factorize(kk)
+    nb = len(uniq)
+    g = np.full(key.size, nb, np.int64)
+    g[ok] = codes
+    return g, np.asarray(uniq), nb
 
 
-def settle_grid(stats: BinnedStats, target_bins: int) -> BinnedStats:
-    """Choose a fixed-width grid from exact bins seen so far and re-bin them onto it."""
-    lo, hi = weighted_quantile(stats.key, stats.n, [0.01, 0.99])
-    span = hi - lo
-    if not np.isfinite(span) or span <= 0:
-        span = float(np.nanmax(stats.key) - np.nanmin(stats.key)) or 1.0
-    return stats.to_width(nice_width(span, target_bins), origin=0.0)
+def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
+         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
+    """Per-bin sums of one batch for rows with ``ok`` (finite running variable).
+
+    ``codes`` is ``_codes(key, ok, ...)``; ``extra`` is None or (period, half) per row;
+    ``template`` gives layout, kind and grid.
+    """
+    g, ukey, nb = codes
+    if nb == 0:
+        return template
+    if extra is None:
+        bkey = ukey.astype(float)
+        bper = np.full(nb, -1, np.int32)
+        bhalf = np.full(nb, -1, np.int8)
+    else:
+        period, half = extra
+        ext = (period.astype(np.int64) + 1) * 3 + (half.astype(np.int64) + 1)
+        comp = np.where(g < nb, g * (int(ext.max()) + 1) + ext, -1)
+        g, ucomp, nb = _codes(comp, g < nb, True)
+        span = int(ext.max()) + 1
+        bkey = ukey[ucomp // span].astype(float)
+        bper = ((ucomp % span) // 3 - 1).astype(np.int32)
+        bhalf = ((ucomp % span) % 3 - 1).astype(np.int8)
+    xs = np.where(ok, x, 0.0)
+    n = np.bincount(g, minlength=nb + 1)[:nb].astype(np.int64)
+    sx = np.bincount(g, weights=xs, minlength=nb + 1)[:nb]
+    sxx = np.bincount(g, weights=xs * xs, minlength=nb + 1)[:nb]
+    S = _segment_sums(g, nb, batch.mat, kernel)
+    idx = batch.index
+    k, p = len(template.columns), len(template.pairs)
+    cnt = np.empty((nb, k), np.int64)
+    s1 = np.empty((nb, k))
+    s2 = np.empty((nb, k))
+    for j, name in enumerate(template.columns):
+        s1[:, j] = S[:, idx[("s1", name)]]
+        s2[:, j] = S[:, idx[("s2", name)]] if ("s2", name) in idx else s1[:, j]
+        cnt[:, j] = np.rint(S[:, idx[("cnt", name)]]) if ("cnt", name) in idx else n
+    pf = {f: np.empty((nb, p)) for f in ("pa", "pb", "paa", "pbb", "pab")}
+    pn = np.empty((nb, p), np.int64)
+    for q, (a, b) in enumerate(template.pairs):
+        pf["pab"][:, q] = S[:, idx[("pab", a, b)]]
+        if ("pn", a, b) in idx:
+            pn[:, q] = np.rint(S[:, idx[("pn", a, b)]])
+            for f in ("pa", "pb", "paa", "pbb"):
+                pf[f][:, q] = S[:, idx[(f, a, b)]]
+        else:
+            ja, jb = template.col(a), template.col(b)
+            pn[:, q] = n
+            pf["pa"][:, q], pf["pb"][:, q] = s1[:, ja], s1[:, jb]
+            pf["paa"][:, q], pf["pbb"][:, q] = s2[:, ja], s2[:, jb]
+    return replace(template, key=bkey, period=bper, half=bhalf, n=n, sx=sx, sxx=sxx,
+                   cnt=cnt, s1=s1, s2=s2, pn=pn, **pf)
+
+
+# ---------------------------------------------------------------------- grid state
+def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int) -> BinnedStats:
+    """``stats`` with bins re-keyed by ``key`` on the grid (p, d); sums add up exactly."""
+    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0)
+    return base._grouped(key.astype(float), stats.period, stats.half, stats._arrays())
+
+
+class Accumulator:
+    """Running totals for one running variable and the state of its grid."""
+
+    def __init__(self, running: str, plan: BinPlan):
+        self.plan = plan
+        w = plan.bin_width.get(running)
+        if w:
+            self.state, self.grid = "user", grid.grid_of_width(float(w))
+            self.stats = BinnedStats.empty(running, plan.columns, plan.pairs, "width",
+                                           grid.width_of(*self.grid), 0.0)
+        else:
+            self.state, self.grid = "exact", None
+            self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
+        self.level = None
+
+    def key(self, x: np.ndarray, ok: np.ndarray):
+        """Row keys for the current state, and whether they are integers (dense codes)."""
+        if self.state == "exact":
+            return x, False
+        return np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0), True
+
+    def _distinct(self, st: BinnedStats) -> int:
+        # Bins are unique per key unless period/half keys split them.
+        return st.distinct_values() if st.keyed else st.n_bins
+
+    def codes(self, x: np.ndarray, ok: np.ndarray):
+        """Group codes of a batch's rows, leaving exact bins first if the batch would overflow.
+
+        Checked before folding, so a batch of continuous values never becomes a batch-sized
+        set of exact bins.
+        """
+        key, dense = self.key(x, ok)
+        out = _codes(key, ok, dense)
+        f = self.plan.fine_keys
+        if self.state == "exact" and out[2] + self._distinct(self.stats) > f:
+            vals = np.union1d(out[1], self.stats.key)
+            if vals.size > f:
+                # Any set of more than fine_keys of the table's values certifies the start
+                # level (grid.start_level), so a spread subset of them is enough.
+                if vals.size > 4 * f:
+                    vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
+                self.level = grid.start_level(vals, f)
+                self.grid = grid.power_grid(self.level)
+                # Exact keys are the raw values, so keying them is keying the rows.
+                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
+                self.state = "fine"
+                key, dense = self.key(x, ok)
+                out = _codes(key, ok, dense)
+        return out
+
+    def add(self, part: BinnedStats) -> None:
+        """Add one batch's bins; coarsen the power-of-ten grid while it holds too many."""
+        self.stats = self.stats.merge(part)
+        while self.state == "fine" and self._distinct(self.stats) > self.plan.fine_keys:
+            self.level += 1
+            self.grid = grid.power_grid(self.level)
+            self.stats = regroup(self.stats, np.floor_divide(self.stats.key.astype(np.int64), 10),
+                                 *self.grid)
+
+    def finish(self) -> BinnedStats:
+        st = self.stats
+        if self.state == "user" or st.n_bins == 0:
+            return st
+        if self.state == "exact":
+            if st.distinct_values() <= self.plan.max_exact:
+                return st
+            m, e = grid.final_grid(np.unique(st.key), None, self.plan.max_bins)
+            g = grid.series_grid(m, e)
+            return regroup(st, grid.keys(st.key, *g), *g)
+        m, e = grid.final_grid(np.unique(st.key), self.level, self.plan.max_bins)
+        r = m * 10 ** (e - self.level)
+        return regroup(st, np.floor_divide(st.key.astype(np.int64), r), *grid.series_grid(m, e))
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
-    """One streaming pass over ``table`` (a :class:`scanner.io.Table`) with numpy."""
-    acc = {}
-    for r in plan.running:
-        w = plan.bin_width.get(r)
-        acc[r] = (BinnedStats.empty(r, plan.columns, plan.pairs, "width", float(w), 0.0)
-                  if w else BinnedStats.empty(r, plan.columns, plan.pairs))
+    """One streaming pass over ``table`` (a :class:`scanner.io.Table`)."""
+    acc = {r: Accumulator(r, plan) for r in plan.running}
     missing = dict.fromkeys(plan.running, 0)
     nonfinite = dict.fromkeys(plan.running, 0)
     rows = 0
-    for batch in table.batches(plan.needed):
+    for batch in table.batches(plan.needed, plan.batch_rows):
         m = batch.num_rows
         if m == 0:
             continue
         cols = {c: numeric(batch, c, table.name, _role(c, plan)) for c in plan.columns}
         for t in plan.treatments:
             check_binary(cols[t], t, table.name)
-        period = (period_codes(batch, plan.date, table.name) if plan.date
-                  else np.full(m, -1, np.int32))
-        half = (half_split(np.arange(rows, rows + m), plan.split_seed)
-                if plan.split_seed is not None else np.full(m, -1, np.int8))
+        packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
+        extra = None
+        if plan.date or plan.split_seed is not None:
+            period = (period_codes(batch, plan.date, table.name) if plan.date
+                      else np.full(m, -1, np.int32))
+            half = (half_split(np.arange(rows, rows + m), plan.split_seed)
+                    if plan.split_seed is not None else np.full(m, -1, np.int8))
+            extra = (period, half)
         for r in plan.running:
             x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
+            ok = np.isfinite(x)
             isn = np.isnan(x)
-            fin = np.isfinite(x)
             missing[r] += int(isn.sum())
-            nonfinite[r] += int((~isn & ~fin).sum())
-            xs = x[fin] if not fin.all() else x
-            sub = {c: (v[fin] if not fin.all() else v) for c, v in cols.items()}
-            st = acc[r]
-            key = xs if st.kind == "exact" else np.floor((xs - st.origin) / st.width)
-            part = fold(r, key, xs, period[fin], half[fin], sub, plan.pairs, st.restrict(np.zeros(st.n_bins, bool)))
-            st = st.merge(part)
-            if st.kind == "exact" and st.distinct_values() > plan.max_exact:
-                st = settle_grid(st, plan.target_bins)
-            acc[r] = st
+            nonfinite[r] += int(m - ok.sum() - isn.sum())
+            a = acc[r]
+            codes = a.codes(x, ok)
+            empty = a.stats.restrict(np.zeros(a.stats.n_bins, bool))
+            a.add(fold(r, codes, x, ok, extra, packed, empty, plan.kernel))
         rows += m
         if progress:
             progress(m)
-    return BinResult({r: s.validate() for r, s in acc.items()}, rows, missing, nonfinite)
+    return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
 
 
 def _role(column: str, plan: BinPlan) -> str:
@@ -138,3 +326,23 @@ def _role(column: str, plan: BinPlan) -> str:
     if column in plan.running:
         return "running variable"
     return "tracked"
+
+
+def exact_bins(running: str, x, cols: dict, pairs=(), period=None, half=None) -> BinnedStats:
+    """Exact-support BinnedStats of rows already in memory (simulations and tests).
+
+    The same fold as the streaming pass, one bin per distinct finite value of ``x``; ``cols``
+    maps tracked column names to row arrays, ``period``/``half`` are optional per-row keys.
+    """
+    x = np.asarray(x, float)
+    ok = np.isfinite(x)
+    names = tuple(cols)
+    template = BinnedStats.empty(running, names, tuple(pairs))
+    packed = Columns({k: np.asarray(v, float) for k, v in cols.items()}, names, tuple(pairs), ())
+    extra = None
+    if period is not None or half is not None:
+        m = x.size
+        extra = (np.full(m, -1, np.int32) if period is None else np.asarray(period, np.int32),
+                 np.full(m, -1, np.int8) if half is None else np.asarray(half, np.int8))
+    # merge() re-groups and sorts the bins by key, as the streaming pass leaves them.
+    return template.merge(fold(running, _codes(x, ok, False), x, ok, extra, packed, template)).validate()

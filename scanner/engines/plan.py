@@ -7,7 +7,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 MAX_EXACT = 5000          # at most this many distinct values → exact-support bins
-TARGET_BINS = 2000        # fixed-width bins: about this many across the central 98% of the data
+MAX_BINS = 5000           # fixed-width bins: the finest 1-2-5 width with at most this many bins
+FINE_KEYS = 20000         # bins held while streaming (exact values, then a power-of-ten grid)
+BATCH_ROWS = 1_000_000    # rows per record batch
 
 
 @dataclass(frozen=True)
@@ -21,6 +23,9 @@ class BinPlan:
     pairs : column pairs that need joint sums (treatment × outcome for fuzzy designs).
     date : date column giving calendar-quarter period keys, or None.
     split_seed : seed of the half-sample key, or None for no split.
+    max_exact, max_bins, fine_keys : grid rule, see :mod:`scanner.engines.grid`.
+    batch_rows : rows per record batch (memory knob; results do not depend on it).
+    kernel : "sparse" (one scipy product per running variable) or "bincount" (plain numpy).
     """
 
     running: tuple[str, ...]
@@ -31,7 +36,10 @@ class BinPlan:
     date: str | None = None
     split_seed: int | None = None
     max_exact: int = MAX_EXACT
-    target_bins: int = TARGET_BINS
+    max_bins: int = MAX_BINS
+    fine_keys: int = FINE_KEYS
+    batch_rows: int = BATCH_ROWS
+    kernel: str = "sparse"
 
     @property
     def needed(self) -> list[str]:

@@ -1,0 +1,119 @@
+"""Shared pieces of the scale benchmarks: a generated Parquet folder, child-process measurement.
+
+The data are invented (simulated registry-like columns, no real setting): running variables
+``r0..`` alternate between an integer score (exact-support bins), a lab value recorded to one
+decimal (exact-support bins) and a continuous score (fixed-width bins); treatments ``t0..`` are
+0/1 with a planted jump at a round cutoff of one running variable each; covariates ``c0..`` are
+smooth, one with 5% missing values.  Files of ``rows_per_file`` rows keep generation memory flat.
+"""
+from __future__ import annotations
+
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+DATA = HERE / "data"
+RESULTS = HERE / "results"
+CUTOFFS = (60.0, 6.5, 0.0)          # per running-variable type: integer, decimal, continuous
+
+
+def running_values(rng, kind: int, n: int) -> np.ndarray:
+    if kind == 0:
+        return rng.integers(18, 100, n).astype(np.int16)
+    if kind == 1:
+        return np.round(rng.normal(6.0, 1.2, n), 1)
+    return rng.normal(0.0, 1.0, n)
+
+
+def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, seed: int = 1,
+             rows_per_file: int = 2_000_000) -> Path:
+    """Write the folder unless it already holds a complete copy (marker file)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    marker = folder / "_complete"
+    if marker.exists():
+        return folder
+    folder.mkdir(parents=True, exist_ok=True)
+    for old in folder.glob("*.parquet"):
+        old.unlink()
+    rng = np.random.default_rng(seed)
+    for i, start in enumerate(range(0, rows, rows_per_file)):
+        m = min(rows_per_file, rows - start)
+        cols = {f"r{j}": running_values(rng, j % 3, m) for j in range(n_running)}
+        for t in range(n_treat):
+            j = t % n_running
+            above = np.asarray(cols[f"r{j}"], float) >= CUTOFFS[j % 3]
+            cols[f"t{t}"] = (rng.random(m) < 0.15 + 0.4 * above).astype(np.int8)
+        for c in range(n_cov):
+            v = rng.normal(0.0, 1.0, m).astype(np.float32)
+            if c == 0:
+                v[rng.random(m) < 0.05] = np.nan
+            cols[f"c{c}"] = v
+        pq.write_table(pa.table(cols), folder / f"part-{i:04d}.parquet", row_group_size=500_000)
+    marker.write_text(f"{rows}\n")
+    return folder
+
+
+def spec_for(folder: Path, n_running: int, n_treat: int, n_cov: int, batch_rows: int = 1_000_000):
+    return {"title": "scale benchmark", "data": {"source": str(folder), "batch_rows": batch_rows},
+            "running": [{"column": f"r{j}"} for j in range(n_running)],
+            "treatments": {"columns": [f"t{t}" for t in range(n_treat)]},
+            "covariates": {"columns": [f"c{c}" for c in range(n_cov)]}}
+
+
+def peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def cpu_seconds() -> float:
+    """User + system CPU time of this process so far (less distorted than wall time on a shared machine)."""
+    u = resource.getrusage(resource.RUSAGE_SELF)
+    return u.ru_utime + u.ru_stime
+
+
+def child(script: Path, *args) -> dict:
+    """Run ``script --child ARGS`` in a fresh interpreter (own peak RSS) and parse its JSON line."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    out = subprocess.run([sys.executable, str(script), "--child", *map(str, args)], env=env,
+                         capture_output=True, text=True, check=False)
+    if out.returncode != 0:
+        raise RuntimeError(out.stderr[-3000:])
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def timed(fn):
+    """(value, wall seconds, CPU seconds) of ``fn()``."""
+    t0, c0 = time.perf_counter(), cpu_seconds()
+    value = fn()
+    return value, time.perf_counter() - t0, cpu_seconds() - c0
+
+
+def write_section(name: str, text: str) -> Path:
+    """Replace this script's section of benchmarks/results/scale.md (other sections stay)."""
+    RESULTS.mkdir(exist_ok=True)
+    path = RESULTS / "scale.md"
+    old = path.read_text() if path.exists() else "# Scale benchmarks\n"
+    start, end = f"<!-- {name} -->", f"<!-- /{name} -->"
+    block = f"{start}\n{text.rstrip()}\n{end}"
+    if start in old:
+        head, rest = old.split(start, 1)
+        new = head + block + rest.split(end, 1)[1]
+    else:
+        new = old.rstrip() + "\n\n" + block + "\n"
+    path.write_text(new)
+    return path
+
+
+def machine() -> str:
+    import platform
+    load = os.getloadavg()[0]
+    return (f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores, "
+            f"load average {load:.1f} at start (the machine was shared with other jobs)")

@@ -1,0 +1,116 @@
+"""Fixed-width bin grids that every engine computes identically, and the rule that settles them.
+
+A grid is a width ``w = p·10^-d`` (``p`` a whole number, ``d`` a whole number of either sign)
+with origin 0.  Bin ``k`` is ``edge(k) <= x < edge(k+1)`` where ``edge(k)`` is the double
+nearest to the exact decimal ``k·p·10^-d`` — computed as ``(k·p)/10^d`` with both factors exact
+doubles, so a cutoff typed as ``6.5`` or ``0.3`` is exactly a bin edge and the rows recorded at
+the cutoff never share a bin with rows below it (plain ``floor(x/w)`` puts 0.3 into the bin
+[0.2, 0.3) because 0.3/0.1 = 2.9999999999999996).  Because edges are defined by exact decimals,
+the edges of a grid ``r`` times coarser are every ``r``-th edge of the finer grid, so regrouping
+keys by integer division gives the same bins as keying the rows afresh.
+
+Rule (see :func:`settle`): a running variable keeps exact-support bins while it has at most
+``fine_keys`` distinct values; beyond that its rows go onto the finest power-of-ten grid on
+which the table occupies at most ``fine_keys`` bins.  At the end, a variable with at most
+``max_exact`` distinct values keeps exact bins; otherwise it gets the finest width of the
+1-2-5 series (a multiple of the power-of-ten grid) that occupies at most ``max_bins`` bins.
+Every step depends only on the set of values in the table — not on row order, batch size or
+engine — so all engines and all batch sizes produce the same bins.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+MAX_DECIMALS = 22          # 10^d is an exact double up to d = 22
+
+
+def grid_of_width(width: float) -> tuple[float, int]:
+    """(p, d) with width = p·10^-d, p whole when the width is a short decimal (user widths)."""
+    for d in range(0, 13):
+        p = width * 10.0 ** d
+        if abs(p - round(p)) <= 1e-9 * max(p, 1.0):
+            return float(round(p)), d
+    return float(width), 0                     # not a short decimal: edges k·width
+
+
+def width_of(p: float, d: int) -> float:
+    return p / 10.0 ** d if d > 0 else p * 10.0 ** (-d)
+
+
+def edges(k: np.ndarray, p: float, d: int) -> np.ndarray:
+    """Left edge of bin ``k`` (k as float64)."""
+    if d > 0:
+        return (k * p) / 10.0 ** d
+    return k * (p * 10.0 ** (-d))
+
+
+def keys(x: np.ndarray, p: float, d: int) -> np.ndarray:
+    """Bin index of each finite ``x`` on the grid (p, d), as int64."""
+    w = width_of(p, d)
+    k = np.floor(x / w)
+    # x/w is correctly rounded, so the first guess is off by at most one bin: fix it against
+    # the exact-decimal edges.
+    k -= edges(k, p, d) > x
+    k += edges(k + 1, p, d) <= x
+    return k.astype(np.int64)
+
+
+def power_grid(e: int) -> tuple[float, int]:
+    """The grid of width 10^e."""
+    return 1.0, -e
+
+
+def series_grid(m: int, e: int) -> tuple[float, int]:
+    """The grid of width m·10^e (m in 1, 2, 5)."""
+    return (float(m), -e) if e < 0 else (float(m * 10 ** e), 0)
+
+
+def occupied(values: np.ndarray, p: float, d: int) -> int:
+    return int(np.unique(keys(values, p, d)).size)
+
+
+def top_level(values: np.ndarray) -> int:
+    """A power of ten above which all values fall into at most three bins."""
+    big = float(np.max(np.abs(values))) if values.size else 1.0
+    return int(math.ceil(math.log10(big))) + 1 if big > 0 else 1
+
+
+def start_level(values: np.ndarray, fine_keys: int) -> int:
+    """First power-of-ten level for a variable whose distinct ``values`` outnumber ``fine_keys``.
+
+    The largest level e at which these values alone occupy more than ``fine_keys`` bins is
+    certainly finer than the table's settled level (more rows never occupy fewer bins), so
+    e + 1 never overshoots it; coarsening from there stops exactly at the settled level.
+    """
+    e = top_level(values)
+    while e > -MAX_DECIMALS and occupied(values, *power_grid(e)) <= fine_keys:
+        e -= 1
+    return e + 1
+
+
+def final_grid(values_or_keys: np.ndarray, level: int | None, max_bins: int) -> tuple[int, int]:
+    """(m, e): the finest 1-2-5 width occupying at most ``max_bins`` bins.
+
+    ``level is None``: ``values_or_keys`` are exact values and any width may be chosen.
+    Otherwise they are keys on the 10^level grid and only multiples of it are considered.
+    """
+    if level is None:
+        # Scan from coarse to fine; stop at the first width that holds too many bins.
+        e = top_level(values_or_keys)
+        best = (5, e)
+        while e > -MAX_DECIMALS:
+            for m in (5, 2, 1):
+                if occupied(values_or_keys, *series_grid(m, e)) > max_bins:
+                    return best
+                best = (m, e)
+            e -= 1
+        return best
+    e = level
+    while True:
+        for m in (1, 2, 5):
+            r = m * 10 ** (e - level)
+            if np.unique(np.floor_divide(values_or_keys.astype(np.int64), r)).size <= max_bins:
+                return m, e
+        e += 1

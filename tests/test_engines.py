@@ -1,0 +1,186 @@
+"""The local engine's streaming pass: batch size, row order and kernel never change the bins."""
+import subprocess
+import sys
+from fractions import Fraction
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from numpy.testing import assert_allclose, assert_array_equal
+
+from scanner.engines import BinPlan, bin_table, grid
+from scanner.errors import InputError
+from scanner.io import open_table
+
+from .conftest import ROOT
+
+EXACT_FIELDS = ("key", "period", "half", "n", "cnt", "pn")
+SUM_FIELDS = ("sx", "sxx", "s1", "s2", "pa", "pb", "paa", "pbb", "pab")
+
+
+def assert_same_stats(a, b):
+    """Counts and keys equal exactly; sums to 1e-9 (only the order of additions differs)."""
+    assert (a.kind, a.n_bins) == (b.kind, b.n_bins)
+    assert a.width == b.width or (np.isnan(a.width) and np.isnan(b.width))
+    for f in EXACT_FIELDS:
+        assert_array_equal(getattr(a, f), getattr(b, f), err_msg=f)
+    for f in SUM_FIELDS:
+        assert_allclose(getattr(a, f), getattr(b, f), rtol=1e-9, atol=1e-9, err_msg=f)
+
+
+def small_table(n=300, seed=5):
+    """Invented rows: a continuous, a decimal-coded and an integer running variable with gaps."""
+    rng = np.random.default_rng(seed)
+    df = pd.DataFrame({
+        "cont": rng.normal(40, 12, n),
+        "lab": np.round(rng.normal(6.5, 1.1, n), 1),
+        "age": rng.integers(18, 90, n).astype(float),
+        "d": (rng.random(n) < 0.4).astype(float),
+        "y": rng.normal(size=n),
+        "z": rng.normal(size=n),
+        "visit": pd.to_datetime("2019-01-01") + pd.to_timedelta(rng.integers(0, 900, n), "D"),
+    })
+    df.loc[::9, "y"] = np.nan
+    df.loc[::13, "cont"] = np.nan
+    df.loc[3, "cont"] = np.inf
+    df.loc[4, "cont"] = 5e6          # an outlier costs one bin
+    return df
+
+
+PLAN = dict(running=("cont", "lab", "age"), columns=("d", "y", "z"), treatments=("d",),
+            pairs=(("d", "y"),), max_exact=40, max_bins=30, fine_keys=60)
+
+
+@pytest.fixture(scope="module")
+def parquet_file(tmp_path_factory):
+    path = tmp_path_factory.mktemp("eng") / "small.parquet"
+    pq.write_table(pa.Table.from_pandas(small_table(), preserve_index=False), path, row_group_size=50)
+    return path
+
+
+@pytest.mark.parametrize("date", [None, "visit"])
+def test_batch_size_does_not_change_bins(parquet_file, date):
+    ref = bin_table(open_table(parquet_file), BinPlan(**PLAN, date=date, batch_rows=100_000))
+    assert ref.stats["cont"].kind == "width" and ref.stats["age"].kind == "width"
+    for rows in (1, 7, 64):
+        got = bin_table(open_table(parquet_file), BinPlan(**PLAN, date=date, batch_rows=rows))
+        assert got.rows_read == ref.rows_read == 300
+        assert got.missing == ref.missing and got.nonfinite == ref.nonfinite
+        for r in PLAN["running"]:
+            assert_same_stats(got.stats[r], ref.stats[r])
+
+
+def test_csv_batches_match_parquet(parquet_file, tmp_path):
+    csv = tmp_path / "small.csv"
+    small_table().drop(columns="visit").to_csv(csv, index=False)
+    plan = BinPlan(**PLAN, batch_rows=16)
+    a = bin_table(open_table(csv), plan)
+    b = bin_table(open_table(parquet_file), plan)
+    for r in PLAN["running"]:
+        assert_same_stats(a.stats[r], b.stats[r])
+
+
+def test_row_order_and_kernel_do_not_change_bins():
+    df = small_table(2000, seed=8)
+    ref = bin_table(open_table(df), BinPlan(**PLAN))
+    sorted_df = df.sort_values("cont", kind="stable")     # sorted extracts are common
+    for frame, kernel in ((sorted_df, "sparse"), (df.sample(frac=1, random_state=3), "bincount")):
+        got = bin_table(open_table(frame), BinPlan(**PLAN, batch_rows=97, kernel=kernel))
+        for r in PLAN["running"]:
+            assert_same_stats(got.stats[r], ref.stats[r])
+
+
+def test_exact_bins_equal_pandas_groupby():
+    # Reference: pandas groupby sums on the raw rows (independent of our binning code).
+    df = small_table(3000, seed=2)
+    st = bin_table(open_table(df), BinPlan(("age",), ("d", "y"), ("d",), (("d", "y"),),
+                                           batch_rows=250)).stats["age"]
+    assert st.kind == "exact"
+    g = df.groupby("age")
+    assert_array_equal(st.key, g.size().index.to_numpy())
+    assert_array_equal(st.n, g.size().to_numpy())
+    assert_array_equal(st.cnt[:, 1], g["y"].count().to_numpy())
+    assert_allclose(st.s1[:, 1], g["y"].sum().to_numpy(), rtol=1e-12)
+    assert_allclose(st.s2[:, 1], g["y"].apply(lambda v: (v ** 2).sum()).to_numpy(), rtol=1e-12)
+    both = df.dropna(subset=["d", "y"]).assign(dy=lambda f: f.d * f.y).groupby("age")
+    assert_allclose(st.pab[:, 0], both["dy"].sum().reindex(st.key, fill_value=0).to_numpy(),
+                    rtol=1e-12, atol=1e-12)
+
+
+def test_grid_keys_equal_exact_rational_floor():
+    # Reference: exact rational arithmetic (Python's fractions) on the decimal edges k·p/10^d.
+    rng = np.random.default_rng(1)
+    x = np.concatenate([[round(v, int(k)) for v, k in zip(rng.normal(0, 50, 400), rng.integers(0, 4, 400))],
+                        [0.3, 0.7, 6.5, -0.3, 2.9, 1e-3, 30.0]])
+    for p, d in ((1.0, 1), (5.0, 2), (2.0, 0), (1.0, -1), (25.0, 1)):
+        got = grid.keys(x, p, d)
+        for xi, k in zip(x, got):
+            exact = Fraction(repr(float(xi))) * 10 ** d / int(p) if d >= 0 else \
+                Fraction(repr(float(xi))) / (int(p) * 10 ** (-d))
+            assert k == exact.__floor__(), (xi, p, d)
+
+
+def test_cutoff_value_opens_its_bin():
+    # 0.3/0.1 is 2.9999999999999996 in doubles; a row recorded at 0.3 belongs to the bin [0.3, 0.4).
+    assert grid.keys(np.array([0.3, 0.29999]), 1.0, 1).tolist() == [3, 2]
+
+
+def test_width_grid_is_finest_series_width_within_max_bins():
+    rng = np.random.default_rng(4)
+    x = rng.uniform(0, 10, 30_000)
+    st = bin_table(open_table(pd.DataFrame({"x": x, "d": 0.0})),
+                   BinPlan(("x",), ("d",), ("d",), batch_rows=3333)).stats["x"]
+    # Reference: the definition itself, evaluated by brute force on the raw values.
+    assert st.kind == "width" and st.width == 0.002
+    assert st.n_bins == np.unique(np.floor(x / 0.002)).size <= 5000
+    assert np.unique(np.floor(x / 0.001)).size > 5000
+
+
+def test_user_bin_width_is_kept():
+    df = small_table(500)
+    st = bin_table(open_table(df), BinPlan(("cont",), ("d",), bin_width={"cont": 2.5})).stats["cont"]
+    assert st.kind == "width" and st.width == 2.5
+    assert_array_equal(st.key, np.unique(np.floor(df.cont[np.isfinite(df.cont)] / 2.5)))
+
+
+def test_unknown_engine_is_an_input_error():
+    with pytest.raises(InputError, match="'spork' is not an engine; use 'local' or 'spark'"):
+        bin_table(open_table(small_table(20)), BinPlan(("age",), ("d",)), engine="spork")
+
+
+def test_pandas_scan_never_imports_pyspark():
+    code = ("import sys, numpy as np, pandas as pd, scanner\n"
+            "rng = np.random.default_rng(0); x = rng.integers(-30, 31, 3000).astype(float)\n"
+            "df = pd.DataFrame({'x': x, 'd': (rng.random(3000) < 0.2 + 0.5 * (x >= 0)).astype(float)})\n"
+            "spec = {'running': [{'column': 'x'}], 'treatments': {'columns': ['d']}}\n"
+            "res = scanner.scan(spec, df)\n"
+            "assert len(res.rows) > 0\n"
+            "print('pyspark' in sys.modules, any(m.startswith('py4j') for m in sys.modules))\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
+                         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["False", "False"]
+
+
+def test_scan_results_do_not_depend_on_batch_rows(tmp_path):
+    df = small_table(600, seed=9)
+    df["d"] = (np.random.default_rng(1).random(600) < 0.2 + 0.6 * (df.age >= 50)).astype(float)
+    path = tmp_path / "t.parquet"
+    df.to_parquet(path)
+    import scanner
+    spec = {"data": {"source": str(path)}, "running": [{"column": "age"}, {"column": "cont"}],
+            "treatments": {"columns": ["d"]}, "covariates": {"columns": ["z"]}}
+    results = []
+    for rows in (1, 50, 1_000_000):
+        spec["data"]["batch_rows"] = rows
+        results.append(scanner.scan(spec).rows)
+    for other in results[1:]:
+        assert len(other) == len(results[0])
+        for a, b in zip(results[0], other):
+            for k, v in a.items():
+                if isinstance(v, float):
+                    assert_allclose(b[k], v, rtol=1e-9, atol=1e-12, err_msg=k)
+                elif not isinstance(v, (list, dict)):
+                    assert b[k] == v, k
