@@ -103,15 +103,16 @@ def test_batch_split_does_not_matter_for_fixed_width_bins(df, cuts, width):
     assert_same_stats(a.stats["x"], b.stats["x"])
 
 
-@pytest.mark.xfail(strict=True, reason="engines/local.py settles the fixed-width grid from the rows "
-                   "seen when the exact-support limit is passed, so the grid depends on the batch "
-                   "split (reported to the issue-7 owner)")
 def test_batch_split_does_not_matter_when_the_grid_is_settled():
+    # The fixed-width grid depends only on the set of values (scanner/engines/grid.py), never on
+    # which rows arrived first.
     df = pd.DataFrame({"x": np.arange(100, dtype=float), "d": 1.0, "y": 1.0})
-    plan = BinPlan(("x",), ("d", "y"), ("d",), (("d", "y"),), max_exact=10, target_bins=7)
-    a = bin_df(df, plan).stats["x"]                     # one batch: grid from all 100 values
-    b = bin_table(split_table(df, [15]), plan).stats["x"]   # grid settled after 15 values
+    plan = BinPlan(("x",), ("d", "y"), ("d",), (("d", "y"),), max_exact=10, max_bins=7, fine_keys=20)
+    a = bin_df(df, plan).stats["x"]                     # one batch
+    b = bin_table(split_table(df, [15]), plan).stats["x"]   # 15 rows, then the rest
+    assert a.kind == b.kind == "width"
     assert a.width == b.width
+    assert_same_stats(a, b)
 
 
 @SETTINGS
