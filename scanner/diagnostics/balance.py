@@ -21,6 +21,7 @@ class BalanceResult:
 
     p_value: float
     covariates: list = field(default_factory=list)   # dicts: name, jump, se, std_jump, p_value
+    method: str = "bonferroni"
 
     def worst(self):
         ok = [c for c in self.covariates if np.isfinite(c["p_value"])]
