@@ -211,7 +211,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
         out.append(f"{c['placebo_exceed']} of {c['placebo_n']} placebo cutoffs away from the line show "
                    f"a jump at least as clear (placebo p = {_fmt_p(c['placebo_p'])}).")
     if c.get("share_compliers") is not None and np.isfinite(c["share_compliers"]) \
-            and (c.get("q_value") or 1) < alpha:
+            and _below(c.get("q_value"), alpha):
         out.append(f"the threshold binds for {100 * c['share_compliers']:.0f}% at the cutoff "
                    f"(always-takers {100 * c['share_always']:.0f}%, never-takers "
                    f"{100 * c['share_never']:.0f}%).")
