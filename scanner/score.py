@@ -185,6 +185,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
         out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
     if "sorting" in fl:
         how = (c.get("density_method") or "density test").replace("_", " ")
+        how = how.replace(" without heaps", " test, heaps' excess removed")
         out.append(f"the density of {c['running']} changes {100 * (c['density_ratio'] - 1):+.0f}% at the "
                    f"cutoff ({how}, p = {_fmt_p(c['density_p'])}): people may be sorting around the line.")
     if "imbalance" in fl and c.get("balance_worst"):

@@ -113,3 +113,22 @@ def test_placebo_p_small_for_real_jump_and_not_for_none():
         assert pl.n_placebos >= 10
         assert (pl.p_value <= 1 / (pl.n_placebos + 1) + 1e-12) == small
         assert all(abs(c) >= 0.1 - 1e-9 for c in pl.cutoffs)   # windows never cross the cutoff
+
+
+def test_outcome_effects_only_behind_the_switch():
+    # Blinded screening (DESIGN.md): outcomes enter through power unless effects are requested.
+    rng = np.random.default_rng(26)
+    n = 20_000
+    x = np.round(rng.uniform(-1, 1, n), 3)
+    d = (rng.random(n) < 0.2 + 0.5 * (x >= 0)).astype(float)
+    y = 0.4 * d + rng.normal(0, 1, n)
+    df = pd.DataFrame({"x": x, "d": d, "y": y})
+    blind = scan(_spec(outcomes={"columns": ["y"]}), data=df)
+    assert blind.rows and all("outcome_effects" not in r for r in blind.rows)
+    assert all(r["power"][0]["outcome"] == "y" for r in blind.rows)
+    spec = _spec(outcomes={"columns": ["y"], "effects": True}, search={"round_numbers": True})
+    rows = [r for r in scan(spec, data=df).rows if r["cutoff"] == 0.0]
+    assert rows and all(r["power"][0]["outcome"] == "y" for r in rows)
+    eff = rows[0]["outcome_effects"][0]
+    assert "effects = true" in eff["label"]
+    assert abs(eff["complier_effect"] - 0.4) < 3 * eff["complier_se"]

@@ -23,14 +23,16 @@ Variance: the influence-function plug-in of docs/methods.md §6, ψ_j = Σ_i ℓ
 F̂(X_i)), V̂ = Σ_j ψ_j² / N², with ℓ the slope weights of the side's fit; the test uses
 ψ_j⁺ − ψ_j⁻.  It is a sum over bins of j (rows of a bin share ψ_j).
 
-Bandwidth and inference (our choices, written down here): one common bandwidth for both sides,
-found on a geometric grid by minimising the sum over the two sides of bias(h)² + V̂(h), with
-bias(h) = f''(c)/6 · Σ_i ℓ_i u_i³, the slope weights applied to the cubic term F'''(c)u³/6 of the
-CDF (sample version, as in CCT 2014's bias correction); f''(c) comes from a quintic fit of F̂ on
-each side within one standard deviation of the cutoff, and h is at most that standard deviation.  With a common bandwidth the leading bias of f̂⁺ and
-f̂⁻ is the same multiple of f''(c) (the two one-sided problems are mirror images), so under the
-null of a smooth density it cancels in f̂⁺ − f̂⁻ and the conventional statistic is centred
-[DERIVED]; this is why the test uses p = 2 with one bandwidth and no explicit bias correction.
+Bandwidth and inference (our choices, written down here): one common bandwidth h for both sides,
+found on a geometric grid (at most one standard deviation of the running variable) by minimising
+the null-hypothesis MSE of f̂⁺ − f̂⁻.  With a common bandwidth the leading h² bias of f̂⁺ and f̂⁻
+is the same multiple of f''(c) (the two one-sided problems are mirror images), so under the null
+of a smooth density it nearly cancels in the difference; the bias used is the sample version —
+the difference's slope weights applied to the cubic and quartic terms of F, f''(c)u³/6 +
+f'''(c)u⁴/24, as in CCT 2014's bias correction — with f'', f''' from one sextic fit of F̂ across
+the cutoff within one standard deviation.  Because the leading bias cancels, the test uses the
+conventional statistic with p = 2 and no explicit bias correction [DERIVED; checked by the size
+simulation in benchmarks/density_size_power.py].
 """
 from __future__ import annotations
 
@@ -40,12 +42,6 @@ from scipy import stats as sps
 from ..bins import BinnedStats
 from ..estimate.kernels import kernel as kernel_fn
 from .density import DensityTest
-
-class StatsKind:
-    @staticmethod
-    def exact(stats):
-        return stats.kind == "exact"
-
 
 MIN_SIDE_POINTS = 4      # a local quadratic CDF fit needs more than p + 1 support points
 
@@ -100,51 +96,6 @@ def _var(n, psi, N):
     return float((n * psi ** 2).sum() / N ** 2)
 
 
-def _pilot_f2(u, n, F, side, reach):
-    """f''(c) = F'''(c) from a weighted quintic fit of F̂ on one side, within ``reach`` of c."""
-    k = side & (np.abs(u) <= reach)
-    if k.sum() < 8:
-        return 0.0
-    t = u[k] / reach
-    coef = np.polynomial.polynomial.polyfit(t, F[k], 5, w=np.sqrt(n[k]))
-    return float(6 * coef[3] / reach ** 3)
-
-
-def _mse_bandwidth(u, n, F, N, left, right, p, kern):
-    """Common h minimising the sum of the two one-sided MSEs of f̂ on a geometric grid.
-
-    Each side's bias is the slope weights applied to the cubic term of F, f''(c)u³/6, with a
-    per-side pilot f''(c) from a quintic fit within one standard deviation of the cutoff.  The
-    grid stops at one standard deviation of the running variable so no window reaches far-away
-    features of the distribution.
-    """
-    mean = (n * u).sum() / N
-    sd = float(np.sqrt(max((n * (u - mean) ** 2).sum() / N, 0.0)))
-    hs = []
-    for side in (left, right):
-        d = np.sort(np.abs(u[side]))
-        if d.size < MIN_SIDE_POINTS + 1:
-            return float("nan")
-        hs.append((d[min(d.size - 1, MIN_SIDE_POINTS + 1)] * 1.01, d[-1]))
-    lo, hi = max(a for a, _ in hs), min(min(b for _, b in hs), sd)
-    if not hi > lo:
-        return float(lo)
-    f2 = [_pilot_f2(u, n, F, s, sd) for s in (left, right)]
-    best, best_h = np.inf, float("nan")
-    for h in np.geomspace(lo, hi, 20):
-        mse = 0.0
-        for side, d2 in zip((left, right), f2):
-            fit = _side_fit(u, n, F, side, h, p, kern)
-            if fit is None:
-                mse = np.inf
-                break
-            f, ell, cubic = fit
-            mse += (d2 / 6 * cubic) ** 2 + _var(n, _psi(n, ell, f), N)
-        if mse < best:
-            best, best_h = mse, float(h)
-    return best_h
-
-
 def _pilot_pooled(u, n, F, reach):
     """f''(c), f'''(c) from one weighted sextic fit of F̂ across the cutoff within ``reach``."""
     k = np.abs(u) <= reach
@@ -154,7 +105,7 @@ def _pilot_pooled(u, n, F, reach):
     return float(6 * coef[3] / reach ** 3), float(24 * coef[4] / reach ** 4)
 
 
-def _mse_bandwidth_diff(u, n, F, N, left, right, p, kern):
+def _mse_bandwidth(u, n, F, N, left, right, p, kern):
     """Common h minimising the null MSE of f̂⁺ − f̂⁻ (bias from the u³ and u⁴ terms of F)."""
     mean = (n * u).sum() / N
     sd = float(np.sqrt(max((n * (u - mean) ** 2).sum() / N, 0.0)))
@@ -196,8 +147,8 @@ def lp_density_test(stats: BinnedStats, cutoff: float, right_closed: bool = True
     stats : BinnedStats of the running variable (only the counts are used).
     cutoff : cutoff value (running-variable units).
     right_closed : rows at the cutoff belong to the right side.
-    bandwidth : common half-width h (running-variable units); default the smaller one-sided
-        MSE-optimal bandwidth (module docstring).
+    bandwidth : common half-width h (running-variable units); default the null-MSE-optimal
+        common bandwidth of the module docstring.
     degree : polynomial degree of the CDF fit (2: local-linear-type density estimate).
     drop : optional boolean mask of bins to leave out (e.g. heaped values).
 
@@ -216,14 +167,14 @@ def lp_density_test(stats: BinnedStats, cutoff: float, right_closed: bool = True
     right = x >= cutoff if right_closed else x > cutoff
     left = ~right
     at = cutoff
-    if right.any() and left.any() and StatsKind.exact(stats):
+    if right.any() and left.any() and stats.kind == "exact":
         at = (x[left].max() + x[right].min()) / 2     # mirror point of the two lattices
     u = x - at
     if left.sum() < MIN_SIDE_POINTS or right.sum() < MIN_SIDE_POINTS:
         return _fail(f"fewer than {MIN_SIDE_POINTS} distinct values on a side")
     h = bandwidth
     if h is None:
-        h = _mse_bandwidth_diff(u, n, F, N, left, right, degree, kernel)
+        h = _mse_bandwidth(u, n, F, N, left, right, degree, kernel)
         if not np.isfinite(h):
             return _fail("no usable bandwidth")
     fl, fr = _side_fit(u, n, F, left, h, degree, kernel), _side_fit(u, n, F, right, h, degree, kernel)

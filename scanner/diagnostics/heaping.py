@@ -91,14 +91,6 @@ def heap_values(tests: list[HeapTest]) -> np.ndarray:
     return np.array([t.value for t in tests if t.is_heap], float)
 
 
-def heap_mask(stats: BinnedStats, values) -> np.ndarray:
-    """Boolean mask over ``stats.pooled()`` bins whose value is one of ``values``."""
-    st = stats.pooled()
-    if len(values) == 0 or st.kind != "exact":
-        return np.zeros(st.n_bins, bool)
-    return np.isin(st.key, np.asarray(values, float))
-
-
 def deheaped(stats: BinnedStats, tests: list[HeapTest]) -> BinnedStats:
     """Pooled bins with each heap's count cut to its neighbours' mean (the excess removed).
 
