@@ -9,7 +9,8 @@ in Frandsen 2017).
 
 A heap is a *round* value (a multiple of 5 × the variable's resolution: 5, 10, 25, ... for
 integers, .0 and .5 for one decimal, and so on) with p < ``HEAP_P`` and at least ``HEAP_RATIO``
-times its neighbours' mean count.  Only exact-support bins are checked: a rounded variable has
+times its neighbours' mean count; the two ends of the support are excluded (a point mass there is
+top or bottom coding, not rounding).  Only exact-support bins are checked: a rounded variable has
 few distinct values and is binned exactly; fixed-width bins cannot show a heap narrower than a bin.
 
 Donut (Barreca, Lindo & Waddell 2016): the jump is re-estimated without the rows at heaped values
@@ -82,7 +83,11 @@ def heap_tests(stats: BinnedStats) -> list[HeapTest]:
     p = sps.binom.sf(n - 1, n + tot, share)
     ratio = np.where(mean > 0, n / np.where(mean > 0, mean, 1), np.inf)
     res = resolution(v)
-    return [HeapTest(float(a), int(b), float(c), float(d), float(e), is_round(a, res))
+    # The two ends of the support are never heaps: a point mass there is top or bottom coding
+    # (censoring), not rounding.
+    lo, hi = v.min(), v.max()
+    return [HeapTest(float(a), int(b), float(c), float(d), float(e),
+                     is_round(a, res) and lo < a < hi)
             for a, b, c, d, e in zip(v, n, mean, ratio, p)]
 
 
