@@ -110,4 +110,4 @@ def test_density_power_fast():
         lp.append(lp_density_test(st, 0.0).p_value < 0.05)
         mc.append(mccrary_test(st, 0.0).p_value < 0.05)
     assert np.mean(mc) >= 0.75
-    assert np.mean(lp) >= 0.45
+    assert np.mean(lp) >= 0.6           # 0.797 over 1,000 reps in the benchmark
