@@ -14,7 +14,8 @@ import numpy as np
 from . import __version__
 from .bins import BinnedStats
 from .candidates import Candidate, declared, round_cutoffs
-from .diagnostics import covariate_balance, heap_near, heap_tests, mccrary_test
+from .diagnostics import covariate_balance
+from .diagnostics.design import design_checks
 from .engines import BinPlan, bin_table
 from .errors import InputError
 from .estimate import fit_jump, side_data
@@ -249,26 +250,14 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
         row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
     row["design"] = _design(fit)
-    key = (cand.running, c, cand.right_closed)
-    if key not in density_cache:
-        density_cache[key] = mccrary_test(stats, c, cand.right_closed)
-    dens = density_cache[key]
-    row.update(density_p=dens.p_value, density_theta=dens.theta, density_ratio=dens.ratio,
-               density_method=dens.method, density_reason=dens.reason)
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
         bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)
-        row.update(balance_p=bal.p_value, balance=bal.covariates, balance_worst=bal.worst())
+        row.update(balance_p=bal.p_value, balance=bal.covariates, balance_worst=bal.worst(),
+                   balance_method=bal.method)
     else:
-        row.update(balance_p=float("nan"), balance=[], balance_worst=None)
-    hkey = ("heaps", cand.running)
-    if hkey not in density_cache:
-        density_cache[hkey] = heap_tests(stats)
-    # A heap matters when it sits within half a bandwidth of the line (Barreca et al. 2016).
-    heap = heap_near(density_cache[hkey], c, h / 2 if np.isfinite(h) else 0.0)
-    row.update(heap_p=heap.p_value if heap else None, heap_ratio=heap.ratio if heap else None,
-               heap_value=heap.value if heap else None)
-    row["placebo_p"] = float("nan")
+        row.update(balance_p=float("nan"), balance=[], balance_worst=None, balance_method=None)
+    row.update(design_checks(stats, cand, spec, fit, d, density_cache))
     return row
 
 

@@ -5,11 +5,13 @@ The composite score (0–100) is a weighted mean of named sub-scores in [0, 1]:
 ============  ======  =====================================================================
 sub-score     weight  definition
 ============  ======  =====================================================================
-strength      0.4     min(1, |jump| / 0.5) × min(1, F / 10)   (F = t² of the first stage)
-density       0.2     g(density_p), g(p) = clip((log10 p + 3) / 2, 0, 1): 1 for p ≥ 0.1, 0 for p ≤ 0.001
-balance       0.2     g(balance_p)
-support       0.2     min(1, log10(min(n_left, n_right)) / 3) × min(1, min distinct values per side / 10)
-stability     0.1     clip((4 − S) / 3, 0, 1): 1 for S ≤ 1, 0 for S ≥ 4 (S defined below)
+strength      0.30    min(1, |jump| / 0.5) × min(1, F / 10)   (F = t² of the first stage)
+density       0.15    g(density_p), g(p) = clip((log10 p + 3) / 2, 0, 1): 1 for p ≥ 0.1, 0 for p ≤ 0.001
+balance       0.15    g(balance_p)
+support       0.10    min(1, log10(min(n_left, n_right)) / 3) × min(1, min distinct values per side / 10)
+placebo       0.10    share of placebo cutoffs whose |t| the real jump beats (1 − placebo_exceed / placebo_n)
+heaping       0.10    0 with the heaping flag, else 1 (only for running variables with heaps)
+stability     0.10    clip((4 − S) / 3, 0, 1): 1 for S ≤ 1, 0 for S ≥ 4 (S defined below)
 ============  ======  =====================================================================
 
 Stability (our rule): for each sensitivity run v (0.5, 0.75, 1.5, 2 × h; donuts dropping the
@@ -20,8 +22,24 @@ SEs from inflating z).  S = max_v z_v.  Flag ``unstable`` when S > 3 and the lar
 also practically large, max_v |τ_v − τ| / |τ| > 0.2.
 
 A sub-score that could not be computed is left out and the weights of the others rescaled.
-Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and then by
-score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
+
+Flags and what they mean (each comes with a plain-words reason):
+
+* ``weak`` — first-stage F below 10 (Staiger & Stock 1997; common practice).
+* ``sorting`` — the density test the design calls for (``density_method``; rule in
+  diagnostics/sorting.py) rejects a smooth density; ``density_q`` < alpha.
+* ``imbalance`` — the covariate balance joint test rejects; ``balance_q`` < alpha.
+* ``heaping`` — a heap within half a bandwidth of the cutoff, or a donut re-estimate without the
+  heaped values that changes the answer (diagnostics/heaping.py).
+* ``coarse`` — fewer than ``MIN_DISTINCT`` distinct running-variable values on a side within the
+  bandwidth.
+* ``thin`` — fewer than ``MIN_SIDE_ROWS`` rows on a side within the bandwidth.
+* ``overlap`` — a stronger cutoff lies inside this candidate's window.
+
+``density_q`` and ``balance_q`` are Benjamini–Hochberg q-values over the scan's contenders (first
+stage q < alpha; see ``design_qvalues``); other candidates keep their p-values but get neither
+flag.  Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and
+then by score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
 candidate tested in the scan.
 """
 from __future__ import annotations
@@ -32,11 +50,12 @@ import numpy as np
 
 from .diagnostics.heaping import HEAP_P, HEAP_RATIO
 
-WEIGHTS = {"strength": 0.4, "density": 0.2, "balance": 0.2, "support": 0.2, "stability": 0.1}
+WEIGHTS = {"strength": 0.30, "density": 0.15, "balance": 0.15, "support": 0.10, "placebo": 0.10,
+           "heaping": 0.10, "stability": 0.10}
 UNSTABLE_Z = 3.0       # our rule, see the table above
 UNSTABLE_REL = 0.2
 VERDICTS = ("usable", "caution", "doubtful", "no jump", "not estimable")
-SERIOUS = {"sorting", "heaping", "imbalance", "overlap"}
+SERIOUS = {"sorting", "heaping", "imbalance", "overlap", "weak"}
 F_WEAK = 10.0          # common practice: first-stage F below 10 is weak (Staiger & Stock 1997)
 MIN_DISTINCT = 5       # fewer distinct running-variable values per side inside h → "coarse"
 MIN_SIDE_ROWS = 100
@@ -92,15 +111,19 @@ def stability(c: dict) -> tuple[float, float]:
 def subscores(c: dict) -> dict:
     """Named sub-scores of one candidate row (None where not computable)."""
     out = {"strength": None, "density": _g(c.get("density_p")), "balance": _g(c.get("balance_p")),
-           "support": None}
+           "support": None, "placebo": None, "heaping": None, "stability": None}
     if np.isfinite(c.get("jump", np.nan)):
         f = c.get("first_stage_f") or 0.0
         out["strength"] = float(min(1, abs(c["jump"]) / 0.5) * min(1, f / F_WEAK))
         nmin = min(c.get("n_left") or 0, c.get("n_right") or 0)
         dmin = min(c.get("distinct_left") or 0, c.get("distinct_right") or 0)
         out["support"] = float(min(1, math.log10(max(nmin, 1)) / 3) * min(1, dmin / 10))
+        if c.get("placebo_n"):
+            out["placebo"] = float(1 - c.get("placebo_exceed", 0) / c["placebo_n"])
+        if c.get("heap_values"):
+            out["heaping"] = 0.0 if heaped(c) else 1.0
     S = c.get("stability_z", np.nan)
-    out["stability"] = float(np.clip((4 - S) / 3, 0, 1)) if np.isfinite(S) else None
+    out["stability"] = float(np.clip((4 - S) / 3, 0, 1)) if S is not None and np.isfinite(S) else None
     return out
 
 
@@ -112,6 +135,38 @@ def composite(sub: dict) -> float:
     return round(100 * sum(WEIGHTS[k] * v for k, v in got.items()) / wsum, 1)
 
 
+def _below(p, alpha) -> bool:
+    return p is not None and np.isfinite(p) and p < alpha
+
+
+def design_qvalues(rows: list[dict], alpha: float) -> None:
+    """BH q-values of the density and balance checks over the scan's contenders.
+
+    Contenders are candidates whose first stage survives the scan's adjustment (q < alpha).  A
+    design check qualifies a candidate design, so it is judged among the designs on offer:
+    without this, a scan of hundreds of cutoffs raises about alpha × (number of cutoffs) false
+    warnings.  Other candidates keep their p-values and get no sorting/imbalance flag
+    (q-value None).  With a single contender the q-value is its p-value.
+    """
+    cont = [r for r in rows if _below(r.get("q_value"), alpha)]
+    for r in rows:
+        r["density_q"] = None
+        r["balance_q"] = None
+    for field in ("density", "balance"):
+        q = bh_qvalues([r.get(f"{field}_p", np.nan) for r in cont])
+        for r, v in zip(cont, q):
+            r[f"{field}_q"] = float(v) if np.isfinite(v) else None
+
+
+def heaped(c: dict) -> bool:
+    """A heap within half a bandwidth of the cutoff, or a donut that changes the answer."""
+    near = c.get("heap_near")
+    if near is None:       # rows built before the heap_near field existed
+        near = (c.get("heap_p") is not None and c["heap_p"] < HEAP_P
+                and (c.get("heap_ratio") or 0) >= HEAP_RATIO)
+    return bool(near or c.get("donut_changes"))
+
+
 def flags(c: dict, alpha: float) -> list[str]:
     """Short flag words for a candidate row."""
     out = []
@@ -119,11 +174,11 @@ def flags(c: dict, alpha: float) -> list[str]:
         return out
     if (c.get("first_stage_f") or 0) < F_WEAK:
         out.append("weak")
-    if c.get("density_p") is not None and np.isfinite(c["density_p"]) and c["density_p"] < alpha:
+    if _below(c.get("density_q", c.get("density_p")), alpha):
         out.append("sorting")
-    if c.get("balance_p") is not None and np.isfinite(c["balance_p"]) and c["balance_p"] < alpha:
+    if _below(c.get("balance_q", c.get("balance_p")), alpha):
         out.append("imbalance")
-    if c.get("heap_p") is not None and c["heap_p"] < HEAP_P and (c.get("heap_ratio") or 0) >= HEAP_RATIO:
+    if heaped(c):
         out.append("heaping")
     if min(c.get("distinct_left") or 0, c.get("distinct_right") or 0) < MIN_DISTINCT:
         out.append("coarse")
@@ -166,15 +221,22 @@ def reasons(c: dict, alpha: float) -> list[str]:
     if "weak" in fl:
         out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
     if "sorting" in fl:
+        how = (c.get("density_method") or "density test").replace("_", " ")
+        how = how.replace(" without heaps", " test, heaps' excess removed")
         out.append(f"the density of {c['running']} changes {100 * (c['density_ratio'] - 1):+.0f}% at the "
-                   f"cutoff (p = {_fmt_p(c['density_p'])}): people may be sorting around the line.")
+                   f"cutoff ({how}, p = {_fmt_p(c['density_p'])}): people may be sorting around the line.")
     if "imbalance" in fl and c.get("balance_worst"):
         w = c["balance_worst"]
         out.append(f"covariate '{w['name']}' jumps by {w['std_jump']:+.2f} sd at the cutoff "
                    f"(p = {_fmt_p(w['p_value'])}): groups either side differ beyond treatment.")
     if "heaping" in fl:
-        out.append(f"a heap at {c['heap_value']:g} holds {c['heap_ratio']:.1f}× the rows of neighbouring "
-                   "values: rounded or self-reported values sit on the line.")
+        if c.get("heap_near") or c.get("donut_changes") is None:
+            out.append(f"a heap at {c['heap_value']:g} holds {c['heap_ratio']:.1f}× the rows of neighbouring "
+                       "values: rounded or self-reported values sit on the line.")
+        if c.get("donut_changes"):
+            out.append(f"dropping the heaped values moves the jump from {c['jump']:+.3f} to "
+                       f"{c['donut_jump']:+.3f} (p = {_fmt_p(c['donut_p'])}): the estimate leans on "
+                       "rounded values.")
     if "coarse" in fl:
         out.append(f"only {min(c['distinct_left'], c['distinct_right'])} distinct values of "
                    f"{c['running']} on a side within the bandwidth: the running variable is coarse.")
@@ -187,6 +249,21 @@ def reasons(c: dict, alpha: float) -> list[str]:
         out.append(f"the estimate moves by up to {100 * c['stability_shift']:.0f}% "
                    f"({c['stability_z']:.1f} SE of the difference) when the bandwidth is halved or "
                    "doubled or the values nearest the cutoff are dropped.")
+    if c.get("placebo_n") and c.get("placebo_exceed"):
+        out.append(f"{c['placebo_exceed']} of {c['placebo_n']} placebo cutoffs away from the line show "
+                   f"a jump at least as clear (placebo p = {_fmt_p(c['placebo_p'])}).")
+    if c.get("share_compliers") is not None and np.isfinite(c["share_compliers"]) \
+            and _below(c.get("q_value"), alpha):
+        out.append(f"the threshold binds for {100 * c['share_compliers']:.0f}% at the cutoff "
+                   f"(always-takers {100 * c['share_always']:.0f}%, never-takers "
+                   f"{100 * c['share_never']:.0f}%).")
+    for pw in c.get("power") or []:
+        if pw.get("mde_itt") is not None and np.isfinite(pw["mde_itt"]):
+            cm = pw.get("mde_complier")
+            out.append(f"planned outcome '{pw['outcome']}': minimum detectable effect "
+                       f"{pw['mde_itt']:.3g} (intent-to-treat)"
+                       + (f", {cm:.3g} among compliers" if cm is not None and np.isfinite(cm) else "")
+                       + f" at {100 * pw['power']:.0f}% power, alpha {pw['alpha']:g}.")
     if c.get("q_value") is not None and np.isfinite(c["q_value"]) and c["q_value"] >= alpha:
         out.append(f"no jump after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
                    f"(q = {_fmt_p(c['q_value'])} ≥ {alpha:g}).")
@@ -223,6 +300,8 @@ def finalize(rows: list[dict], alpha: float) -> list[dict]:
         r["stability_z"], r["stability_shift"] = stability(r)
         r["q_value"] = float(qv)
         r["n_tested"] = tested
+    design_qvalues(rows, alpha)
+    for r in rows:
         r["flags"] = flags(r, alpha)
         r["subscores"] = subscores(r)
         r["score"] = composite(r["subscores"])

@@ -4,6 +4,15 @@ Each covariate's jump is estimated with the candidate's kernel and bandwidth and
 the covariate's standard deviation near the cutoff.  The joint p-value is the Bonferroni-adjusted
 minimum (K · min p, capped at 1), which is valid whatever the dependence between covariates
 (Bonferroni; Holm 1979 gives the same value for the smallest p).
+
+Why not a joint Wald test: the χ²_K statistic τ̂'V̂⁻¹τ̂ needs the covariances of the K covariate
+jumps, Σ ℓ_i² e_a,i e_b,i, i.e. per-bin cross sums Σ a·b of every covariate pair, which
+BinnedStats holds only for the (treatment, outcome) pairs the plan asks for.  Adding K(K−1)/2
+pairs to the binning pass is possible (``BinPlan.pairs``) but changes the engine contract; until
+then the max-type Bonferroni test is the valid choice.  It is also the more powerful one when a
+single covariate shifts, the usual pattern when one pre-determined trait is sorted on.
+Simes' test would be sharper but is only guaranteed under positive dependence, which two-sided
+tests of correlated covariates do not ensure.
 """
 from __future__ import annotations
 
@@ -21,6 +30,7 @@ class BalanceResult:
 
     p_value: float
     covariates: list = field(default_factory=list)   # dicts: name, jump, se, std_jump, p_value
+    method: str = "bonferroni"
 
     def worst(self):
         ok = [c for c in self.covariates if np.isfinite(c["p_value"])]
