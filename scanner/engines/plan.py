@@ -21,6 +21,8 @@ class BinPlan:
     pairs : column pairs that need joint sums (treatment × outcome for fuzzy designs).
     date : date column giving calendar-quarter period keys, or None.
     split_seed : seed of the half-sample key, or None for no split.
+    split_unit : unit-id column; when set, the half is a seeded hash of the unit id (all rows of
+        a unit fall in the same half, whatever the row order), else of the row position.
     """
 
     running: tuple[str, ...]
@@ -30,6 +32,7 @@ class BinPlan:
     bin_width: dict = field(default_factory=dict)
     date: str | None = None
     split_seed: int | None = None
+    split_unit: str | None = None
     max_exact: int = MAX_EXACT
     target_bins: int = TARGET_BINS
 
@@ -38,6 +41,8 @@ class BinPlan:
         cols = list(dict.fromkeys(list(self.running) + list(self.columns)))
         if self.date:
             cols.append(self.date)
+        if self.split_seed is not None and self.split_unit and self.split_unit not in cols:
+            cols.append(self.split_unit)
         return cols
 
 
