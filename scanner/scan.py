@@ -295,7 +295,7 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None) -> tu
     Appends discovered rows to ``rows``; returns the p-values of scans that produced no row (each
     such scan is one test in the q-value family, see scanner.score) and a summary dict.
     """
-    from .discover import near_candidate, search_pair
+    from .discover import bias_bound, near_candidate, search_pair
     split = spec.confirm and any((st.half >= 0).any() for st in stats.values())
     extra_p, pairs, n_grid, cache1 = [], [], 0, {}
     k = 0
@@ -326,9 +326,18 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None) -> tu
                            location_ci_high=pk.ci_high, search_p=pk.search_p,
                            discovery_half=disc, split=bool(split),
                            confirm_half={key: row.get(key) for key in _CONFIRM_KEYS} if split else None)
-                if not split:
+                # A search seeks out curvature that looks like a jump: the discovered cutoff is
+                # tested allowing for the worst-case smoothing bias (scanner.discover.bias_bound).
+                bb = bias_bound(test, t, pk.location, row["bandwidth"], spec.kernel)
+                row.update(conventional_p=row["p_value"], bias_bound=bb.bound,
+                           curvature_bound=bb.curvature)
+                pb = bb.p_value(row["jump"], row["se"])
+                row["p_value"] = pb if np.isfinite(pb) else row["p_value"]
+                if split:
+                    row["confirm_half"]["p_value"] = row["p_value"]
+                else:
                     # Same rows for search and estimate: only the search-adjusted p is honest.
-                    row["naive_p"], row["p_value"] = row["p_value"], max(row["p_value"], pk.search_p)
+                    row["p_value"] = max(row["p_value"], pk.search_p)
                 rows.append(row)
                 new += 1
             if new == 0:
