@@ -48,6 +48,7 @@ DRAWS = 1000            # multiplier draws for the sup-|t| null distribution
 VAR_ROWS = 50           # rows pooled for each local conditional-variance estimate
 PILOT_C = 4.0           # pilot bandwidth h = PILOT_C · s · N^(-1/5)
 MAX_PEAKS = 3           # discovered cutoffs kept per running variable × treatment
+POOL_BINS = 2000        # above this many bins, pool bins into noise cells for the covariance
 BULK = 0.02             # grid inside the 2nd–98th percentiles
 CHUNK = 2_000_000       # gathered entries per block (memory bound)
 
@@ -84,6 +85,7 @@ class GridScan:
     loadings: object = field(default=None, repr=False)
     noise: np.ndarray = field(default=None, repr=False)
     cut_index: np.ndarray = field(default=None, repr=False)
+    bin_x: np.ndarray = field(default=None, repr=False)
 
     @property
     def valid(self) -> np.ndarray:
@@ -247,7 +249,7 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
                               shape=(G, x.size))
     cut = np.searchsorted(x, grid, side="left" if right_closed else "right")
     return GridScan(stats.running, column, grid, h, kind, jump, se, t, nl, nr, int(n.sum()), L,
-                    sig, cut)
+                    sig, cut, x)
 
 
 @dataclass(frozen=True)
@@ -287,25 +289,30 @@ def _root(R: np.ndarray) -> np.ndarray:
     return V * np.sqrt(np.clip(lam, 0.0, None))
 
 
-def _covariance(scan: GridScan, ok: np.ndarray, per_gap: int = 4) -> np.ndarray:
+def _covariance(scan: GridScan, ok: np.ndarray, cells_per_h: int = 16) -> np.ndarray:
     """Null covariance of the jumps at grid points ``ok``: Σ_b ℓ_gb ℓ_g'b noise_b.
 
-    With many more bins than grid points the bins are pooled into noise cells that never
-    straddle a grid cutoff (at most ``per_gap`` cells between neighbouring grid points), each
-    cell's weight the noise-weighted mean ℓ; the error is second order in cell width / h and
-    the cost drops from grid × bins to grid × cells.
+    With more than ``POOL_BINS`` bins and many bins per bandwidth the bins are pooled into noise cells no wider than
+    h/``cells_per_h`` that never straddle a grid cutoff, each cell's weight the noise-weighted
+    mean ℓ; the error is second order in cell width / h and the cost drops from grid × bins to
+    grid × cells.
     """
     L = scan.loadings[ok]
     B = L.shape[1]
     v = scan.noise
-    if B > 2 * per_gap * scan.grid.size:
-        pos = np.unique(np.r_[0, scan.cut_index, B])
-        a, b = pos[:-1], pos[1:]
-        sub = a[:, None] + ((b - a)[:, None] * np.arange(per_gap)[None, :]) // per_gap
-        edges = np.unique(np.r_[sub.ravel(), B])
+    x = scan.bin_x
+    pos = np.unique(np.r_[0, scan.cut_index, B])
+    step = scan.bandwidth / cells_per_h
+    edges = [B]
+    for a, b in zip(pos[:-1], pos[1:]):
+        k = int(min(b - a, max(1, math.ceil((x[b - 1] - x[a]) / step))))
+        edges.extend(a + ((b - a) * np.arange(k)) // k)
+    edges = np.unique(edges)
+    if B > POOL_BINS and edges.size < B / 2:
         cell = np.searchsorted(edges, np.arange(B), side="right") - 1
         V = np.bincount(cell, weights=v, minlength=edges.size)
-        scale = np.where(V[cell] > 0, 1 / np.sqrt(np.where(V[cell] > 0, V[cell], 1)), 0.0)
+        Vc = V[cell]
+        scale = np.where(Vc > 0, 1 / np.sqrt(np.where(Vc > 0, Vc, 1)), 0.0)
         A = sparse.csr_matrix((v * scale, (np.arange(B), cell)), shape=(B, edges.size))
         M = (L @ A).toarray()
         return M @ M.T
