@@ -367,6 +367,7 @@ class Peak:
     n_grid_points: int
     grid_kind: str
     n_rows: int
+    resolution: float = 0.0          # median grid spacing
 
     def to_dict(self) -> dict:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -395,6 +396,7 @@ def find_peaks(scan: GridScan, null: NullSup, alpha: float, max_peaks: int = MAX
     out = []
     t = np.where(scan.valid, np.abs(scan.t), -1.0)
     crit = null.critical(alpha)
+    spacing = float(np.median(np.diff(scan.grid))) if scan.grid.size > 1 else 0.0
     for _ in range(max_peaks):
         i = int(np.argmax(t))
         if t[i] < 0:
@@ -405,7 +407,7 @@ def find_peaks(scan: GridScan, null: NullSup, alpha: float, max_peaks: int = MAX
         lo, hi = location_set(scan, i, alpha)
         out.append(Peak(float(scan.grid[i]), lo, hi, float(scan.jump[i]), float(scan.se[i]),
                         float(scan.t[i]), p, crit, scan.bandwidth, null.n_points, scan.kind,
-                        scan.n_rows))
+                        scan.n_rows, spacing))
         t[np.abs(scan.grid - scan.grid[i]) < 2 * scan.bandwidth] = -1.0
     return out
 
@@ -443,21 +445,23 @@ def search_pair(stats: BinnedStats, treatment: str, alpha: float = 0.05, kernel:
                       null.p_value(sup), null.critical(alpha), peaks)
 
 
-def near_candidate(peak: Peak, cutoffs: list[float]) -> int | None:
+def near_candidate(peak: Peak, cutoffs: list[float], origins: list[str] | None = None) -> int | None:
     """Index of the declared/round cutoff a peak belongs to, or None.
 
-    A cutoff belongs to the peak when it lies in the location confidence set widened by a
-    quarter of the pilot bandwidth (the resolution the search can claim); the nearest wins.
+    A round cutoff belongs to the peak when it lies in the location confidence set (widened by
+    one grid spacing, the search's resolution).  A declared cutoff also belongs to it when it is
+    within half the pilot bandwidth of that set: a rule's value is a specific claim, and "care
+    follows a value near the declared one" is the finding to report on it.  The nearest wins.
     """
     if not cutoffs:
         return None
-    reach = peak.bandwidth / 4
-    dist = [abs(c - peak.location) for c in cutoffs]
-    i = int(np.argmin(dist))
-    c = cutoffs[i]
-    if peak.ci_low - reach <= c <= peak.ci_high + reach:
-        return i
-    return None
+    origins = origins or ["round"] * len(cutoffs)
+    best, dist = None, np.inf
+    for i, (c, o) in enumerate(zip(cutoffs, origins)):
+        reach = peak.resolution + (peak.bandwidth / 2 if o == "declared" else 0.0)
+        if peak.ci_low - reach <= c <= peak.ci_high + reach and abs(c - peak.location) < dist:
+            best, dist = i, abs(c - peak.location)
+    return best
 
 
 @dataclass(frozen=True)

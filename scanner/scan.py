@@ -312,7 +312,7 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None) -> tu
                    and x["origin"] in ("declared", "round")]
             new = 0
             for pk in ps.peaks:
-                j = near_candidate(pk, [x["cutoff"] for x in own])
+                j = near_candidate(pk, [x["cutoff"] for x in own], [x["origin"] for x in own])
                 disc = pk.to_dict()
                 if j is not None:
                     x = own[j]
