@@ -15,6 +15,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")   # several small factorisati
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import argparse
+import json
 import time
 from collections import Counter
 from multiprocessing import Pool
@@ -32,8 +33,11 @@ def main():
     ap.add_argument("--n", type=int, default=100_000)
     a = ap.parse_args()
     t0 = time.time()
+    res = []
     with Pool(a.workers) as pool:
-        res = pool.map(null_rep, range(a.reps), chunksize=1) if a.workers > 1 else list(map(null_rep, range(a.reps)))
+        for i, r in enumerate(pool.imap(null_rep, range(a.reps), chunksize=1), 1):
+            res.append(r)
+            print(json.dumps({"rep": i, **r}), flush=True)   # progress, one line per replication
     secs = time.time() - t0
     any_conf = np.mean([r["confirmed"] > 0 for r in res])
     hits = Counter(h for r in res for h in r["hit_pairs"])

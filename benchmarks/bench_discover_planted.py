@@ -15,6 +15,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import argparse
+import json
 import time
 from multiprocessing import Pool
 
@@ -30,11 +31,11 @@ def main():
     ap.add_argument("--workers", type=int, default=1)
     a = ap.parse_args()
     t0 = time.time()
-    if a.workers > 1:
-        with Pool(a.workers) as pool:
-            res = pool.map(planted_rep, range(a.reps), chunksize=1)
-    else:
-        res = [planted_rep(r) for r in range(a.reps)]
+    res = []
+    with Pool(a.workers) as pool:
+        for i, r in enumerate(pool.imap(planted_rep, range(a.reps), chunksize=1), 1):
+            res.append(r)
+            print(json.dumps({"rep": i, **r}), flush=True)   # progress, one line per replication
     secs = time.time() - t0
     fig, lines = {}, []
     for name, c in PLANTED.items():

@@ -94,12 +94,16 @@ def spec_for(stats: dict, treatments, seed=1, alpha=0.05, confirm=True) -> ScanS
                     alpha=alpha, seed=seed, confirm=confirm)
 
 
-def search(stats: dict, treatments, seed=1, alpha=0.05):
-    """Run the scan's discovery step and the q-values; return (rows, extra_p, summary)."""
+def search(stats: dict, treatments, seed=1, alpha=0.05, screen=True):
+    """Run the scan's discovery step and the q-values; return (rows, extra_p, summary).
+
+    ``screen`` skips the multiplier simulation for pairs that cannot reach alpha (exact same
+    decisions, q-values no larger; see scanner.discover.search_pair).
+    """
     from scanner.scan import discovery_step
     spec = spec_for(stats, treatments, seed, alpha)
     rows = []
-    extra, summary = discovery_step(stats, rows, spec)
+    extra, summary = discovery_step(stats, rows, spec, screen=screen)
     rows = finalize(rows, alpha, extra)
     return rows, extra, summary
 

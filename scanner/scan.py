@@ -285,13 +285,15 @@ _CONFIRM_KEYS = ("jump", "se", "ci_low", "ci_high", "p_value", "z", "bandwidth",
                  "n_right", "distinct_left", "distinct_right", "left", "right", "reason")
 
 
-def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None) -> tuple[list, dict]:
+def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
+                   screen: bool = False) -> tuple[list, dict]:
     """Search every running variable × treatment for undeclared cutoffs (scanner.discover).
 
     With ``spec.confirm`` (default) the search runs on half 0 of the seeded split and every
     discovered cutoff is estimated and tested on half 1 (Card, Mas & Rothstein 2008); the row's
     ``p_value`` is the held-out p-value.  A break found next to a declared or round candidate of
     the same pair is reported on that candidate (``best_fit_cutoff``) instead of a new row.
+    ``screen`` is for simulation studies (see scanner.discover.search_pair).
     Appends discovered rows to ``rows``; returns the p-values of scans that produced no row (each
     such scan is one test in the q-value family, see scanner.score) and a summary dict.
     """
@@ -305,7 +307,8 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None) -> tu
         test = st.restrict(half=1).pooled() if split else st.pooled()
         for t in (r.treatments or spec.treatments):
             k += 1
-            ps = search_pair(find, t, spec.alpha, spec.kernel, spec.min_rows, seed=spec.seed + k)
+            ps = search_pair(find, t, spec.alpha, spec.kernel, spec.min_rows, seed=spec.seed + k,
+                             screen=screen)
             n_grid += ps.n_grid_points
             pairs.append(ps.to_dict())
             own = [x for x in rows if x["running"] == r.column and x["treatment"] == t
