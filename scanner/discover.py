@@ -28,7 +28,13 @@ For one running variable × treatment the scan works on BinnedStats only:
    Econometrica 68(3), from memory); t² differences stand in for the local LR statistic.
 
 Held-out confirmation (Card, Mas & Rothstein 2008, QJE 123(1)) is orchestrated in
-:mod:`scanner.scan`: the scan runs on half 0, the estimate and test on half 1.
+:mod:`scanner.scan`: the scan runs on half 0, the estimate and test on half 1.  The half is a
+key of BinnedStats filled during the one binning pass (``BinPlan.split_seed`` = ``search.seed``
+when ``search.discover`` and ``search.confirm`` are on).  With ``data.unit`` set, the half is a
+seeded hash of the unit id, so every row of a person lands in the same half and the split does
+not change when the file is re-sorted or read in other batches; without it, the half is a
+seeded hash of the row position.  The held-out test allows for the worst-case smoothing bias
+(:func:`bias_bound`), because a search seeks out curvature that looks like a jump.
 """
 from __future__ import annotations
 
