@@ -40,6 +40,7 @@ class ScanResult:
     stats: dict = field(default_factory=dict, repr=False)
     notes: list = field(default_factory=list)
     created: str = ""
+    search: dict = field(default_factory=dict)
 
     @property
     def candidates(self):
@@ -49,8 +50,11 @@ class ScanResult:
         return pd.DataFrame(tidy_rows(self.to_dict()["candidates"]))
 
     def to_dict(self) -> dict:
-        from .report.outputs import results_dict
-        return results_dict(self)
+        from .report.outputs import clean, results_dict
+        d = results_dict(self)
+        d["n_grid_points"] = int(self.search.get("n_grid_points", 0))
+        d["search"] = clean(self.search)
+        return d
 
     def to_json(self, path) -> None:
         from .report.outputs import write_json
@@ -149,8 +153,14 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     plan = BinPlan(running=tuple(r.column for r in spec.running), columns=columns,
                    treatments=spec.treatments, pairs=pairs,
                    bin_width={r.column: r.bin_width for r in spec.running if r.bin_width},
-                   date=spec.date, split_seed=None, batch_rows=spec.batch_rows)
+                   date=spec.date,
+                   split_seed=(spec.seed if spec.discover and spec.confirm and engine != "spark"
+                               else None),
+                   split_unit=spec.unit, batch_rows=spec.batch_rows)
     deduped = no_unit = 0
+    if spec.discover and spec.confirm and engine == "spark":
+        notes.append("warning: the Spark engine has no row positions for the held-out half, so "
+                     "discovered cutoffs are tested with the search-adjusted p-value on all rows.")
     if spec.keep == "first" and engine == "spark":
         raise InputError(f"{spec.path or '<spec>'}: keep = 'first' is not available with the Spark "
                          "engine; deduplicate the DataFrame first (e.g. a window over data.unit).")
@@ -191,11 +201,14 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
             progress("estimate", 1, len(cands))
     for row in rows:
         explain_nan(row)
-    rows = finalize(rows, spec.alpha)
+    extra_p, search = [], {"n_grid_points": 0, "pairs": []}
+    if spec.discover:
+        extra_p, search = discovery_step(binned.stats, rows, spec, progress)
+    rows = finalize(rows, spec.alpha, extra_p)
     data_info = _data_info(binned, spec, deduped)
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
-                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"))
+                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)
 
 
 def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:
@@ -266,3 +279,75 @@ def _design(fit) -> str:
         return "unknown"
     lo, hi = sorted((fit.left, fit.right))
     return "sharp" if lo <= 0.02 and hi >= 0.98 else "fuzzy"
+
+
+# ---------------------------------------------------------------------------------- discovery
+_CONFIRM_KEYS = ("jump", "se", "ci_low", "ci_high", "p_value", "z", "bandwidth", "n_left",
+                 "n_right", "distinct_left", "distinct_right", "left", "right", "reason")
+
+
+def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
+                   screen: bool = False) -> tuple[list, dict]:
+    """Search every running variable × treatment for undeclared cutoffs (scanner.discover).
+
+    With ``spec.confirm`` (default) the search runs on half 0 of the seeded split and every
+    discovered cutoff is estimated and tested on half 1 (Card, Mas & Rothstein 2008); the row's
+    ``p_value`` is the held-out p-value.  A break found next to a declared or round candidate of
+    the same pair is reported on that candidate (``best_fit_cutoff``) instead of a new row.
+    ``screen`` is for simulation studies (see scanner.discover.search_pair).
+    Appends discovered rows to ``rows``; returns the p-values of scans that produced no row (each
+    such scan is one test in the q-value family, see scanner.score) and a summary dict.
+    """
+    from .discover import bias_bound, near_candidate, search_pair
+    split = spec.confirm and any((st.half >= 0).any() for st in stats.values())
+    extra_p, pairs, n_grid, cache1 = [], [], 0, {}
+    k = 0
+    for r in spec.running:
+        st = stats[r.column]
+        find = st.restrict(half=0).pooled() if split else st.pooled()
+        test = st.restrict(half=1).pooled() if split else st.pooled()
+        for t in (r.treatments or spec.treatments):
+            k += 1
+            ps = search_pair(find, t, spec.alpha, spec.kernel, spec.min_rows, seed=spec.seed + k,
+                             screen=screen)
+            n_grid += ps.n_grid_points
+            pairs.append(ps.to_dict())
+            own = [x for x in rows if x["running"] == r.column and x["treatment"] == t
+                   and x["origin"] in ("declared", "round")]
+            new = 0
+            for pk in ps.peaks:
+                j = near_candidate(pk, [x["cutoff"] for x in own], [x["origin"] for x in own])
+                disc = pk.to_dict()
+                if j is not None:
+                    x = own[j]
+                    x.update(best_fit_cutoff=pk.location, location=pk.location,
+                             location_ci_low=pk.ci_low, location_ci_high=pk.ci_high,
+                             search_p=pk.search_p, discovery_half=disc)
+                    continue
+                cand = Candidate(r.column, t, pk.location, "discovered")
+                row = evaluate(test, cand, spec, cache1)
+                row.update(location=pk.location, location_ci_low=pk.ci_low,
+                           location_ci_high=pk.ci_high, search_p=pk.search_p,
+                           discovery_half=disc, split=bool(split),
+                           confirm_half={key: row.get(key) for key in _CONFIRM_KEYS} if split else None)
+                # A search seeks out curvature that looks like a jump: the discovered cutoff is
+                # tested allowing for the worst-case smoothing bias (scanner.discover.bias_bound).
+                bb = bias_bound(test, t, pk.location, row["bandwidth"], spec.kernel)
+                row.update(conventional_p=row["p_value"], bias_bound=bb.bound,
+                           curvature_bound=bb.curvature)
+                pb = bb.p_value(row["jump"], row["se"])
+                row["p_value"] = pb if np.isfinite(pb) else row["p_value"]
+                if split:
+                    row["confirm_half"]["p_value"] = row["p_value"]
+                else:
+                    # Same rows for search and estimate: only the search-adjusted p is honest.
+                    row["p_value"] = max(row["p_value"], pk.search_p)
+                rows.append(row)
+                new += 1
+            if new == 0:
+                extra_p.append(ps.search_p)
+            if progress:
+                progress("discover", 1, None)
+    return extra_p, {"n_grid_points": n_grid, "n_scans": len(pairs), "split": bool(split),
+                     "split_by": (spec.unit or "row position") if split else None,
+                     "seed": spec.seed, "pairs": pairs}

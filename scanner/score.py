@@ -38,9 +38,21 @@ Flags and what they mean (each comes with a plain-words reason):
 
 ``density_q`` and ``balance_q`` are Benjamini–Hochberg q-values over the scan's contenders (first
 stage q < alpha; see ``design_qvalues``); other candidates keep their p-values but get neither
-flag.  Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and
-then by score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
-candidate tested in the scan.
+flag.  Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and then by
+score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
+test actually run in the scan, counted as follows:
+
+* each declared or round candidate with a finite p-value is one test (its own p-value);
+* each discovered candidate is one test; its p-value is the held-out (half 1) p-value at the
+  location found on half 0, and it exists only because its search-adjusted p-value on half 0
+  was below alpha — a gate that makes the p-value conservative, P(p ≤ u) ≤ alpha·u, under no
+  jump (without the split the search-adjusted p-value itself is used);
+* each running variable × treatment grid scan that produced no discovered row (nothing found,
+  or the break was attached to a declared/round candidate) is one test with the scan's
+  search-adjusted p-value for sup |t|.  The grid points themselves are not separate tests: the
+  sup-|t| critical value already accounts for all of them (``n_grid_points`` reports how many).
+
+``n_tested`` is the size of that family.
 """
 from __future__ import annotations
 
@@ -291,10 +303,16 @@ def overlaps(rows: list[dict]) -> None:
                 r["overlap_with"] = best["cutoff"]
 
 
-def finalize(rows: list[dict], alpha: float) -> list[dict]:
-    """Add q-values, flags, sub-scores, score, verdict, reasons and rank; return rows best first."""
-    q = bh_qvalues([r.get("p_value", np.nan) for r in rows])
+def finalize(rows: list[dict], alpha: float, extra_p=()) -> list[dict]:
+    """Add q-values, flags, sub-scores, score, verdict, reasons and rank; return rows best first.
+
+    ``extra_p`` holds p-values of tests that have no row (grid scans without a discovery); they
+    enter the Benjamini–Hochberg family and ``n_tested``.
+    """
+    extra = [float(p) for p in extra_p]
+    q = bh_qvalues([r.get("p_value", np.nan) for r in rows] + extra)
     tested = int(np.isfinite(q).sum())
+    q = q[:len(rows)]
     overlaps(rows)
     for r, qv in zip(rows, q):
         r["stability_z"], r["stability_shift"] = stability(r)
@@ -306,9 +324,25 @@ def finalize(rows: list[dict], alpha: float) -> list[dict]:
         r["subscores"] = subscores(r)
         r["score"] = composite(r["subscores"])
         r["verdict"] = verdict(r, alpha)
-        r["reasons"] = reasons(r, alpha)
+        r["reasons"] = reasons(r, alpha) + search_reasons(r)
     rows.sort(key=lambda r: (VERDICTS.index(r["verdict"]), -r["score"], r["running"],
                              r["treatment"], r["cutoff"]))
     for i, r in enumerate(rows, 1):
         r["rank"] = i
     return rows
+
+
+def search_reasons(c: dict) -> list[str]:
+    """Plain-words lines about the discovery search (origin "discovered" or a best-fit cutoff)."""
+    d = c.get("discovery_half")
+    if not d:
+        return []
+    where = (f"best fit at {d['location']:g} (95% set {d['ci_low']:g} to {d['ci_high']:g})")
+    found = (f"|t| = {abs(d['t']):.1f} over {d['n_grid_points']} grid points, search-adjusted "
+             f"p = {_fmt_p(d['search_p'])}")
+    if c["origin"] != "discovered":
+        return [f"{c['origin']} at {c['cutoff']:g}, {where}: the search ({found}) puts the break "
+                "at or near this cutoff."]
+    held = ("estimated and tested on the held-out half of the rows" if c.get("split")
+            else "estimated on the same rows (no held-out half)")
+    return [f"found by the search, not declared: {where}; {found}; {held}."]

@@ -21,8 +21,8 @@ KNOWN = {
     "covariates": {"columns"},
     "outcomes": {"columns", "effects"},
     "rules": {"catalogues"},
-    "search": {"round_numbers", "discover", "alpha", "kernel", "degree", "bandwidth", "seed",
-               "min_rows", "per_side"},
+    "search": {"round_numbers", "discover", "confirm", "alpha", "kernel", "degree", "bandwidth",
+               "seed", "min_rows", "per_side"},
     "output": {"min_cell", "top"},
 }
 
@@ -55,6 +55,7 @@ class ScanSpec:
     catalogues: tuple[str, ...] = ()
     round_numbers: bool = True
     discover: bool = True
+    confirm: bool = True          # discovered cutoffs: search on half 0, estimate on half 1
     alpha: float = 0.05
     kernel: str = "triangular"
     degree: int = 1
@@ -279,7 +280,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         date=data.get("date"), unit=data.get("unit"), keep=keep,
         engine=data.get("engine", "local"), batch_rows=int(data.get("batch_rows", 1_000_000)),
         catalogues=tuple(cats), round_numbers=bool(search.get("round_numbers", True)),
-        discover=bool(search.get("discover", True)), alpha=float(alpha), kernel=kern,
+        discover=bool(search.get("discover", True)),
+        confirm=bool(search.get("confirm", True)), alpha=float(alpha), kernel=kern,
         degree=int(degree), bandwidth=bw if isinstance(bw, str) else float(bw), per_side=per_side,
         seed=int(search.get("seed", 20261201)), min_rows=int(search.get("min_rows", 50)),
         min_cell=int(min_cell), top=int(output.get("top", 20)), path=path,

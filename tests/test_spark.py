@@ -64,8 +64,9 @@ def test_spark_bins_equal_local_bins(spark):
 def test_spark_scan_results_equal_local(spark, tmp_path):
     import scanner
     df = frame().drop(columns="visit")
+    # No held-out split: a Spark DataFrame has no row positions for it (scan() says so in a note).
     spec = {"running": [{"column": "age"}, {"column": "cont"}], "treatments": {"columns": ["d"]},
-            "covariates": {"columns": ["z"]}}
+            "covariates": {"columns": ["z"]}, "search": {"confirm": False}}
     local = scanner.scan(spec, df).rows
     remote = scanner.scan(spec, spark.createDataFrame(df)).rows
     path = tmp_path / "t.parquet"

@@ -46,6 +46,18 @@ def half_split(index: np.ndarray, seed: int) -> np.ndarray:
     return (z & np.uint64(1)).astype(np.int8)
 
 
+def unit_halves(values, seed: int) -> np.ndarray:
+    """Seeded 0/1 per row from a hash of its unit id (independent of row order and batching).
+
+    Ids are compared as text, so 17 and "17" fall in the same half; missing ids hash as one value.
+    """
+    import pandas as pd
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    text = pc.cast(values, pa.string()).fill_null("").to_numpy(zero_copy_only=False)
+    return half_split(pd.util.hash_array(text.astype(object), categorize=False), seed)
+
+
 # ---------------------------------------------------------------------- per-batch columns
 class Columns:
     """The tracked columns of one batch laid out as one matrix of per-row addends.
@@ -301,8 +313,12 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         if plan.date or plan.split_seed is not None:
             period = (period_codes(batch, plan.date, table.name) if plan.date
                       else np.full(m, -1, np.int32))
-            half = (half_split(np.arange(rows, rows + m), plan.split_seed)
-                    if plan.split_seed is not None else np.full(m, -1, np.int8))
+            if plan.split_seed is None:
+                half = np.full(m, -1, np.int8)
+            elif plan.split_unit:
+                half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
+            else:
+                half = half_split(np.arange(rows, rows + m), plan.split_seed)
             extra = (period, half)
         for r in plan.running:
             x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")

@@ -26,6 +26,8 @@ class BinPlan:
     max_exact, max_bins, fine_keys : grid rule, see :mod:`scanner.engines.grid`.
     batch_rows : rows per record batch (memory knob; results do not depend on it).
     kernel : "sparse" (one scipy product per running variable) or "bincount" (plain numpy).
+    split_unit : unit-id column; when set, the half is a seeded hash of the unit id (all rows of
+        a unit fall in the same half, whatever the row order), else of the row position.
     """
 
     running: tuple[str, ...]
@@ -35,6 +37,7 @@ class BinPlan:
     bin_width: dict = field(default_factory=dict)
     date: str | None = None
     split_seed: int | None = None
+    split_unit: str | None = None
     max_exact: int = MAX_EXACT
     max_bins: int = MAX_BINS
     fine_keys: int = FINE_KEYS
@@ -46,6 +49,8 @@ class BinPlan:
         cols = list(dict.fromkeys(list(self.running) + list(self.columns)))
         if self.date:
             cols.append(self.date)
+        if self.split_seed is not None and self.split_unit and self.split_unit not in cols:
+            cols.append(self.split_unit)
         return cols
 
 

@@ -34,6 +34,8 @@ META_INT_KEYS = frozenset({
     "min_cell", "top", "seed", "min_rows", "batch_rows", "suppressed_counts", "suppressed_bins",
     "hidden_bins", "merged_bins", "bins_left", "bins_right", "bins_imse_left", "bins_imse_right",
     "year", "period", "n_cutoffs", "n_periods", "n_covariates", "hidden_sides",
+    # numbers of cutoffs examined, not of persons
+    "placebo_exceed", "placebo_n", "n_grid_points", "grid_points", "n_scans",
 })
 
 

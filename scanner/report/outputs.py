@@ -304,8 +304,10 @@ def _num(v, fmt):
 def terminal_table(results: dict, top: int = 20):
     """A rich Table of the best candidates."""
     from rich.table import Table
+    grid = results.get("n_grid_points") or 0
+    scanned = f" (search: {grid} grid cutoffs examined)" if grid else ""
     t = Table(title=f"{results['title']} — {results['n_candidates']} candidates, "
-                    f"{results['n_tested']} tested, best {min(top, results['n_candidates'])} shown",
+                    f"{results['n_tested']} tested{scanned}, best {min(top, results['n_candidates'])} shown",
               header_style="bold", show_lines=False)
     for col, just in (("#", "right"), ("running", "left"), ("treatment", "left"),
                       ("cutoff", "right"), ("origin", "left"), ("jump [95% CI]", "right"),

@@ -1,0 +1,27 @@
+"""Compose benchmarks/results/discovery.md from the JSON files the discovery benchmarks write."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+RESULTS = Path(__file__).resolve().parent / "results"
+
+
+def write_markdown() -> Path:
+    parts = ["# Discovery benchmarks (issue 5)\n",
+             "Simulated registries (invented data). Regenerate with the commands shown; each "
+             "section is rewritten by its script.\n"]
+    for name in ("speed", "null", "planted"):
+        p = RESULTS / f"discovery_{name}.json"
+        if p.exists():
+            parts.append(json.loads(p.read_text())["markdown"])
+    out = RESULTS / "discovery.md"
+    out.write_text("\n".join(parts) + "\n", encoding="utf-8")
+    return out
+
+
+def save(name: str, figures: dict, markdown: str) -> Path:
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    (RESULTS / f"discovery_{name}.json").write_text(
+        json.dumps({"figures": figures, "markdown": markdown}, indent=2) + "\n", encoding="utf-8")
+    return write_markdown()
