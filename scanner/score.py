@@ -217,6 +217,13 @@ def verdict(c: dict, alpha: float) -> str:
     return "usable"
 
 
+def _fmt_f(f):
+    """F for reading: a deterministic (sharp) first stage has an enormous F."""
+    if f is None or not np.isfinite(f):
+        return "n/a"
+    return "> 9,999" if f > 9999 else f"{f:.1f}"
+
+
 def _fmt_p(p):
     return "n/a" if p is None or not np.isfinite(p) else (f"{p:.2g}" if p >= 1e-4 else "< 0.0001")
 
@@ -227,7 +234,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
     if not np.isfinite(c.get("jump", np.nan)):
         return [f"could not be estimated: {c.get('reason') or 'unknown reason'}."]
     out.append(f"uptake of {c['treatment']} jumps by {c['jump']:+.3f} at {c['running']} = "
-               f"{c['cutoff']:g} (from {c['left']:.2f} to {c['right']:.2f}; F = {c['first_stage_f']:.1f}, "
+               f"{c['cutoff']:g} (from {c['left']:.2f} to {c['right']:.2f}; F = {_fmt_f(c['first_stage_f'])}, "
                f"q = {_fmt_p(c['q_value'])}).")
     fl = c.get("flags", [])
     if "weak" in fl:
