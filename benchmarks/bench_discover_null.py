@@ -15,15 +15,13 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")   # several small factorisati
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import argparse
-import json
 import time
 from collections import Counter
-from multiprocessing import Pool
 
 import numpy as np
 
 from benchmarks.discover_sim import SHAPES, null_rep
-from benchmarks.discover_report import save
+from benchmarks.discover_report import run_reps, save
 
 
 def main():
@@ -33,11 +31,7 @@ def main():
     ap.add_argument("--n", type=int, default=100_000)
     a = ap.parse_args()
     t0 = time.time()
-    res = []
-    with Pool(a.workers) as pool:
-        for i, r in enumerate(pool.imap(null_rep, range(a.reps), chunksize=1), 1):
-            res.append(r)
-            print(json.dumps({"rep": i, **r}), flush=True)   # progress, one line per replication
+    res = run_reps(null_rep, a.reps, a.workers)
     secs = time.time() - t0
     any_conf = np.mean([r["confirmed"] > 0 for r in res])
     hits = Counter(h for r in res for h in r["hit_pairs"])

@@ -15,14 +15,12 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import argparse
-import json
 import time
-from multiprocessing import Pool
 
 import numpy as np
 
 from benchmarks.discover_sim import PLANTED, planted_rep
-from benchmarks.discover_report import save
+from benchmarks.discover_report import run_reps, save
 
 
 def main():
@@ -31,11 +29,7 @@ def main():
     ap.add_argument("--workers", type=int, default=1)
     a = ap.parse_args()
     t0 = time.time()
-    res = []
-    with Pool(a.workers) as pool:
-        for i, r in enumerate(pool.imap(planted_rep, range(a.reps), chunksize=1), 1):
-            res.append(r)
-            print(json.dumps({"rep": i, **r}), flush=True)   # progress, one line per replication
+    res = run_reps(planted_rep, a.reps, a.workers)
     secs = time.time() - t0
     fig, lines = {}, []
     for name, c in PLANTED.items():

@@ -25,3 +25,15 @@ def save(name: str, figures: dict, markdown: str) -> Path:
     (RESULTS / f"discovery_{name}.json").write_text(
         json.dumps({"figures": figures, "markdown": markdown}, indent=2) + "\n", encoding="utf-8")
     return write_markdown()
+
+
+def run_reps(rep, reps: int, workers: int) -> list:
+    """Run ``rep(i)`` for i < reps on ``workers`` processes, printing one JSON line per replication."""
+    import json
+    from multiprocessing import Pool
+    out = []
+    with Pool(workers) as pool:
+        for i, r in enumerate(pool.imap(rep, range(reps), chunksize=1), 1):
+            out.append(r)
+            print(json.dumps({"rep": i, **r}), flush=True)   # progress
+    return out

@@ -207,5 +207,15 @@ class BinnedStats:
         j = self.col(name)
         return self.x, self.cnt[:, j].astype(float), self.s1[:, j], self.s2[:, j]
 
+    def support_counts(self, drop=None):
+        """Sorted (x, n) over occupied pooled bins; ``drop`` masks pooled bins to leave out."""
+        st = self.pooled()
+        keep = st.n > 0
+        if drop is not None:
+            keep = keep & ~np.asarray(drop, bool)
+        x, n = st.x[keep], st.n[keep].astype(float)
+        order = np.argsort(x, kind="stable")
+        return x[order], n[order]
+
     def distinct_values(self) -> int:
         return int(np.unique(self.key[self.n > 0]).size)

@@ -33,16 +33,6 @@ def _nan_test(method, reason, h=float("nan")):
     return DensityTest(method, nan, nan, nan, nan, nan, nan, h, reason)
 
 
-def _points(stats: BinnedStats, drop=None):
-    st = stats.pooled()
-    keep = st.n > 0
-    if drop is not None:
-        keep = keep & ~np.asarray(drop, bool)
-    x, n = st.x[keep], st.n[keep].astype(float)
-    o = np.argsort(x, kind="stable")
-    return x[o], n[o]
-
-
 def _binom_two_sided(k, m, pi):
     """Two-sided binomial p-value: twice the smaller tail, capped at 1."""
     lo = sps.binom.cdf(k, m, pi)
@@ -69,7 +59,7 @@ def frandsen_test(stats: BinnedStats, cutoff: float, right_closed: bool = True,
     -----
     Frandsen (2017); the k = 0 case N₀ | M ~ Bin(M, 1/3) is derived in docs/methods.md §7a.
     """
-    x, n = _points(stats, drop)
+    x, n = stats.support_counts(drop)
     if x.size < 3:
         return _nan_test("frandsen", "fewer than 3 support points")
     right = x >= cutoff if right_closed else x > cutoff
@@ -111,7 +101,7 @@ def window_count_test(stats: BinnedStats, cutoff: float, right_closed: bool = Tr
     Cattaneo, Frandsen & Titiunik (2015), J. Causal Inference 3(1): randomisation inference in a
     window around the cutoff.
     """
-    x, n = _points(stats, drop)
+    x, n = stats.support_counts(drop)
     right = x >= cutoff if right_closed else x > cutoff
     if right.all() or not right.any():
         return _nan_test("binomial window", "no data on one side of the cutoff")

@@ -53,13 +53,7 @@ def cdf_points(stats: BinnedStats, drop=None):
     Dropped bins are removed before F̂ is formed, so F̂ is the CDF of the remaining rows (used
     for the density test without heaped values).
     """
-    st = stats.pooled()
-    keep = st.n > 0
-    if drop is not None:
-        keep = keep & ~np.asarray(drop, bool)
-    x, n = st.x[keep], st.n[keep].astype(float)
-    order = np.argsort(x, kind="stable")
-    x, n = x[order], n[order]
+    x, n = stats.support_counts(drop)
     cum = np.cumsum(n)
     N = cum[-1] if cum.size else 0.0
     F = (cum - (n - 1) / 2) / N
