@@ -119,7 +119,7 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
         if note.startswith("warning:"):
             print(f"cutscan: {note}", file=sys.stderr)
     if not quiet:
-        console.print(terminal_table(result.to_dict(), spec.top))
+        console.print(terminal_table(result.to_dict(), spec.top, console.width))
         console.print(f"[dim]{CAUTION}[/]")
         console.print(f"Wrote {out}/results.json, candidates.csv, report.html, results.md and bins.csv")
     return 0

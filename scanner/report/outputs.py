@@ -301,8 +301,10 @@ def _num(v, fmt):
     return "—" if v is None else format(v, fmt)
 
 
-def terminal_table(results: dict, top: int = 20):
-    """A rich Table of the best candidates."""
+def terminal_table(results: dict, top: int = 20, width: int = 200):
+    """A rich Table of the best candidates; below 130 columns a compact layout (no interval)."""
+    if width < 130:
+        return _compact_table(results, top)
     from rich.table import Table
     grid = results.get("n_grid_points") or 0
     scanned = f" (search: {grid} grid cutoffs examined)" if grid else ""
@@ -324,4 +326,25 @@ def terminal_table(results: dict, top: int = 20):
                   "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}"),
                   _num(c["q_value"], ".2g"), _num(c["score"], ".0f"),
                   f"[{style.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
+    return t
+
+
+STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta", "no jump": "dim",
+         "not estimable": "dim red"}
+
+
+def _compact_table(results: dict, top: int):
+    """Narrow terminals: one text column for the candidate, the interval left to the outputs."""
+    from rich.table import Table
+    t = Table(title=f"{results['title']}: {results['n_candidates']} candidates, "
+                    f"{results['n_tested']} tested (intervals in candidates.csv)",
+              header_style="bold")
+    for col, just in (("#", "right"), ("candidate", "left"), ("jump", "right"), ("q", "right"),
+                      ("score", "right"), ("verdict", "left"), ("flags", "left")):
+        t.add_column(col, justify=just, overflow="fold")
+    for c in results["candidates"][:top]:
+        what = f"{c['running']} → {c['treatment']} at {c['cutoff']:g} ({c.get('rule_id') or c['origin']})"
+        t.add_row(str(c["rank"]), what, _num(c["jump"], "+.3f"), _num(c["q_value"], ".2g"),
+                  _num(c["score"], ".0f"), f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]",
+                  " ".join(c["flags"]))
     return t
