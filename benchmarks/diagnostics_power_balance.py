@@ -1,9 +1,9 @@
 """Power calibration and covariate balance rates (simulation; writes benchmarks/results/diagnostics.md).
 
 * Power: the MDE reported by ``outcome_power`` (normal-approximation power function,
-  docs/methods.md §11) is planted as the outcome jump; the local linear test at 5% should reject
-  in 80% ± 4 points of samples.  Design: x ~ U(−1, 1) on a 0.01 grid, n = 8,000, h = 0.4,
-  heteroskedastic noise (sd 1 left, 1.3 right).
+  docs/methods.md, "Power for planned outcomes") is planted as the outcome jump; the local
+  linear test at 5% should reject in 80% ± 4 points of samples.  Design: x ~ U(−1, 1) on a
+  0.01 grid, n = 8,000, h = 0.4, heteroskedastic noise (sd 1 left, 1.3 right).
 * Balance: a 0.15 sd covariate jump at n = 50,000 (second covariate correlated 0.45), and the same
   design with smooth covariates; Bonferroni joint test at 5%, h = 0.4.
 

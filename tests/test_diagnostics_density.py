@@ -46,7 +46,7 @@ def test_window_count_test_matches_scipy_binomtest():
 
 
 def test_frandsen_k0_is_binomial_one_third():
-    # Frandsen (2017): with a locally linear pmf, N0 | M ~ Binomial(M, 1/3) (docs/methods.md §7a).
+    # Frandsen (2017): with a locally linear pmf, N0 | M ~ Binomial(M, 1/3) (docs/methods.md, Discrete support).
     x = np.repeat(np.arange(0, 6, dtype=float), [100, 100, 100, 160, 100, 100])
     t = frandsen_test(bins(x), 3.0, k=0.0)
     ref = 2 * sps.binom.sf(159, 360, 1 / 3)
@@ -103,11 +103,30 @@ def test_density_size_fast(design):
 
 def test_density_power_fast():
     # 20% density jump at n = 10,000, normal design: both tests detect it most of the time.
+    # The issue asks for power >= 0.8; the benchmark (1,000 reps) measures it, this bound only
+    # catches a collapse (80 reps: a true 0.8 falls below 0.68 with probability < 0.01).
     rng = np.random.default_rng(12)
     lp, mc = [], []
-    for _ in range(40):
+    for _ in range(80):
         st = bins(draw(rng, "normal", 10_000, 0.2), 0.001)
         lp.append(lp_density_test(st, 0.0).p_value < 0.05)
         mc.append(mccrary_test(st, 0.0).p_value < 0.05)
     assert np.mean(mc) >= 0.75
-    assert np.mean(lp) >= 0.6           # 0.797 over 1,000 reps in the benchmark
+    assert np.mean(lp) >= 0.68
+
+
+def test_density_pilot_recovers_normal_derivatives():
+    # The bandwidth pilot's f''(0), f'''(0) on N(0, 1) draws against the analytic values
+    # f'' = -phi(0) (scipy.stats.norm.pdf) and f''' = 0; a noisy f''' pilot pulled the chosen
+    # bandwidth down and cost the test power (benchmarks/results/density.md).
+    from scanner.diagnostics.density_lp import _pilot_pooled, cdf_points
+    rng = np.random.default_rng(13)
+    f2, f3 = [], []
+    for _ in range(60):
+        x, n, F, N = cdf_points(bins(rng.normal(0, 1, 10_000), 0.001))
+        sd = np.sqrt((n * x ** 2).sum() / N - ((n * x).sum() / N) ** 2)
+        a, b = _pilot_pooled(x, n, F, sd)
+        f2.append(a)
+        f3.append(b)
+    assert abs(np.mean(f2) + sps.norm.pdf(0)) < 0.05
+    assert abs(np.mean(f3)) < 0.15 and np.std(f3) < 0.5

@@ -80,8 +80,8 @@ def test_compliance_shares_match_planted_within_two_se():
 
 
 def test_power_mde_matches_simulated_rejection_rate():
-    # Normal-approximation power function (docs/methods.md §11): at the reported MDE the
-    # estimator's two-sided 5% test should reject in 80% of samples (issue: ±4 points; the fast
+    # Normal-approximation power function (docs/methods.md, "Power for planned outcomes"): at
+    # the reported MDE the estimator's two-sided 5% test should reject in 80% of samples (issue: ±4 points; the fast
     # version uses 300 replications, so ±7 points).
     rng = np.random.default_rng(24)
     n, h = 8000, 0.4

@@ -57,7 +57,8 @@ def frandsen_test(stats: BinnedStats, cutoff: float, right_closed: bool = True,
 
     Notes
     -----
-    Frandsen (2017); the k = 0 case N₀ | M ~ Bin(M, 1/3) is derived in docs/methods.md §7a.
+    Frandsen (2017); the k = 0 case N₀ | M ~ Bin(M, 1/3) is derived in docs/methods.md
+    ("Discrete support").
     """
     x, n = stats.support_counts(drop)
     if x.size < 3:

@@ -1,7 +1,7 @@
 """Local polynomial density test (Cattaneo, Jansson & Ma 2020) computed from bin counts.
 
-Estimator (Cattaneo, Jansson & Ma 2020, JASA 115(531); docs/methods.md §6): on each side of the
-cutoff, a kernel-weighted polynomial of degree ``p`` (default 2) in u = x − c is fitted to the
+Estimator (Cattaneo, Jansson & Ma 2020, JASA 115(531); docs/methods.md, "Density tests"): on
+each side of the cutoff, a kernel-weighted polynomial of degree ``p`` (default 2) in u = x − c is fitted to the
 empirical CDF F̂(X_i) = #{X_j ≤ X_i}/N using only that side's rows; the coefficient on u is the
 density estimate f̂±(c).  Bins enter through their counts: every row of a bin sits at the bin's
 representative x and carries the same F̂.
@@ -19,8 +19,8 @@ representative x and carries the same F̂.
   order (w/h)², negligible when the bin width is small against the bandwidth (the default grid
   has about 2,000 bins, so w/h is below 0.05 in practice).
 
-Variance: the influence-function plug-in of docs/methods.md §6, ψ_j = Σ_i ℓ_i (1{X_j ≤ X_i} −
-F̂(X_i)), V̂ = Σ_j ψ_j² / N², with ℓ the slope weights of the side's fit; the test uses
+Variance: the influence-function plug-in of docs/methods.md ("Density tests"),
+ψ_j = Σ_i ℓ_i (1{X_j ≤ X_i} − F̂(X_i)), V̂ = Σ_j ψ_j² / N², with ℓ the slope weights of the side's fit; the test uses
 ψ_j⁺ − ψ_j⁻.  It is a sum over bins of j (rows of a bin share ψ_j).
 
 Bandwidth and inference (our choices, written down here): one common bandwidth h for both sides,
@@ -30,8 +30,10 @@ the null-hypothesis MSE of f̂⁺ − f̂⁻.  With a common bandwidth the leadi
 is the same multiple of f''(c) (the two one-sided problems are mirror images), so under the null
 of a smooth density it nearly cancels in the difference; the bias used is the sample version —
 the difference's slope weights applied to the cubic and quartic terms of F, f''(c)u³/6 +
-f'''(c)u⁴/24, as in CCT 2014's bias correction — with f'', f''' from one sextic fit of F̂ across
-the cutoff within one standard deviation.  Because the leading bias cancels, the test uses the
+f'''(c)u⁴/24, as in CCT 2014's bias correction — with f'', f''' from one quintic fit of F̂ across
+the cutoff within one standard deviation (a quartic density; a sextic fit made the f''' pilot four
+times noisier, which pulled the chosen h down and cost power — measured in
+benchmarks/results/density.md).  Because the leading bias cancels, the test uses the
 conventional statistic with p = 2 and no explicit bias correction [DERIVED; checked by the size
 simulation in benchmarks/density_size_power.py].
 """
@@ -45,6 +47,8 @@ from ..estimate.kernels import kernel as kernel_fn
 from .density import DensityTest
 
 MIN_SIDE_POINTS = 4      # a local quadratic CDF fit needs more than p + 1 support points
+PILOT_DEGREE = 5         # degree of the global pilot fit of F̂ (a quartic density)
+CAP_MULTIPLE = 4         # bandwidth cap, in units of the normal-reference scale 1.06·sd·N^(-1/5)
 
 
 def cdf_points(stats: BinnedStats, drop=None):
@@ -91,8 +95,8 @@ def _var(n, psi, N):
     return float((n * psi ** 2).sum() / N ** 2)
 
 
-def _pilot_pooled(u, n, F, reach):
-    """f''(c), f'''(c) from one weighted sextic fit of F̂ across the cutoff within ``reach``.
+def _pilot_pooled(u, n, F, reach, degree=PILOT_DEGREE):
+    """f''(c), f'''(c) from one weighted quintic fit of F̂ across the cutoff within ``reach``.
 
     The fit carries an extra term u·1{u ≥ 0}, a kink in F (a jump in the density at the cutoff),
     so a density jump under the alternative is not mistaken for curvature.
@@ -101,7 +105,7 @@ def _pilot_pooled(u, n, F, reach):
     if k.sum() < 12:
         return 0.0, 0.0
     t = u[k] / reach
-    X = np.column_stack([np.vander(t, 7, increasing=True), t * (t >= 0)])
+    X = np.column_stack([np.vander(t, degree + 1, increasing=True), t * (t >= 0)])
     sw = np.sqrt(n[k])
     coef = np.linalg.lstsq(X * sw[:, None], F[k] * sw, rcond=None)[0]
     return float(6 * coef[3] / reach ** 3), float(24 * coef[4] / reach ** 4)
@@ -121,19 +125,29 @@ def _mse_bandwidth(u, n, F, N, left, right, p, kern):
     # difference; at large N even small unmodelled bias then dominates a wide window.  So the
     # grid stops at four times the normal-reference scale 1.06*sd*N^(-1/5) (Silverman 1986; common
     # practice for the scale of a density bandwidth).
-    cap = 4 * 1.06 * sd * N ** (-0.2)
+    cap = CAP_MULTIPLE * 1.06 * sd * N ** (-0.2)
     lo, hi = max(a for a, _ in hs), min(min(b for _, b in hs), sd, cap)
     if not hi > lo:
         return float(lo)
     f2, f3 = _pilot_pooled(u, n, F, sd)
+    # Only bins within the widest h enter the fits; the others carry ψ_j = S − f̂ (left of the
+    # window, S = Σ nℓ, zero up to rounding) or −f̂ (right of it), added in closed form, so the
+    # search costs O(bins in the window) and gives the same MSE as the full sums.
+    inside = np.abs(u) < hi
+    idx = np.flatnonzero(inside)
+    n_before, n_after = n[:idx[0]].sum(), n[idx[-1] + 1:].sum()
+    u, n_in, F, left, right = u[inside], n[inside], F[inside], left[inside], right[inside]
     best, best_h = np.inf, float("nan")
     for h in np.geomspace(lo, hi, 20):
-        fits = [_side_fit(u, n, F, side, h, p, kern) for side in (left, right)]
+        fits = [_side_fit(u, n_in, F, side, h, p, kern) for side in (left, right)]
         if any(f is None for f in fits):
             continue
         (fl, ell_l, _), (fr, ell_r, _) = fits
-        bias = (n * (ell_r - ell_l) * (f2 / 6 * u ** 3 + f3 / 24 * u ** 4)).sum()
-        mse = bias ** 2 + _var(n, _psi(n, ell_r, fr) - _psi(n, ell_l, fl), N)
+        bias = (n_in * (ell_r - ell_l) * (f2 / 6 * u ** 3 + f3 / 24 * u ** 4)).sum()
+        psi = _psi(n_in, ell_r, fr) - _psi(n_in, ell_l, fl)
+        jump = fr - fl
+        outside = n_before * ((n_in * (ell_r - ell_l)).sum() - jump) ** 2 + n_after * jump ** 2
+        mse = bias ** 2 + ((n_in * psi ** 2).sum() + outside) / N ** 2
         if mse < best:
             best, best_h = mse, float(h)
     return best_h
@@ -166,7 +180,8 @@ def lp_density_test(stats: BinnedStats, cutoff: float, right_closed: bool = True
 
     Notes
     -----
-    Cattaneo, Jansson & Ma (2020), JASA 115(531); influence-function variance in docs/methods.md §6.
+    Cattaneo, Jansson & Ma (2020), JASA 115(531); influence-function variance in
+    docs/methods.md ("Density tests").
     """
     x, n, F, N = cdf_points(stats, drop)
     if N < 20:

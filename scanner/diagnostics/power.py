@@ -8,7 +8,9 @@ error is s = √(Σ_left ℓ_i² σ²₋ + Σ_right ℓ_i² σ²₊), and the no
 gives
 
     MDE_ITT = (z_{1−α/2} + z_{power}) · s            (2.80 · s for α = 0.05, 80% power),
-    MDE_complier = MDE_ITT / |first-stage jump|       (docs/methods.md §11).
+    MDE_complier = MDE_ITT / |first-stage jump|
+
+(docs/methods.md, "Power for planned outcomes").
 
 The design effect is s² over the variance of a difference in means on the same rows,
 σ²₊/n₊ + σ²₋/n₋ — the RD-versus-randomised sample inflation of Schochet (2009), J. Educ. Behav.
@@ -52,7 +54,8 @@ def outcome_power(data: SideData, bandwidth: float, first_stage: float, alpha: f
 
     Notes
     -----
-    Normal-approximation power function (docs/methods.md §11); design effect after Schochet (2009).
+    Normal-approximation power function (docs/methods.md, "Power for planned outcomes");
+    design effect after Schochet (2009).
     """
     nan = float("nan")
     out = {"outcome": name, "mde_itt": nan, "mde_complier": nan, "se": nan, "sd_left": nan,

@@ -18,7 +18,7 @@ Rule for ``density_p`` (the test the design calls for):
 Heaps: when the running variable has heaps (see heaping.py), every test is also run on the
 counts with each heap's excess mass removed (``heaping.deheaped``; keys ending in
 ``_without_heaps``) and the rule picks from those, so a heaped variable is not called "sorting"
-merely because of its heaps (docs/methods.md §9: run the density test with and without heaps).
+merely because of its heaps (docs/methods.md, Which test is density_p: run the density test with and without heaps).
 """
 from __future__ import annotations
 
