@@ -12,6 +12,7 @@ import re
 import shutil
 import subprocess
 import tempfile
+from html import unescape
 from pathlib import Path
 
 import numpy as np
@@ -128,3 +129,16 @@ def test_report_renders_in_headless_chromium(demo):
     if os.environ.get("CUTSCAN_UPDATE_SCREENSHOT"):
         keep = Path(__file__).resolve().parents[1] / "examples" / "report.png"
         Image.fromarray(im.astype(np.uint8)).quantize(64).save(keep, optimize=True)
+
+
+def test_report_wording_of_tiny_p_values_and_the_reported_interval(demo):
+    # A p-value below the display floor reads "p < 0.0001", never "p = < 0.0001"; the interval
+    # the verdict uses is labelled with its kind, not as a second "conventional" row.  (All three
+    # were in the demo report before.)
+    html = (demo / "report.html").read_text(encoding="utf-8")
+    text = unescape(re.sub(r"<[^>]+>", " ", html))
+    assert not re.search(r"=\s*<\s*0\.0001", text)
+    assert "q < 0.0001" in text
+    first_card = html.split("Jump in uptake: intervals", 1)[1].split("</table>", 1)[0]
+    assert "reported (robust)" in first_card and first_card.count(">conventional<") == 1
+    assert ">None<" not in html              # a missing value shows as a dash

@@ -41,6 +41,11 @@ def _p(v):
     return "—" if v is None else ("<0.0001" if v < 1e-4 else f"{v:.2g}")
 
 
+def _p_eq(name: str, v) -> str:
+    """'p = 0.03' in a sentence, or 'p < 0.0001' for a tiny p."""
+    return f"{name} < 0.0001" if v is not None and v < 1e-4 else f"{name} = {_p(v)}"
+
+
 def _img(png: str | None, alt: str, caption: str) -> str:
     if not png:
         return ""
@@ -130,7 +135,9 @@ def _intervals(c: dict) -> list[tuple[str, float, float]]:
             continue
         hk = k.replace("low", "high")
         if hk in c and isinstance(c[hk], (int, float)):
-            name = k.replace("ci_low", "").replace("_low", "").strip("_") or "conventional"
+            name = k.replace("ci_low", "").replace("_low", "").strip("_")
+            if not name:        # ci_low/ci_high: the interval the verdict uses, named by its kind
+                name = f"reported ({c.get('interval') or 'conventional'})"
             out.append((name.replace("_", " "), v, c[hk]))
     iv = c.get("intervals")
     if isinstance(iv, dict):
@@ -142,12 +149,17 @@ def _intervals(c: dict) -> list[tuple[str, float, float]]:
     return [(n, lo, hi) for n, lo, hi in out if lo is not None and hi is not None]
 
 
+def _cell(v) -> str:
+    """A table cell: floats to 4 significant digits, a missing value as a dash."""
+    return "—" if v is None else (_fmt(v, ".4g") if isinstance(v, float) else str(v))
+
+
 def _scalar_table(title: str, d: dict, ident: str) -> str:
     rows = [(k, v) for k, v in d.items() if isinstance(v, (int, float, str, bool)) or v is None]
     if not rows:
         return ""
     body = "".join(f"<tr><th class='l'>{esc(str(k).replace('_', ' '))}</th><td class='l'>"
-                   f"{esc(_fmt(v, '.4g') if isinstance(v, float) else str(v))}</td></tr>"
+                   f"{esc(_cell(v))}</td></tr>"
                    for k, v in rows)
     return f"<div class='{ident}'><h4>{esc(title)}</h4><table>{body}</table></div>"
 
@@ -162,9 +174,8 @@ def _list_table(title: str, items, ident: str) -> str:
     keys = [k for k in dict.fromkeys(k for i in items for k in i)
             if all(isinstance(i.get(k), (int, float, str, bool, type(None))) for i in items)]
     head = "".join(f"<th class='l'>{esc(k.replace('_', ' '))}</th>" for k in keys)
-    body = "".join("<tr>" + "".join(
-        f"<td class='l'>{esc(_fmt(i.get(k), '.4g') if isinstance(i.get(k), float) else str(i.get(k, '—')))}</td>"
-        for k in keys) + "</tr>" for i in items)
+    body = "".join("<tr>" + "".join(f"<td class='l'>{esc(_cell(i.get(k)))}</td>" for k in keys)
+                   + "</tr>" for i in items)
     return f"<div class='{ident}'><h4>{esc(title)}</h4><table><tr>{head}</tr>{body}</table></div>"
 
 
@@ -231,9 +242,9 @@ def card(c: dict, unit: str | None) -> str:
                        f"within the bandwidth {_fmt(c.get('bandwidth'), '.4g')} with 95% bands."))
     parts.append(_draw(figures.density_figure(c, unit), "density around the cutoff",
                        f"Density of {c['running']}: histogram and fitted one-sided densities "
-                       f"(density test p = {_p(c.get('density_p'))})."))
+                       f"({_p_eq('density test p', c.get('density_p'))})."))
     parts.append(_draw(figures.balance_figure(c), "covariate balance",
-                       f"Covariate balance: standardised jumps (joint p = {_p(c.get('balance_p'))})."))
+                       f"Covariate balance: standardised jumps ({_p_eq('joint p', c.get('balance_p'))})."))
     parts.append(_draw(figures.sensitivity_figure(c, _sensitivity_points(c), unit),
                        "bandwidth sensitivity", "Bandwidth sensitivity: the jump re-estimated at "
                        "other bandwidths."))
@@ -244,7 +255,7 @@ def card(c: dict, unit: str | None) -> str:
     if c.get("density_tests"):
         parts.append(_list_table("Density tests", c["density_tests"], "density-tests"))
     if c.get("placebo_p") is not None:
-        parts.append(f"<p class='placebo'>Placebo cutoffs: p = {_p(c['placebo_p'])} (jumps at "
+        parts.append(f"<p class='placebo'>Placebo cutoffs: {_p_eq('p', c['placebo_p'])} (jumps at "
                      "nearby non-cutoffs; a small p means jumps like this one are common here).</p>")
     if isinstance(c.get("power"), dict):
         parts.append(_scalar_table("Power for the planned outcome", c["power"], "power"))
