@@ -28,7 +28,8 @@ class ColumnNotFoundError(InputError):
         self.available = list(available)
         close = difflib.get_close_matches(column, self.available, n=3, cutoff=0.5)
         hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
-        shown = ", ".join(self.available[:20]) + (" ..." if len(self.available) > 20 else "")
+        more = len(self.available) - 20
+        shown = ", ".join(self.available[:20]) + (f" and {more} more" if more > 0 else "")
         super().__init__(
             f"{source}: {role} '{column}' is not in the table.{hint} "
             f"Available columns: {shown}. Fix the name in the spec."

@@ -498,3 +498,9 @@ def test_boundary_numeric_warnings_stay_quiet(tmp_path, capsys):
     err = capsys.readouterr().err
     assert rc == 0 and "RuntimeWarning" not in err and "Traceback" not in err
     assert not [w for w in seen if issubclass(w.category, RuntimeWarning)]
+
+
+def test_C1_long_column_list_is_cut_with_a_count():
+    # A wide table lists the first 20 columns and says how many more there are.
+    err = ColumnNotFoundError("scor", [f"c{i}" for i in range(23)], "wide.csv", "running variable")
+    assert "c19 and 3 more. Fix the name in the spec." in str(err) and "...." not in str(err)
