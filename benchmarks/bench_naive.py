@@ -309,6 +309,7 @@ def main() -> None:
     n = int(a.rows)
     folder = bd.generate(bd.DATA / f"scan_{n}", n, *SHAPE)
     spec = bd.spec_for(folder, *SHAPE)
+    machine = bd.machine()           # before the runs: the load of other jobs, not of this one
     res, cut_wall, cut_cpu = bd.timed(lambda: scanner.scan(spec))
     # The recording run (not timed): the same scan with the estimators wrapped.
     rec = Recorder({r: st.pooled().total for r, st in res.stats.items()})
@@ -361,7 +362,7 @@ def main() -> None:
                   f"{half_ci:.0f} s, 95%, so the ratio lies in "
                   f"{(same_wall - half_ci) / cut_wall:.0f}–{(same_wall + half_ci) / cut_wall:.0f}×)")
     lines = ["## Naive baseline (`benchmarks/bench_naive.py`)", "",
-             f"Machine: {bd.machine()}. {n:,} rows, {SHAPE[0]} running variables, {SHAPE[1]} "
+             f"Machine: {machine}. {n:,} rows, {SHAPE[0]} running variables, {SHAPE[1]} "
              f"treatments, {SHAPE[2]} covariates; {len(cands)} candidates.", "",
              f"- (a) main and covariate fits only (conservative): {n_a:,} row-level statsmodels "
              "WLS fits (treatment and each covariate at the candidate's kernel and bandwidth, "
