@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..bins import BinnedStats
-from ..estimate.local import fit_jump, side_data
+from ..estimate.local import fit_jumps, side_data_many
 
 
 @dataclass(frozen=True)
@@ -40,19 +40,24 @@ class BalanceResult:
 def covariate_balance(stats: BinnedStats, covariates, cutoff: float, bandwidth: float,
                       kernel: str = "triangular", degree: int = 1,
                       right_closed: bool = True) -> BalanceResult:
-    """Jumps of each covariate at ``cutoff`` and a Bonferroni joint p-value."""
-    rows = []
-    for cov in covariates:
-        d = side_data(stats, cov, cutoff, right_closed)
-        fit = fit_jump(stats, cov, cutoff, bandwidth, kernel, degree, right_closed, data=d)
+    """Jumps of each covariate at ``cutoff`` and a Bonferroni joint p-value.
+
+    Covariates present on the same rows share one weighted design and are fitted in one solve
+    (``estimate.local.fit_jumps``); the numbers are those of one fit per covariate.
+    """
+    found = {}
+    for names, d in side_data_many(stats, covariates, cutoff, right_closed):
         win = np.abs(d.u) < bandwidth
         nn = d.n[win].sum()
-        sd = np.sqrt(max(d.s2[win].sum() / nn - (d.s1[win].sum() / nn) ** 2, 0.0)) if nn > 1 else np.nan
-        std = fit.jump / sd if sd and sd > 0 else float("nan")
-        rows.append({"name": cov, "jump": fit.jump, "se": fit.se, "std_jump": float(std),
-                     "std_ci_low": float(fit.ci_low / sd) if sd and sd > 0 else float("nan"),
-                     "std_ci_high": float(fit.ci_high / sd) if sd and sd > 0 else float("nan"),
-                     "p_value": fit.p_value, "reason": fit.reason})
+        for j, (cov, fit) in enumerate(zip(names, fit_jumps(d, cutoff, bandwidth, kernel, degree))):
+            s1, s2 = d.s1[win, j].sum(), d.s2[win, j].sum()
+            sd = np.sqrt(max(s2 / nn - (s1 / nn) ** 2, 0.0)) if nn > 1 else np.nan
+            std = fit.jump / sd if sd and sd > 0 else float("nan")
+            found[cov] = {"name": cov, "jump": fit.jump, "se": fit.se, "std_jump": float(std),
+                          "std_ci_low": float(fit.ci_low / sd) if sd and sd > 0 else float("nan"),
+                          "std_ci_high": float(fit.ci_high / sd) if sd and sd > 0 else float("nan"),
+                          "p_value": fit.p_value, "reason": fit.reason}
+    rows = [found[cov] for cov in covariates]
     ps = [r["p_value"] for r in rows if np.isfinite(r["p_value"])]
     joint = min(1.0, len(ps) * min(ps)) if ps else float("nan")
     return BalanceResult(float(joint), rows)

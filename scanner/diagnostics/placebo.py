@@ -50,7 +50,7 @@ def placebo_test(stats, data: SideData, cutoff: float, bandwidth: float, z_real:
         return PlaceboResult(nan, 0, reason="no real jump to compare")
     cuts, zs = [], []
     for is_right, side in ((False, ~data.right), (True, data.right)):
-        u = data.u[side]
+        u, n, s1, s2 = data.u[side], data.n[side], data.s1[side], data.s2[side]
         if u.size == 0:
             continue
         # Placebo p needs its window inside one side: h ≤ p ≤ max − h (right), mirrored on the left.
@@ -63,8 +63,8 @@ def placebo_test(stats, data: SideData, cutoff: float, bandwidth: float, z_real:
             win = np.abs(v) < h
             if win.sum() < 4:
                 continue
-            d = SideData(v[win], data.n[side][win], data.s1[side][win], data.s2[side][win],
-                         v[win] >= 0)
+            vw = v[win]
+            d = SideData(vw, n[win], s1[win], s2[win], vw >= 0)
             fit = fit_jump(stats, "", cutoff + p, h, kernel, degree, data=d)
             if np.isfinite(fit.z):
                 cuts.append(float(cutoff + p))

@@ -73,7 +73,7 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         out.update(interval="robust", ci_low=rob.ci_low, ci_high=rob.ci_high, p_value=rob.p_value)
     else:
         out.update(interval="conventional")   # keeps the conventional fields already in the row
-    out["sensitivity"] = sensitivity(d, sel, kernel, degree)
+    out["sensitivity"] = sensitivity(d, sel, kernel, degree, main=rob)
     return out
 
 

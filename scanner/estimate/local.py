@@ -20,17 +20,21 @@ from __future__ import annotations
 from dataclasses import dataclass, asdict
 
 import numpy as np
-from scipy import stats as sps
+from scipy import special
 
 from ..bins import BinnedStats
 from .kernels import kernel as kernel_fn
 
-Z95 = float(sps.norm.ppf(0.975))
+Z95 = float(special.ndtri(0.975))
 
 
 @dataclass(frozen=True)
 class SideData:
-    """Bins of one column around a cutoff: centred x, counts and sums; ``right`` marks the right side."""
+    """Bins of one column around a cutoff: centred x, counts and sums; ``right`` marks the right side.
+
+    ``s1``/``s2`` may also be 2-D (bins × columns) for several columns present on the same rows
+    of every bin (same counts ``n``): see :func:`side_data_many` and :func:`fit_jumps`.
+    """
 
     u: np.ndarray
     n: np.ndarray
@@ -50,6 +54,35 @@ def side_data(stats: BinnedStats, column: str, cutoff: float, right_closed: bool
     u = x[keep] - cutoff
     right = u >= 0 if right_closed else u > 0
     return SideData(u, n[keep], s1[keep], s2[keep], right)
+
+
+def side_data_many(stats: BinnedStats, columns, cutoff: float,
+                   right_closed: bool = True) -> list[tuple[list[str], SideData]]:
+    """Columns grouped by their per-bin counts, each group as one SideData with 2-D sums.
+
+    Columns present on the same rows of every bin (equal counts) share the bins, the kernel
+    weights and the weighted design, so :func:`fit_jumps` fits them in one solve.  Groups keep
+    the order of ``columns``.
+    """
+    st = stats.pooled()
+    groups: list[tuple[list[str], np.ndarray]] = []
+    for name in columns:
+        n = st.cnt[:, st.col(name)]
+        for names, n0 in groups:
+            if np.array_equal(n, n0):
+                names.append(name)
+                break
+        else:
+            groups.append(([name], n))
+    out = []
+    for names, n in groups:
+        keep = n > 0
+        idx = [st.col(c) for c in names]
+        u = st.x[keep] - cutoff
+        right = u >= 0 if right_closed else u > 0
+        out.append((names, SideData(u, n[keep].astype(float), st.s1[keep][:, idx],
+                                    st.s2[keep][:, idx], right)))
+    return out
 
 
 @dataclass(frozen=True)
@@ -80,18 +113,46 @@ class JumpFit:
         return asdict(self)
 
 
-def _design(u, degree):
-    return np.vander(u, degree + 1, increasing=True)
+def powers(u, degree):
+    """Columns 1, u, …, u^degree: ``np.vander(u, degree + 1, increasing=True)``, same values.
+
+    Built by repeated multiplication as np.vander does, without its overhead (this runs tens of
+    thousands of times per scan).
+    """
+    R = np.empty((u.size, degree + 1))
+    R[:, 0] = 1.0
+    if degree >= 1:
+        R[:, 1] = u
+    for j in range(2, degree + 1):
+        R[:, j] = R[:, j - 1] * u
+    return R
 
 
-def _side_fit(u, n, s1, s2, w, degree):
-    """Weighted polynomial fit on one side from bins; returns (beta, Ainv, R, fitted)."""
-    R = _design(u, degree)
+def _side_design(u, n, w, degree):
+    """Design ``R`` and inverse weighted moment matrix ``(R'WR)⁻¹`` of one side's bins.
+
+    They depend on the bins, counts and kernel weights only, so columns present on the same
+    rows share them (:func:`fit_jumps`).
+    """
+    R = powers(u, degree)
     A = (R * (w * n)[:, None]).T @ R
-    b = R.T @ (w * s1)
-    Ainv = np.linalg.inv(A)
-    beta = Ainv @ b
+    return R, np.linalg.inv(A)
+
+
+def _side_fit(u, n, s1, s2, w, degree, design=None):
+    """Weighted polynomial fit on one side from bins; returns (beta, Ainv, R, fitted).
+
+    ``design`` is ``_side_design(u, n, w, degree)`` when already at hand.
+    """
+    R, Ainv = design if design is not None else _side_design(u, n, w, degree)
+    beta = Ainv @ (R.T @ (w * s1))
     return beta, Ainv, R, R @ beta
+
+
+def _intercept_var(R, Ainv, w, rss):
+    """Sandwich variance of the intercept, ``(A⁻¹ R'diag(w²·rss)R A⁻¹)[0, 0]``."""
+    meat = (R * (w ** 2 * rss)[:, None]).T @ R
+    return (Ainv @ meat @ Ainv)[0, 0]
 
 
 def _rss(n, s1, s2, fitted):
@@ -112,7 +173,7 @@ def _windows(data: SideData, h, kern, degree, h_right=None):
     K = kernel_fn(kern)
     hr = h if h_right is None else h_right
     if h > 0 and hr > 0:
-        w = np.where(data.right, K(data.u / hr), K(data.u / h))
+        w = K(data.u / h) if hr == h else np.where(data.right, K(data.u / hr), K(data.u / h))
     else:
         w = np.zeros_like(data.u)
     inside = w > 0
@@ -121,9 +182,13 @@ def _windows(data: SideData, h, kern, degree, h_right=None):
     return w, L, Rm
 
 
-def _check_support(cutoff, h, kern, degree, L, Rm, data):
-    nl, nr = int(data.n[L].sum()), int(data.n[Rm].sum())
-    dl, dr = int(L.sum()), int(Rm.sum())
+def _support(L, Rm, data):
+    """Rows and distinct values inside the window on each side: (n_left, n_right, d_left, d_right)."""
+    return int(data.n[L].sum()), int(data.n[Rm].sum()), int(L.sum()), int(Rm.sum())
+
+
+def _check_support(cutoff, h, kern, degree, counts):
+    nl, nr, dl, dr = counts
     if not (np.isfinite(h) and h > 0):
         return _not_estimable(cutoff, h, kern, degree, "no usable bandwidth", nl, nr, dl, dr)
     if dl == 0 or dr == 0:
@@ -150,6 +215,7 @@ def fit_jump(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     kernel : 'triangular' (default), 'epanechnikov' or 'uniform'.
     degree : polynomial degree on each side (0, 1 or 2).
     right_closed : rows at x == cutoff belong to the right side (x ≥ c) when True.
+    data : the column's SideData when already at hand (then ``stats`` and ``column`` are unused).
     bandwidth_right : optional separate bandwidth on the right (then ``bandwidth`` is the left one).
 
     Returns
@@ -161,39 +227,72 @@ def fit_jump(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     Hahn, Todd & van der Klaauw (2001); sandwich variance White (1980) with HC1 scaling.
     """
     d = data if data is not None else side_data(stats, column, cutoff, right_closed)
+    return fit_jumps(d, cutoff, bandwidth, kernel, degree, bandwidth_right)[0]
+
+
+def fit_jumps(data: SideData, cutoff: float, bandwidth: float, kernel: str = "triangular",
+              degree: int = 1, bandwidth_right: float | None = None) -> list[JumpFit]:
+    """:func:`fit_jump` for every column of ``data`` (2-D sums: columns sharing the counts).
+
+    The kernel weights, the weighted design and its inverse depend only on the bins and counts,
+    so they are formed once per side and applied to all columns; each column's numbers are the
+    ones :func:`fit_jump` gives for it alone.
+
+    Returns
+    -------
+    list of JumpFit, one per column (one for 1-D sums).
+
+    Notes
+    -----
+    Hahn, Todd & van der Klaauw (2001); sandwich variance White (1980) with HC1 scaling.
+    """
+    d = data
+    S1 = d.s1.reshape(d.u.size, -1)
+    S2 = d.s2.reshape(d.u.size, -1)
     h = float(bandwidth)
     w, L, Rm = _windows(d, h, kernel, degree, bandwidth_right)
-    bad = _check_support(cutoff, min(h, bandwidth_right or h), kernel, degree, L, Rm, d)
+    counts = _support(L, Rm, d)
+    bad = _check_support(cutoff, min(h, bandwidth_right or h), kernel, degree, counts)
+    k = S1.shape[1]
     if bad:
-        return bad
+        return [bad] * k
     try:
-        parts = []
-        for m in (L, Rm):
-            beta, Ainv, R, fit = _side_fit(d.u[m], d.n[m], d.s1[m], d.s2[m], w[m], degree)
-            rss = _rss(d.n[m], d.s1[m], d.s2[m], fit)
-            meat = (R * (w[m] ** 2 * rss)[:, None]).T @ R
-            parts.append((beta, (Ainv @ meat @ Ainv)[0, 0]))
+        sides = [(d.u[m], d.n[m], w[m], S1[m], S2[m]) for m in (L, Rm)]
+        designs = [_side_design(u, n, wm, degree) for u, n, wm, _, _ in sides]
     except np.linalg.LinAlgError:
-        return _not_estimable(cutoff, h, kernel, degree, "singular local fit",
-                              d.n[L].sum(), d.n[Rm].sum(), L.sum(), Rm.sum())
-    (bl, vl), (br, vr) = parts
+        nl, nr, dl, dr = counts
+        return [_not_estimable(cutoff, h, kernel, degree, "singular local fit",
+                               nl, nr, dl, dr)] * k
     n_h = float(d.n[L].sum() + d.n[Rm].sum())
-    k = 2 * (degree + 1)
-    scale = n_h / (n_h - k) if n_h > k else float("nan")
-    jump = br[0] - bl[0]
-    se = float(np.sqrt((vl + vr) * scale))
-    return _finish(cutoff, h, kernel, degree, jump, se, bl, br, d, L, Rm)
+    scale = n_h / (n_h - 2 * (degree + 1)) if n_h > 2 * (degree + 1) else float("nan")
+    out = []
+    for j in range(k):
+        # One column at a time through the shared designs: the same operations, in the same
+        # order, as a fit of that column alone (batched BLAS calls would round differently).
+        parts = []
+        for (u, n, wm, s1, s2), design in zip(sides, designs):
+            beta, Ainv, R, fit = _side_fit(u, n, s1[:, j], s2[:, j], wm, degree, design)
+            parts.append((beta, _intercept_var(R, Ainv, wm, _rss(n, s1[:, j], s2[:, j], fit))))
+        (bl, vl), (br, vr) = parts
+        se = float(np.sqrt((vl + vr) * scale))
+        out.append(_finish(cutoff, h, kernel, degree, br[0] - bl[0], se, bl, br, counts))
+    return out
 
 
-def _finish(cutoff, h, kern, degree, jump, se, bl, br, d, L, Rm) -> JumpFit:
+def two_sided_p(z: float) -> float:
+    """``2·(1 − Φ(|z|))`` via scipy.special.ndtr (what scipy.stats.norm.sf computes, without
+    the distribution machinery's per-call overhead)."""
+    return float(2 * special.ndtr(-abs(z)))
+
+
+def _finish(cutoff, h, kern, degree, jump, se, bl, br, counts) -> JumpFit:
     z = jump / se if se > 0 else (np.inf if jump != 0 else float("nan"))
-    p = float(2 * sps.norm.sf(abs(z))) if np.isfinite(z) else (0.0 if np.isinf(z) else float("nan"))
+    p = two_sided_p(z) if np.isfinite(z) else (0.0 if np.isinf(z) else float("nan"))
     sl = bl[1] if degree >= 1 else 0.0
     sr = br[1] if degree >= 1 else 0.0
     return JumpFit(float(cutoff), h, kern, degree, float(jump), se, float(z), p,
                    float(jump - Z95 * se), float(jump + Z95 * se), float(bl[0]), float(br[0]),
-                   float(sl), float(sr), int(d.n[L].sum()), int(d.n[Rm].sum()),
-                   int(L.sum()), int(Rm.sum()))
+                   float(sl), float(sr), *counts)
 
 
 def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,
@@ -263,5 +362,5 @@ def fit_fuzzy(stats: BinnedStats, treatment: str, outcome: str, cutoff: float, b
     k = 2 * (degree + 1)
     var *= n_h / (n_h - k) if n_h > k else nan
     se = float(np.sqrt(var) / abs(fs.jump))
-    p = float(2 * sps.norm.sf(abs(tau / se))) if se > 0 else nan
+    p = two_sided_p(tau / se) if se > 0 else nan
     return FuzzyFit(float(tau), se, tau - Z95 * se, tau + Z95 * se, p, fs, rf)

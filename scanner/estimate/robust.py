@@ -29,10 +29,10 @@ import math
 from dataclasses import dataclass, asdict
 
 import numpy as np
-from scipy import stats as sps
+from scipy import special, stats as sps
 
 from .kernels import kernel as kernel_fn
-from .local import SideData, _rss, Z95
+from .local import SideData, _rss, Z95, powers
 
 
 def _pair(v):
@@ -47,7 +47,7 @@ def coef_weights(u, n, w, degree):
 
     Raises numpy.linalg.LinAlgError when the weighted design is singular.
     """
-    R = np.vander(u, degree + 1, increasing=True)
+    R = powers(u, degree)
     A = (R * (w * n)[:, None]).T @ R
     L = np.linalg.solve(A, (R * w[:, None]).T)
     return L, R
@@ -91,8 +91,8 @@ def side_operator(u, n, h, b, kern, p=1) -> SideOperator:
     Lpf[:, mh] = Lp
     Lqf = np.zeros((q + 1, u.size))
     Lqf[:, mb] = Lq
-    return SideOperator(lp, lbc, kappa, mq, Lpf, np.vander(u, p + 1, increasing=True),
-                        Lqf, np.vander(u, q + 1, increasing=True), mh, mh | mb)
+    Rq = powers(u, q)
+    return SideOperator(lp, lbc, kappa, mq, Lpf, Rq[:, : p + 1], Lqf, Rq, mh, mh | mb)
 
 
 def _hc1(nrows, k):
@@ -384,10 +384,6 @@ def curvature_bound(d: SideData, degree: int = 4) -> float:
     return float(best)
 
 
-def _vander(u, p):
-    return np.vander(u, p + 1, increasing=True)
-
-
 @dataclass(frozen=True)
 class HonestFit:
     """A bias-aware fixed-length interval around the conventional estimate."""
@@ -446,7 +442,7 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
         conv += sign * (L[0] @ s1[m])
         Lf = np.zeros((p + 1, u.size))
         Lf[:, m] = L
-        se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, _vander(u, p))[m]).sum()
+        se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, powers(u, p))[m]).sum()
         bias += 0.5 * M * (n[m] * np.abs(L[0]) * u[m] ** 2).sum()
         rows += n[m].sum()
     se = float(np.sqrt(se * _scale(vce, rows, 2 * (p + 1))))
@@ -459,7 +455,7 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
     t = bias / se
     cv = honest_cv(t, alpha)
     z = abs(conv) / se
-    pv = float(sps.norm.sf(z - t) + sps.norm.cdf(-z - t))
+    pv = float(special.ndtr(t - z) + special.ndtr(-z - t))   # = norm.sf(z − t) + norm.cdf(−z − t)
     return HonestFit(float(conv - cv * se), float(conv + cv * se), float(bias), cv, float(M),
                      min(1.0, pv))
 

@@ -115,8 +115,11 @@ def donut(d: SideData, k: int) -> SideData:
 
 
 def sensitivity(d: SideData, sel: Selection, kernel: str = "triangular", degree: int = 1,
-                factors=FACTORS, donuts=DONUTS) -> list[dict]:
+                factors=FACTORS, donuts=DONUTS, main=None) -> list[dict]:
     """Estimates at multiples of the chosen bandwidth and with donut holes, one dict each.
+
+    ``main`` (optional) is the candidate's own ``robust_jump`` at (h, b): the ×1 run is that
+    same fit, so it is reused rather than recomputed.
 
     Each dict: ``variant`` ("h×0.5", …, "donut 1", …), ``bandwidth`` (left), ``jump``, ``se``
     (conventional), ``jump_bc``, ``ci_low``, ``ci_high`` (robust), ``reason``.
@@ -129,8 +132,11 @@ def sensitivity(d: SideData, sel: Selection, kernel: str = "triangular", degree:
     out = []
     runs = [(f"h×{f:g}", f, d) for f in factors] + [(f"donut {k}", 1.0, donut(d, k)) for k in donuts]
     for name, f, data in runs:
-        fit = robust_jump(data, (sel.h_left * f, sel.h_right * f),
-                          (sel.b_left * f, sel.b_right * f), kernel, degree)
+        if f == 1.0 and data is d and main is not None:
+            fit = main
+        else:
+            fit = robust_jump(data, (sel.h_left * f, sel.h_right * f),
+                              (sel.b_left * f, sel.b_right * f), kernel, degree)
         out.append({"variant": name, "bandwidth": sel.h_left * f, "jump": fit.jump, "se": fit.se,
                     "jump_bc": fit.jump_bc, "ci_low": fit.ci_low, "ci_high": fit.ci_high,
                     "reason": fit.reason})
