@@ -11,6 +11,7 @@ import json
 import math
 import os
 import shutil
+import signal
 import tempfile
 from pathlib import Path
 
@@ -18,6 +19,8 @@ import numpy as np
 
 from ..errors import OutputError
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
+
+HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}   # held back while folders are created or moved
 
 RESULTS_VERSION = "1.0"
 COUNT_FIELDS = ("n_left", "n_right")
@@ -234,9 +237,7 @@ def _swap_in(tmp: Path, out: Path) -> None:
     SIGINT and SIGTERM are held back while the folders move, so an interrupt lands before or
     after the swap, never between the two renames of the fallback path.
     """
-    import signal
-    held = {signal.SIGINT, signal.SIGTERM}
-    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, HELD_SIGNALS)
     try:
         if not out.exists():
             os.replace(tmp, out)
@@ -263,13 +264,18 @@ def write_outputs(result, out: Path, force: bool = False, protect=()) -> Path:
     out = Path(out)
     recover(out)
     check_out(out, force, protect)
+    # An interrupt between creating the temporary folder and entering the clean-up block below
+    # would leave the folder behind, so SIGINT/SIGTERM are held until the block is entered.
+    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, HELD_SIGNALS)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}{TMP_MARK}", dir=out.parent))
     except OSError as exc:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
         raise OutputError(f"{out}: cannot create the output folder: {exc.strerror or exc}; choose "
                           "a folder you can write to.") from None
     try:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)   # a held interrupt lands here
         results = result.to_dict()
         write_json(results, tmp / "results.json")
         write_csv(results, tmp / "candidates.csv")
