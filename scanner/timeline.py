@@ -20,13 +20,11 @@ import datetime as dt
 from dataclasses import dataclass, asdict
 
 import numpy as np
-from scipy import stats as sps
 
 from .bins import BinnedStats
-from .estimate.local import JumpFit, fit_jump
+from .estimate.local import Z95, JumpFit, fit_jump, two_sided_p
 
 MIN_PERIOD_ROWS = 200     # rows on the thinner side of c ± h in the median quarter (our choice)
-Z95 = float(sps.norm.ppf(0.975))
 
 
 def quarter_code(day: dt.date) -> int:
@@ -219,7 +217,7 @@ def diff_in_disc(stats: BinnedStats, column: str, cutoff: float, bandwidth: floa
     N = nb + na
     var = (_unscaled_var(fb) + _unscaled_var(fa)) * N / (N - k)
     did, se = ja - jb, float(np.sqrt(var))
-    p = float(2 * sps.norm.sf(abs(did / se))) if se > 0 else nan
+    p = two_sided_p(did / se) if se > 0 else nan
     return DiscDiff(change.isoformat(), jb, sb, ja, sa, float(did), se, did - Z95 * se,
                     did + Z95 * se, p, nb, na, left_out)
 

@@ -15,9 +15,9 @@ from __future__ import annotations
 from dataclasses import dataclass, asdict
 
 import numpy as np
-from scipy import stats as sps
 
 from ..bins import BinnedStats
+from ..estimate.local import two_sided_p
 
 MIN_BINS = 5
 
@@ -125,5 +125,5 @@ def mccrary_test(stats: BinnedStats, cutoff: float, right_closed: bool = True,
         return _fail("estimated density is not positive on both sides", b, h)
     theta = np.log(fr) - np.log(fl)
     se = np.sqrt((1 / (N * h)) * 4.8 * (1 / fr + 1 / fl))
-    p = float(2 * sps.norm.sf(abs(theta / se)))
+    p = two_sided_p(theta / se)
     return DensityTest("mccrary", float(theta), float(se), p, fl, fr, float(b), float(h))

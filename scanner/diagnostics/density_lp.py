@@ -40,10 +40,10 @@ simulation in benchmarks/density_size_power.py].
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats as sps
 
 from ..bins import BinnedStats
 from ..estimate.kernels import kernel as kernel_fn
+from ..estimate.local import two_sided_p
 from .density import DensityTest
 
 MIN_SIDE_POINTS = 4      # a local quadratic CDF fit needs more than p + 1 support points
@@ -113,13 +113,26 @@ def _pilot_pooled(u, n, F, reach, degree=PILOT_DEGREE):
 
 def _mse_bandwidth(u, n, F, N, left, right, p, kern):
     """Common h minimising the null MSE of f̂⁺ − f̂⁻ (bias from the u³ and u⁴ terms of F)."""
+    hs, mse = _mse_curve(u, n, F, N, left, right, p, kern)
+    if hs.size == 1:
+        return float(hs[0])
+    ok = np.isfinite(mse)
+    return float(hs[ok][np.argmin(mse[ok])]) if ok.any() else float("nan")
+
+
+def _mse_curve(u, n, F, N, left, right, p, kern):
+    """(grid of h, null MSE of f̂⁺ − f̂⁻ at each h); NaN where a side cannot be fitted.
+
+    A grid of one point (the smallest usable h, without an MSE) when the cap leaves no range.
+    """
+    nan = np.array([np.nan])
     mean = (n * u).sum() / N
     sd = float(np.sqrt(max((n * (u - mean) ** 2).sum() / N, 0.0)))
     hs = []
     for side in (left, right):
         d = np.sort(np.abs(u[side]))
         if d.size < MIN_SIDE_POINTS + 1:
-            return float("nan")
+            return nan, nan
         hs.append((d[min(d.size - 1, MIN_SIDE_POINTS + 1)] * 1.01, d[-1]))
     # The bias model keeps only the f'' and f''' terms, whose leading part cancels in the
     # difference; at large N even small unmodelled bias then dominates a wide window.  So the
@@ -128,7 +141,7 @@ def _mse_bandwidth(u, n, F, N, left, right, p, kern):
     cap = CAP_MULTIPLE * 1.06 * sd * N ** (-0.2)
     lo, hi = max(a for a, _ in hs), min(min(b for _, b in hs), sd, cap)
     if not hi > lo:
-        return float(lo)
+        return np.array([lo]), nan
     f2, f3 = _pilot_pooled(u, n, F, sd)
     # Only bins within the widest h enter the fits; the others carry ψ_j = S − f̂ (left of the
     # window, S = Σ nℓ, zero up to rounding) or −f̂ (right of it), added in closed form, so the
@@ -137,8 +150,9 @@ def _mse_bandwidth(u, n, F, N, left, right, p, kern):
     idx = np.flatnonzero(inside)
     n_before, n_after = n[:idx[0]].sum(), n[idx[-1] + 1:].sum()
     u, n_in, F, left, right = u[inside], n[inside], F[inside], left[inside], right[inside]
-    best, best_h = np.inf, float("nan")
-    for h in np.geomspace(lo, hi, 20):
+    grid = np.geomspace(lo, hi, 20)
+    mse = np.full(grid.size, np.nan)
+    for i, h in enumerate(grid):
         fits = [_side_fit(u, n_in, F, side, h, p, kern) for side in (left, right)]
         if any(f is None for f in fits):
             continue
@@ -147,10 +161,8 @@ def _mse_bandwidth(u, n, F, N, left, right, p, kern):
         psi = _psi(n_in, ell_r, fr) - _psi(n_in, ell_l, fl)
         jump = fr - fl
         outside = n_before * ((n_in * (ell_r - ell_l)).sum() - jump) ** 2 + n_after * jump ** 2
-        mse = bias ** 2 + ((n_in * psi ** 2).sum() + outside) / N ** 2
-        if mse < best:
-            best, best_h = mse, float(h)
-    return best_h
+        mse[i] = bias ** 2 + ((n_in * psi ** 2).sum() + outside) / N ** 2
+    return grid, mse
 
 
 def _fail(reason, h=float("nan")):
@@ -210,6 +222,6 @@ def lp_density_test(stats: BinnedStats, cutoff: float, right_closed: bool = True
     t = (f_r - f_l) / np.sqrt(v_d)
     theta = float(np.log(f_r / f_l))
     se_theta = float(np.sqrt(v_l / f_l ** 2 + v_r / f_r ** 2))
-    p = float(2 * sps.norm.sf(abs(t)))
+    p = two_sided_p(t)
     return DensityTest("local polynomial", theta, se_theta, p, float(f_l), float(f_r),
                        float("nan"), float(h))

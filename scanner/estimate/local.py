@@ -50,10 +50,15 @@ def side_data(stats: BinnedStats, column: str, cutoff: float, right_closed: bool
     """
     st = stats.pooled()
     x, n, s1, s2 = st.column_sums(column)
+    keep, u, right = _centre(x, n, cutoff, right_closed)
+    return SideData(u, n[keep], s1[keep], s2[keep], right)
+
+
+def _centre(x, n, cutoff, right_closed):
+    """Occupied bins, their x centred at ``cutoff``, and which of them lie on the right."""
     keep = n > 0
     u = x[keep] - cutoff
-    right = u >= 0 if right_closed else u > 0
-    return SideData(u, n[keep], s1[keep], s2[keep], right)
+    return keep, u, (u >= 0 if right_closed else u > 0)
 
 
 def side_data_many(stats: BinnedStats, columns, cutoff: float,
@@ -76,10 +81,8 @@ def side_data_many(stats: BinnedStats, columns, cutoff: float,
             groups.append(([name], n))
     out = []
     for names, n in groups:
-        keep = n > 0
+        keep, u, right = _centre(st.x, n, cutoff, right_closed)
         idx = [st.col(c) for c in names]
-        u = st.x[keep] - cutoff
-        right = u >= 0 if right_closed else u > 0
         out.append((names, SideData(u, n[keep].astype(float), st.s1[keep][:, idx],
                                     st.s2[keep][:, idx], right)))
     return out
