@@ -60,8 +60,7 @@ def main() -> None:
              f"Bins per running variable: {r['bins']}. Generating the folder took "
              f"{gen_wall:.0f} s (not part of the scan).", "",
              f"Reproduce: `python benchmarks/bench_big.py --rows {n}`."]
-    print("\n".join(lines))
-    print(bd.write_section("bench_big", "\n".join(lines)))
+    bd.publish("bench_big", lines)
 
 
 if __name__ == "__main__":

@@ -112,6 +112,13 @@ def write_section(name: str, text: str) -> Path:
     return path
 
 
+def publish(name: str, lines: list[str]) -> None:
+    """Print a benchmark's section and write it into benchmarks/results/scale.md."""
+    text = "\n".join(lines)
+    print(text)
+    print(write_section(name, text))
+
+
 def machine() -> str:
     import platform
     load = os.getloadavg()[0]

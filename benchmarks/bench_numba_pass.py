@@ -140,8 +140,7 @@ def main() -> None:
              f"Group codes and the addend matrix, which it does not replace, take "
              f"{tot['codes'] + tot['matrix']:.3f} s.", "",
              f"Reproduce: `pip install numba && python benchmarks/bench_numba_pass.py --rows {n}`."]
-    print("\n".join(lines))
-    print(bd.write_section("bench_numba", "\n".join(lines)))
+    bd.publish("bench_numba", lines)
 
 
 if __name__ == "__main__":
