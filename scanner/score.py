@@ -224,13 +224,17 @@ def _fmt_f(f):
     return "> 9,999" if f > 9999 else f"{f:.1f}"
 
 
-def _fmt_p(p):
-    return "n/a" if p is None or not np.isfinite(p) else (f"{p:.2g}" if p >= 1e-4 else "< 0.0001")
+def format_p(p, missing: str = "n/a") -> str:
+    """A p- or q-value for people: two significant digits, '< 0.0001' below that floor
+    (so an underflowed 0 never reads as certainty), ``missing`` for None or NaN."""
+    if p is None or not np.isfinite(p):
+        return missing
+    return f"{p:.2g}" if p >= 1e-4 else "< 0.0001"
 
 
-def _eq_p(name: str, p) -> str:
+def format_p_eq(name: str, p, missing: str = "n/a") -> str:
     """'p = 0.012', or 'p < 0.0001' for a tiny p (never 'p = < 0.0001')."""
-    text = _fmt_p(p)
+    text = format_p(p, missing)
     return f"{name} {text}" if text.startswith("<") else f"{name} = {text}"
 
 
@@ -241,7 +245,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
         return [f"could not be estimated: {c.get('reason') or 'unknown reason'}."]
     out.append(f"uptake of {c['treatment']} jumps by {c['jump']:+.3f} at {c['running']} = "
                f"{c['cutoff']:g} (from {c['left']:.2f} to {c['right']:.2f}; F = {_fmt_f(c['first_stage_f'])}, "
-               f"{_eq_p('q', c['q_value'])}).")
+               f"{format_p_eq('q', c['q_value'])}).")
     fl = c.get("flags", [])
     if "weak" in fl:
         out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
@@ -249,18 +253,18 @@ def reasons(c: dict, alpha: float) -> list[str]:
         how = (c.get("density_method") or "density test").replace("_", " ")
         how = how.replace(" without heaps", " test, heaps' excess removed")
         out.append(f"the density of {c['running']} changes {100 * (c['density_ratio'] - 1):+.0f}% at the "
-                   f"cutoff ({how}, {_eq_p('p', c['density_p'])}): people may be sorting around the line.")
+                   f"cutoff ({how}, {format_p_eq('p', c['density_p'])}): people may be sorting around the line.")
     if "imbalance" in fl and c.get("balance_worst"):
         w = c["balance_worst"]
         out.append(f"covariate '{w['name']}' jumps by {w['std_jump']:+.2f} sd at the cutoff "
-                   f"({_eq_p('p', w['p_value'])}): groups either side differ beyond treatment.")
+                   f"({format_p_eq('p', w['p_value'])}): groups either side differ beyond treatment.")
     if "heaping" in fl:
         if c.get("heap_near") or c.get("donut_changes") is None:
             out.append(f"a heap at {c['heap_value']:g} holds {c['heap_ratio']:.1f}× the rows of neighbouring "
                        "values: rounded or self-reported values sit on the line.")
         if c.get("donut_changes"):
             out.append(f"dropping the heaped values moves the jump from {c['jump']:+.3f} to "
-                       f"{c['donut_jump']:+.3f} ({_eq_p('p', c['donut_p'])}): the estimate leans on "
+                       f"{c['donut_jump']:+.3f} ({format_p_eq('p', c['donut_p'])}): the estimate leans on "
                        "rounded values.")
     if "coarse" in fl:
         out.append(f"only {min(c['distinct_left'], c['distinct_right'])} distinct values of "
@@ -276,7 +280,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
                    "doubled or the values nearest the cutoff are dropped.")
     if c.get("placebo_n") and c.get("placebo_exceed"):
         out.append(f"{c['placebo_exceed']} of {c['placebo_n']} placebo cutoffs away from the line show "
-                   f"a jump at least as clear ({_eq_p('placebo p', c['placebo_p'])}).")
+                   f"a jump at least as clear ({format_p_eq('placebo p', c['placebo_p'])}).")
     if c.get("share_compliers") is not None and np.isfinite(c["share_compliers"]) \
             and _below(c.get("q_value"), alpha):
         out.append(f"the threshold binds for {100 * c['share_compliers']:.0f}% at the cutoff "
@@ -291,7 +295,7 @@ def reasons(c: dict, alpha: float) -> list[str]:
                        + f" at {100 * pw['power']:.0f}% power, alpha {pw['alpha']:g}.")
     if c.get("q_value") is not None and np.isfinite(c["q_value"]) and c["q_value"] >= alpha:
         out.append(f"no jump after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
-                   f"({_eq_p('q', c['q_value'])} ≥ {alpha:g}).")
+                   f"({format_p_eq('q', c['q_value'])} ≥ {alpha:g}).")
     return out
 
 
@@ -352,7 +356,7 @@ def search_reasons(c: dict) -> list[str]:
         return []
     where = (f"best fit at {d['location']:g} (95% set {d['ci_low']:g} to {d['ci_high']:g})")
     found = (f"|t| = {abs(d['t']):.1f} over {d['n_grid_points']} grid points, search-adjusted "
-             f"{_eq_p('p', d['search_p'])}")
+             f"{format_p_eq('p', d['search_p'])}")
     if c["origin"] != "discovered":
         return [f"{c['origin']} at {c['cutoff']:g}, {where}: the search ({found}) puts the break "
                 "at or near this cutoff."]

@@ -84,3 +84,16 @@ def test_existing_output_needs_force(demo):
     proc = run_cli("demo", "--out", out, "--rows", "5000")
     assert proc.returncode == 2 and "--force" in proc.stderr
     assert (out / "results.json").exists()
+
+
+def test_terminal_table_never_prints_an_underflowed_q_as_zero(demo):
+    # The top demo rules have q-values that underflow to 0.0 in results.json; the terminal
+    # table shows them below the display floor ("< 0.0001", as the report does), not as "0".
+    out, proc = demo
+    assert any(c["q_value"] == 0.0 for c in _rows(out))
+    lines = proc.stdout.splitlines()
+    head = next(line for line in lines if "┃" in line and " q " in line)
+    col = [c.strip() for c in head.split("┃")].index("q")     # wide or compact layout
+    cells = [line.split("│")[col].strip() for line in lines
+             if line.count("│") >= 6 and line.split("│")[1].strip().isdigit()]
+    assert cells and "0" not in cells and "< 0.0001" in cells

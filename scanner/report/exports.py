@@ -8,6 +8,8 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
+from ..score import format_p
+
 BIN_FIELDS = ("rank", "running", "treatment", "cutoff", "figure", "side", "x_low", "x_high",
               "x_mean", "n", "value", "value_kind")
 
@@ -53,7 +55,7 @@ def _num(v, fmt, none="n/a"):
 
 
 def _p(v):
-    return "n/a" if v is None else ("< 0.0001" if v < 1e-4 else f"{v:.2g}")
+    return format_p(v)
 
 
 def markdown(results: dict, top: int = 5) -> str:

@@ -9,6 +9,7 @@ from __future__ import annotations
 import html
 from pathlib import Path
 
+from ..score import format_p, format_p_eq
 from . import figures
 from .exports import cautions
 
@@ -38,12 +39,11 @@ def _fmt(v, f, none="—"):
 
 
 def _p(v):
-    return "—" if v is None else ("<0.0001" if v < 1e-4 else f"{v:.2g}")
+    return format_p(v, "—")
 
 
 def _p_eq(name: str, v) -> str:
-    """'p = 0.03' in a sentence, or 'p < 0.0001' for a tiny p."""
-    return f"{name} < 0.0001" if v is not None and v < 1e-4 else f"{name} = {_p(v)}"
+    return format_p_eq(name, v, "—")
 
 
 def _img(png: str | None, alt: str, caption: str) -> str:

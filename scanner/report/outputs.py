@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import OutputError
+from ..score import format_p
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}   # held back while folders are created or moved
@@ -322,16 +323,14 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
                       ("F", "right"), ("q", "right"), ("score", "right"), ("verdict", "left"),
                       ("flags", "left")):
         t.add_column(col, justify=just, overflow="fold")
-    style = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta",
-             "no jump": "dim", "not estimable": "dim red"}
     for c in results["candidates"][:top]:
         ci = ("" if c["ci_low"] is None else f" [{c['ci_low']:+.2f}, {c['ci_high']:+.2f}]")
         f = c["first_stage_f"]
         t.add_row(str(c["rank"]), c["running"], c["treatment"], f"{c['cutoff']:g}",
                   c.get("rule_id") or c["origin"], _num(c["jump"], "+.3f") + ci,
                   "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}"),
-                  _num(c["q_value"], ".2g"), _num(c["score"], ".0f"),
-                  f"[{style.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
+                  format_p(c["q_value"], "—"), _num(c["score"], ".0f"),
+                  f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
     return t
 
 
@@ -350,7 +349,7 @@ def _compact_table(results: dict, top: int):
         t.add_column(col, justify=just, overflow="fold")
     for c in results["candidates"][:top]:
         what = f"{c['running']} → {c['treatment']} at {c['cutoff']:g} ({c.get('rule_id') or c['origin']})"
-        t.add_row(str(c["rank"]), what, _num(c["jump"], "+.3f"), _num(c["q_value"], ".2g"),
+        t.add_row(str(c["rank"]), what, _num(c["jump"], "+.3f"), format_p(c["q_value"], "—"),
                   _num(c["score"], ".0f"), f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]",
                   " ".join(c["flags"]))
     return t
