@@ -132,3 +132,24 @@ def test_outcome_effects_only_behind_the_switch():
     eff = rows[0]["outcome_effects"][0]
     assert "effects = true" in eff["label"]
     assert abs(eff["complier_effect"] - 0.4) < 3 * eff["complier_se"]
+
+
+def test_placebo_cutoff_on_a_support_point_puts_its_rows_right():
+    # A one-decimal lab value, cutoff 6.2, h = 0.55: the placebo cutoff 6.2 − 2h = 5.1 is a
+    # support point, and (5.1 − 6.2) + 1.1 misses 0 by a rounding error.  Reference: statsmodels
+    # WLS with HC1 on the rows, triangular kernel, rows with x ≥ 5.1 on the right.
+    import statsmodels.api as sm
+    rng = np.random.default_rng(26)
+    x = np.round(rng.normal(6.0, 1.2, 40_000), 1)
+    d = (rng.random(x.size) < 0.2 + 0.3 * (x >= 6.2) + 0.1 * (x >= 5.1)).astype(float)
+    st = binned(pd.DataFrame({"x": x, "d": d}), "x", ["d"], ["d"])
+    data = side_data(st, "d", 6.2)
+    pl = placebo_test(st, data, 6.2, 0.55, fit_jump(st, "d", 6.2, 0.55, data=data).z)
+    assert 5.1 in pl.cutoffs                       # reported as the decimal, not 5.1000000000000005
+    u = x - 5.1
+    w = np.clip(1 - np.abs(u) / 0.55, 0, None)
+    m = (w > 0) & (x < 6.2)                        # the placebo window stays left of the real cutoff
+    D = (x[m] >= 5.1).astype(float)
+    Z = np.column_stack([np.ones(m.sum()), D, u[m], D * u[m]])
+    ref = sm.WLS(d[m], Z, weights=w[m]).fit(cov_type="HC1")
+    assert_allclose(pl.z[pl.cutoffs.index(5.1)], ref.tvalues[1], rtol=1e-9)

@@ -64,10 +64,14 @@ def placebo_test(stats, data: SideData, cutoff: float, bandwidth: float, z_real:
             if win.sum() < 4:
                 continue
             vw = v[win]
-            d = SideData(vw, n[win], s1[win], s2[win], vw >= 0)
-            fit = fit_jump(stats, "", cutoff + p, h, kernel, degree, data=d)
+            # Rows at the placebo cutoff belong to its right side, as at a real cutoff; u − p
+            # can miss 0 by a rounding error when the placebo cutoff is a support point (a
+            # decimal lattice), so "at" allows for that.
+            d = SideData(vw, n[win], s1[win], s2[win], vw >= -1e-9 * h)
+            at = float(np.round(cutoff + p, 12))
+            fit = fit_jump(stats, "", at, h, kernel, degree, data=d)
             if np.isfinite(fit.z):
-                cuts.append(float(cutoff + p))
+                cuts.append(at)
                 zs.append(float(fit.z))
     if not zs:
         return PlaceboResult(nan, 0, reason="no room for a placebo cutoff on either side")
