@@ -22,7 +22,8 @@ import numpy as np
 from ..bins import BinnedStats
 from .local import SideData, Z95, joint_side_data
 from .mse import fuzzy_side_data, pilot_ratio
-from .robust import curvature_bound, honest_best, honest_interval, robust_fuzzy, robust_jump
+from .robust import (curvature_bound, honest_best, honest_by_M, honest_interval, robust_fuzzy,
+                     robust_jump)
 from .select import Selection, select_bandwidth, sensitivity
 
 
@@ -44,7 +45,7 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
     dict of results.json fields (see the module docstring and docs/methods.md).
     """
     rob = robust_jump(d, sel.h, sel.b, kernel, degree)
-    M = curvature_bound(d)
+    M = curvature_bound(d, window=sel.b, kernel=kernel)   # local fits at the bias pilot b
     if coarse:
         hon, h_hon = honest_best(d, M, kernel, degree)
     else:
@@ -59,6 +60,7 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         "ci_low_honest": hon.ci_low, "ci_high_honest": hon.ci_high,
         "p_value_honest": hon.p_value, "honest_bound_M": hon.bound_M,
         "honest_max_bias": hon.max_bias, "honest_bandwidth": h_hon,
+        "honest_by_M": honest_by_M(d, h_hon if coarse else sel.h, M, kernel, degree),
         "bandwidth_left": sel.h_left, "bandwidth_right": sel.h_right,
         "bias_bandwidth_left": sel.b_left, "bias_bandwidth_right": sel.b_right,
         "inference_reason": rob.reason,

@@ -18,10 +18,7 @@ the same leverage): in the CCT designs HC1 undercovered (robust coverage ≈ 0.9
 docs/methods.md).  HC1 scales by ``n/(n − 2(q+1))`` (robust) and ``n/(n − 2(p+1))``
 (conventional), as statsmodels does for the pooled regressions.
 
-Bias-aware intervals (Armstrong & Kolesár 2018, Econometrica 86(2); 2020, Quantitative Economics
-11(1); Kolesár & Rothe 2018, AER 108(8)): under ``|μ''| ≤ M`` on each side the bias of the local
-linear estimate is at most ``B̄ = (M/2) Σ_b n_b |ℓ_b| u_b²``; the interval is
-``τ̂ ± cv(B̄/se)·se`` with ``cv(t)`` the 1 − α quantile of ``|N(t, 1)|``.
+Bias-aware intervals are in ``honest.py`` (re-exported here).
 """
 from __future__ import annotations
 
@@ -29,7 +26,6 @@ import math
 from dataclasses import dataclass, asdict
 
 import numpy as np
-from scipy import special, stats as sps
 
 from .kernels import kernel as kernel_fn
 from .local import SideData, _rss, Z95, powers
@@ -337,151 +333,7 @@ def robust_fuzzy(dT: SideData, dY: SideData, sab: np.ndarray, h, b, kernel: str 
     return _finish(tau, se, tau_bc, se_rob, hh, bb)
 
 
-# --------------------------------------------------------------------------- bias-aware intervals
-def honest_cv(t: float, alpha: float = 0.05) -> float:
-    """Critical value: the 1 − α quantile of |N(t, 1)|.
-
-    Notes
-    -----
-    Armstrong & Kolesár (2020), Quantitative Economics 11(1); |N(t,1)|² is noncentral χ²(1, t²).
-    """
-    t = abs(float(t))
-    if not np.isfinite(t):
-        return float("nan")
-    if t < 1e-10:
-        return float(sps.norm.ppf(1 - alpha / 2))
-    return float(np.sqrt(sps.ncx2.ppf(1 - alpha, 1, t * t)))
-
-
-def curvature_bound(d: SideData, degree: int = 4) -> float:
-    """Rule-of-thumb bound M on |μ''|: largest |second derivative| of a global polynomial per side.
-
-    Each side gets its own least-squares polynomial of order ``degree`` (fewer when the side has
-    few distinct values); M is the maximum of |fit''| over that side's support points.  A side
-    with only two support values carries no curvature information and is skipped (NaN when
-    neither side has three).
-
-    Notes
-    -----
-    Armstrong & Kolesár (2020) and Kolesár & Rothe (2018) use a global-polynomial pilot of this
-    kind (METHODS.md §7c, recalled from memory); M cannot be learned from the data without extra
-    assumptions, so results also carry the bound used (``honest_bound_M``).
-    """
-    best = float("nan")
-    for side in (~d.right, d.right):
-        u, n, s1 = d.u[side], d.n[side], d.s1[side]
-        k = min(degree, u.size - 1)
-        if k < 2:
-            # Two support values show no curvature: the other side's bound has to serve.
-            continue
-        R = np.vander(u, k + 1, increasing=True)
-        try:
-            beta = np.linalg.lstsq((R * n[:, None]).T @ R, R.T @ s1, rcond=None)[0]
-        except np.linalg.LinAlgError:
-            return float("nan")
-        second = sum(j * (j - 1) * beta[j] * u ** (j - 2) for j in range(2, k + 1))
-        best = np.fmax(best, float(np.max(np.abs(second))))
-    return float(best)
-
-
-@dataclass(frozen=True)
-class HonestFit:
-    """A bias-aware fixed-length interval around the conventional estimate."""
-
-    ci_low: float
-    ci_high: float
-    max_bias: float
-    cv: float
-    bound_M: float
-    p_value: float
-
-
-def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int = 1,
-                    alpha: float = 0.05, vce: str = "hc3") -> HonestFit:
-    """Bias-aware interval for the local polynomial jump under |μ''| ≤ M on each side.
-
-    Parameters
-    ----------
-    d : SideData of the column at the cutoff.
-    h : bandwidth (number or (left, right)), running-variable units.
-    M : bound on the second derivative (outcome units per running-variable unit squared).
-    alpha : 1 − coverage.
-    vce : variance estimator, as in :func:`robust_jump`.
-
-    Returns
-    -------
-    HonestFit: ``τ̂ ± cv(B̄/se)·se`` with ``B̄ = (M/2)Σ n|ℓ|u²``; ``p_value`` is the smallest α whose
-    interval excludes zero.
-
-    Notes
-    -----
-    Kolesár & Rothe (2018), AER 108(8), bounded-second-derivative class; critical values from
-    Armstrong & Kolesár (2018, 2020). The bound on the bias is METHODS.md §7b; it holds for any
-    degree p ≥ 1 (the weights reproduce lines, leaving the Taylor remainder |r(u)| ≤ M u²/2).
-    """
-    nan = float("nan")
-    if p < 1:
-        # Local constant weights do not reproduce slopes, so a bound on μ'' alone does not
-        # bound their bias: no bias-aware interval for degree 0.
-        return HonestFit(nan, nan, nan, nan, float(M), nan)
-    hl, hr = _pair(h)
-    conv = se = 0.0
-    bias = 0.0
-    rows = 0.0
-    K = kernel_fn(kernel)
-    for sign, side, hs in ((-1.0, ~d.right, hl), (1.0, d.right, hr)):
-        u, n, s1, s2 = d.u[side], d.n[side], d.s1[side], d.s2[side]
-        w = K(u / hs)
-        m = w > 0
-        if m.sum() < p + 1 or not np.isfinite(M):
-            return HonestFit(nan, nan, nan, nan, float(M), nan)
-        try:
-            L, R = coef_weights(u[m], n[m], w[m], p)
-        except np.linalg.LinAlgError:
-            return HonestFit(nan, nan, nan, nan, float(M), nan)
-        conv += sign * (L[0] @ s1[m])
-        Lf = np.zeros((p + 1, u.size))
-        Lf[:, m] = L
-        se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, powers(u, p))[m]).sum()
-        bias += 0.5 * M * (n[m] * np.abs(L[0]) * u[m] ** 2).sum()
-        rows += n[m].sum()
-    se = float(np.sqrt(se * _scale(vce, rows, 2 * (p + 1))))
-    if se == 0 and np.isfinite(conv):
-        # No noise (e.g. a deterministic uptake rule): only the bias bound is left.
-        return HonestFit(float(conv - bias), float(conv + bias), float(bias), float("inf"),
-                         float(M), 0.0 if abs(conv) > bias else 1.0)
-    if not se > 0:
-        return HonestFit(nan, nan, nan, nan, float(M), nan)
-    t = bias / se
-    cv = honest_cv(t, alpha)
-    z = abs(conv) / se
-    pv = float(special.ndtr(t - z) + special.ndtr(-z - t))   # = norm.sf(z − t) + norm.cdf(−z − t)
-    return HonestFit(float(conv - cv * se), float(conv + cv * se), float(bias), cv, float(M),
-                     min(1.0, pv))
-
-
-def honest_best(d: SideData, M: float, kernel: str = "triangular", p: int = 1,
-                alpha: float = 0.05, vce: str = "hc3", max_candidates: int = 40):
-    """Bias-aware interval at the bandwidth that makes it shortest; returns (HonestFit, h).
-
-    Candidate bandwidths sit halfway between consecutive distinct distances |x − c| (the
-    ``max_candidates`` nearest), so each adds one support point; meant for coarse running
-    variables, where the list is short.
-
-    Notes
-    -----
-    Armstrong & Kolesár (2020) choose the bandwidth that minimises the length of the fixed-length
-    interval; Kolesár & Rothe (2018) apply it to discrete running variables.
-    """
-    dist = np.unique(np.abs(d.u))[: max_candidates + 1]
-    cands = (dist[:-1] + dist[1:]) / 2 if dist.size > 1 else dist * 1.5
-    best, best_h = None, float("nan")
-    for h in np.r_[cands, dist[-1] * 1.5 if dist.size else []]:
-        fit = honest_interval(d, float(h), M, kernel, p, alpha, vce)
-        if np.isfinite(fit.ci_low) and (best is None or
-                                        fit.ci_high - fit.ci_low < best.ci_high - best.ci_low):
-            best, best_h = fit, float(h)
-    if best is None:
-        nan = float("nan")
-        best = HonestFit(nan, nan, nan, nan, float(M), nan)
-    return best, best_h
+# Bias-aware intervals live in honest.py; re-exported for existing imports.
+from .honest import (CURVATURE_Z, M_FACTORS, HonestFit, curvature_bound, honest_best,  # noqa: E402,F401
+                     honest_by_M, honest_cv, honest_interval, local_window, side_bias_integral,
+                     taylor_bias_bound, worst_case_bias)
