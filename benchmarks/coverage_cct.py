@@ -29,7 +29,12 @@ def main(reps: int) -> None:
                                ("CCT Model 2, per-side MSE bandwidths", "cct2", "mse-sides"),
                                ("CCT Model 1, IK bandwidth", "cct1", "ik"),
                                ("CCT Model 2, IK bandwidth", "cct2", "ik"),
-                               ("Discrete, 10 support points per side", "discrete", "mse")):
+                               ("Discrete, 10 support points per side", "discrete", "mse"),
+                               ("Lognormal(0, 2) score, cutoff 0.1, n = 200,000, τ = 0.5",
+                                "lognormal", "mse"),
+                               ("Half-integer lattice, cutoff between values, τ = 0.3", "halfint",
+                                "mse"),
+                               ("Five-point score, τ = 0.4", "fivepoint", "mse")):
         r = coverage_sharp(design, reps, seed=2014, selector=sel)
         rows.append({"design": label, "selector": sel, **r})
         print(label, {k: round(v, 3) for k, v in r.items()}, flush=True)
@@ -45,16 +50,29 @@ def main(reps: int) -> None:
         f"2,000 fuzzy); run time {elapsed:.0f} s.  Sharp designs: local linear, triangular kernel, "
         "HC3 variance throughout (conventional = jump ± 1.96 × HC3 SE at the same h; the scan's "
         "`ci_low_conventional` uses the HC1 `se`, a little narrower); robust = robust "
-        "bias-corrected; honest = bias-aware interval with the rule-of-thumb curvature bound "
-        "(at h for the CCT models, at its shortest bandwidth for the discrete design).", "",
-        "| design | bandwidth | median h (left) | conventional | robust | honest | median length conv / robust / honest |",
-        "|---|---|---|---|---|---|---|"]
+        "bias-corrected; honest = bias-aware interval with the exact worst-case bias under "
+        "|μ''| ≤ M and M from local quadratic fits at the bias pilot (at h for continuous designs, "
+        "at its shortest bandwidth for the coarse ones: discrete, half-integer, five-point).  "
+        "reported = the interval the scan reports (bias-aware for coarse designs, robust "
+        "otherwise).  Coverage counts replications where that interval exists (— if never: "
+        "the five-point score has too few values for the robust interval).  n = 200,000 "
+        "(lognormal), 6,000 (half-integer), 4,000 (five-point).", "",
+        "| design | bandwidth | median h (left) | conventional | robust | honest | reported | "
+        "median length conv / robust / honest |",
+        "|---|---|---|---|---|---|---|---|"]
+
+    def f3(v):
+        return "—" if v != v else f"{v:.3f}"
     for r in rows:
-        hon = f"{r['honest']:.3f}" if "honest" in r else "—"
-        length = (f"{r['length_conventional']:.3f} / {r['length_robust']:.3f} / {r['length_honest']:.3f}"
-                  if "length_robust" in r else "—")
+        hon = f3(r["honest"]) if "honest" in r else "—"
+        rep = f3(r["reported"]) if "reported" in r else f3(r["robust"])
+        length = (f"{f3(r['length_conventional'])} / {f3(r['length_robust'])} / "
+                  f"{f3(r['length_honest'])}" if "length_robust" in r else "—")
         lines.append(f"| {r['design']} | {r['selector']} | {r['h_median']:.3f} | "
-                     f"{r['conventional']:.3f} | {r['robust']:.3f} | {hon} | {length} |")
+                     f"{f3(r['conventional'])} | {f3(r['robust'])} | {hon} | {rep} | {length} |")
+    lines += ["", "Before the exact worst-case bias (bound (M/2)·Σ|ℓ|u², M from a global quartic), "
+              "the discrete design's bias-aware interval had median length 0.536 and coverage "
+              "0.997 (2,000 replications, seed 2014, this script's previous output)."]
     lines += ["", "Monte Carlo standard error of a coverage near 0.95 with "
               f"{reps} replications: {(0.95 * 0.05 / reps) ** 0.5:.3f}."]
     (OUT / "coverage.md").write_text("\n".join(lines) + "\n")

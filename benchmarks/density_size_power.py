@@ -6,8 +6,16 @@ Designs (invented data, our own choices):
   Monte Carlo models (only 18.75% of the mass lies right of the cutoff).
 Alternative: the density right of the cutoff is 20% higher (left rows thinned by 1/1.2).
 n = 10,000 per replication, fixed-width bins of 0.001, two-sided 5% tests.
-Discrete: X ~ Binomial(19, 0.4) (20 support points), cutoff 8, n = 10,000, Frandsen test; the
-alternative has 20% extra mass on the cutoff's support point (the other points thinned by 1/1.2).
+Discrete (Frandsen test; the alternative has 20% extra mass on the cutoff's support point, the
+other points thinned by 1/1.2):
+* X ~ Binomial(19, 0.4) (20 support points), n = 12,000 (about 6,000 rows on the cutoff point and
+  its two neighbours), cutoffs 5–10 for size, 8 (next to the mode) for power;
+* a half-integer lattice: the same counts on x − 0.5 (values 7.5, 8.5, …), cutoff 8 between two
+  recorded values (the point 8.5 goes right);
+* a five-point score 1–5 with pmf ∝ (0.22, 0.28, 0.30, 0.28, 0.22), cutoff 3, n = 12,000;
+* a flat pmf on 0–19, cutoff 8, n = 40,000 (6,000 rows on the three points), where a fixed
+  k = 0.1 cannot see less than 15.8% extra mass.
+Each with k from the data's curvature (the default) and with the old fixed k = 0.1.
 
 Run: ``nice -n 10 env PYTHONPATH=. python benchmarks/density_size_power.py [reps]``.
 """
@@ -59,14 +67,54 @@ def run(reps: int, seed: int = 20261201) -> dict:
                     rej[k].append(np.isfinite(p) and p < 0.05)
             for k in tests:
                 res[(design, jump, k)] = float(np.mean(rej[k]))
-    for excess in (0.0, 0.2):
-        rej = []
-        for _ in range(reps):
-            x = rng.binomial(19, 0.4, 12_000).astype(float)
-            # excess mass at the cutoff point: other points thinned by 1/(1 + excess)
-            x = x[(x == 8) | (rng.random(x.size) < 1 / (1 + excess))][:10_000]
-            rej.append(frandsen_test(bins(x), 8.0).p_value < 0.05)
-        res[("binomial(19, 0.4), 20 points", excess, "Frandsen (2017), k = 0.1")] = float(np.mean(rej))
+    res.update(run_discrete(reps, rng))
+    return res
+
+
+FIVE = np.array([0.22, 0.28, 0.30, 0.28, 0.22])
+
+
+def draw_discrete_scores(rng, design, excess, n=12_000):
+    """Rows of one discrete design (module docstring) with ``excess`` extra mass at the cutoff."""
+    if design == "flat":
+        pr = np.where(np.arange(20) == 8, 1 + excess, 1.0)
+        return rng.choice(np.arange(20.0), 40_000, p=pr / pr.sum()), 8.0
+    if design == "fivepoint":
+        pr = FIVE * np.where(np.arange(5) == 2, 1 + excess, 1.0)
+        return rng.choice(np.arange(1.0, 6.0), n, p=pr / pr.sum()), 3.0
+    x = rng.binomial(19, 0.4, int(n * 1.3)).astype(float)
+    # excess mass at the cutoff point (8, or 8.5 = 9 − 0.5 on the half-integer lattice): other
+    # points thinned by 1/(1 + excess)
+    at = 9 if design == "halfint" else 8
+    x = x[(x == at) | (rng.random(x.size) < 1 / (1 + excess))][:n]
+    return (x - 0.5, 8.0) if design == "halfint" else (x, 8.0)
+
+
+def run_discrete(reps: int, rng) -> dict:
+    """Size and power of the Frandsen test, data-driven k and fixed k = 0.1."""
+    res = {}
+    labels = {"binomial": "binomial(19, 0.4), 20 points, n = 12,000",
+              "halfint": "half-integer lattice, cutoff between values",
+              "fivepoint": "five-point score",
+              "flat": "flat pmf, 20 points, 6,000 rows on the three points"}
+    for design, label in labels.items():
+        for excess in (0.0, 0.2):
+            rej = {"data": [], "fixed": []}
+            extra = []
+            for _ in range(reps):
+                x, c = draw_discrete_scores(rng, design, excess)
+                st = bins(x)
+                t = frandsen_test(st, c)
+                rej["data"].append(t.p_value < 0.05)
+                rej["fixed"].append(frandsen_test(st, c, k=0.1).p_value < 0.05)
+                if design == "binomial" and excess == 0.0:
+                    # size at the other cutoffs of the 20-point pmf
+                    extra += [frandsen_test(st, cc).p_value < 0.05 for cc in (5.0, 6.0, 7.0, 9.0, 10.0)]
+            res[(label, excess, "Frandsen (2017), k from the data")] = float(np.mean(rej["data"]))
+            res[(label, excess, "Frandsen (2017), fixed k = 0.1")] = float(np.mean(rej["fixed"]))
+            if extra:
+                res[(label.replace("20 points", "20 points, cutoffs 5–7, 9, 10"), excess,
+                     "Frandsen (2017), k from the data")] = float(np.mean(extra))
     return res
 
 

@@ -8,7 +8,8 @@ import statsmodels.api as sm
 from numpy.testing import assert_allclose
 from scipy import stats as sps
 
-from benchmarks.density_size_power import bins, draw
+from benchmarks.density_size_power import bins, draw, draw_discrete_scores
+from scanner.diagnostics.density_discrete import curvature_k
 from scanner.diagnostics import (density_suite, frandsen_test, lp_density_test, mccrary_test,
                                  window_count_test)
 from scanner.diagnostics.heaping import deheaped, heap_tests
@@ -159,3 +160,51 @@ def test_density_bandwidth_search_on_the_window_equals_the_full_sums():
         assert hs.size == 20 and np.isfinite(mse).all()
         assert_allclose(mse, full_sums(x, n, F, N, ~right, right, hs), rtol=1e-9)
         assert D._mse_bandwidth(x, n, F, N, ~right, right, 2, "triangular") == hs[np.argmin(mse)]
+
+
+def test_frandsen_k_from_curvature_on_exact_counts():
+    # Counts on a quadratic pmf 100 − 3j² (j = −2 … 2, noiseless): the relative second
+    # difference at j = 0 is |−6| / (97 + 100 + 97) = 6/294 by hand; with z = 0 it is exact.
+    c = np.array([88.0, 97.0, 97.0, 88.0])
+    assert_allclose(curvature_k(c, z=0.0), 6 / 294, rtol=1e-12)
+    assert curvature_k(c) > curvature_k(c, z=0.0)
+
+
+def test_frandsen_reports_range_of_k_and_breakdown():
+    # p at each k of the range equals scipy's binomial tail at the nearest admissible π, and at
+    # k_breakdown the p-value is 0.05 (scipy.stats.binom as reference).
+    x = np.repeat(np.arange(0, 7, dtype=float), [100, 100, 100, 160, 100, 100, 100])
+    t = frandsen_test(bins(x), 3.0)
+    assert t.k_source == "data" and t.k >= 0
+    for k, p in t.p_by_k:
+        pi = min((1 + k) / 3, 160 / 360)
+        assert_allclose(p, min(1.0, 2 * sps.binom.sf(159, 360, pi)), rtol=1e-12)
+    pi = (1 + t.k_breakdown) / 3
+    assert_allclose(2 * sps.binom.sf(159, 360, pi), 0.05, atol=1e-4)
+    # Too few points for the curvature: k = 0.1 assumed, and said so.
+    assert frandsen_test(bins(x[x <= 4]), 3.0).k_source == "assumed"
+
+
+def test_frandsen_power_against_twenty_percent_extra_mass():
+    # Target from the issue: power ≥ 0.8 against 20% extra mass at the cutoff point with 6,000
+    # rows on the three points; flat pmf on 20 points (invented design, benchmarks/
+    # density_size_power.py runs 500 replications).  The old fixed k = 0.1 cannot reach it:
+    # its admissible π reaches 1.1/3, and 20% extra gives 1.2/3.2.
+    rng = np.random.default_rng(12)
+    rej, rej_fixed = [], []
+    for _ in range(40):
+        x, c = draw_discrete_scores(rng, "flat", 0.2)
+        st = bins(x)
+        rej.append(frandsen_test(st, c).p_value < 0.05)
+        rej_fixed.append(frandsen_test(st, c, k=0.1).p_value < 0.05)
+    assert np.mean(rej) >= 0.8 and np.mean(rej_fixed) < 0.6
+
+
+def test_frandsen_size_on_irregular_discrete_designs():
+    # Size at 5% with k from the data: half-integer lattice (cutoff between recorded values) and
+    # a five-point score (invented designs, benchmarks/density_size_power.py).
+    rng = np.random.default_rng(13)
+    for design in ("halfint", "fivepoint", "flat"):
+        rej = [frandsen_test(bins(x), c).p_value < 0.05
+               for x, c in (draw_discrete_scores(rng, design, 0.0) for _ in range(40))]
+        assert np.mean(rej) <= 0.1, design
