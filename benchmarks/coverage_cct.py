@@ -32,6 +32,8 @@ def main(reps: int) -> None:
                                ("Discrete, 10 support points per side", "discrete", "mse"),
                                ("Lognormal(0, 2) score, cutoff 0.1, n = 200,000, τ = 0.5",
                                 "lognormal", "mse"),
+                               ("The same lognormal score on bins of width 0.05 (two bins left "
+                                "of the cutoff)", "lognormal-binned", "mse"),
                                ("Half-integer lattice, cutoff between values, τ = 0.3", "halfint",
                                 "mse"),
                                ("Five-point score, τ = 0.4", "fivepoint", "mse")):
@@ -52,7 +54,8 @@ def main(reps: int) -> None:
         "`ci_low_conventional` uses the HC1 `se`, a little narrower); robust = robust "
         "bias-corrected; honest = bias-aware interval with the exact worst-case bias under "
         "|μ''| ≤ M and M from local quadratic fits at the bias pilot (at h for continuous designs, "
-        "at its shortest bandwidth for the coarse ones: discrete, half-integer, five-point).  "
+        "at its shortest bandwidth for the coarse ones: discrete, binned lognormal, "
+        "half-integer, five-point).  "
         "reported = the interval the scan reports (bias-aware for coarse designs, robust "
         "otherwise).  Coverage counts replications where that interval exists (— if never: "
         "the five-point score has too few values for the robust interval).  n = 200,000 "

@@ -13,6 +13,8 @@ Designs
 * ``lognormal``: invented skewed score; X ~ lognormal(0, 2), cutoff 0.1, n = 200,000, binary
   uptake with P(T = 1) = 0.15 + 0.5·1{X ≥ 0.1} + 0.25·(1 − e^{−X}): true jump 0.5, |μ''| ≈ 0.23
   at the cutoff, while the range reaches thousands of units.
+* ``lognormal-binned``: the same rows on fixed-width bins of 0.05 with an edge at the cutoff,
+  as the scan bins this score: the left side holds two bins, so no data-driven bandwidth exists.
 * ``halfint``: invented half-integer lattice (x = ±0.5, ±1.5, …, ±9.5, cutoff 0 between two
   recorded values), binary uptake, true jump 0.3.
 * ``fivepoint``: invented five-point score (1–5, cutoff at 3, which goes right), 4,000 rows,
@@ -97,13 +99,16 @@ def draw_fivepoint(rng, n: int = 4000):
 
 
 DRAW = {"discrete": draw_discrete, "lognormal": draw_lognormal, "halfint": draw_halfint,
-        "fivepoint": draw_fivepoint}
-COARSE = ("discrete", "halfint", "fivepoint")   # few support points: the scan's coarse path
+        "fivepoint": draw_fivepoint, "lognormal-binned": draw_lognormal}
+COARSE = ("discrete", "halfint", "fivepoint", "lognormal-binned")   # the scan's coarse path
+WIDTH = {"lognormal-binned": 0.05}
 
 
-def one_sharp(x, y, selector="mse", widen=False):
+def one_sharp(x, y, selector="mse", widen=False, width=None):
     """(conventional covers?, robust covers?, honest covers?) pieces for one sample."""
     st = to_bins(x, {"y": y})
+    if width:
+        st = st.to_width(width)
     d = side_data(st, "y", 0.0)
     ch = mse_bandwidth(d, cer=selector == "cer", per_side=selector == "mse-sides")
     h, b = (ch.h_left, ch.h_right), (ch.b_left, ch.b_right)
@@ -133,7 +138,7 @@ def coverage_sharp(design: str, reps: int, seed: int = 1, selector="mse") -> dic
             x, y, tau = DRAW[design](rng)
         else:
             x, y, tau = draw_cct(design, rng)
-        fit, hon, ch = one_sharp(x, y, selector, widen=coarse)
+        fit, hon, ch = one_sharp(x, y, selector, widen=coarse, width=WIDTH.get(design))
         # As the scan: a coarse candidate reports the bias-aware interval, others the robust one.
         rep = (hon.ci_low, hon.ci_high) if coarse else (fit.ci_low, fit.ci_high)
         if not np.isfinite(rep[0]):

@@ -108,3 +108,22 @@ def _weights(d, h):
         idx = np.flatnonzero(side)[np.abs(d.u[side]) < h]
         out[idx] = w
     return out[np.abs(d.u) < h]
+
+
+def test_exact_bias_shortens_the_discrete_design_interval():
+    # Discrete design of benchmarks/coverage_cct.py (invented; μ quadratic, |μ''| = 6 with the
+    # worst-case signs): at the same M and each interval at its own shortest bandwidth, the exact
+    # worst-case bias gives a clearly shorter interval than the Taylor bound (the benchmark: 0.382
+    # against 0.536 before, with 500 replications) and still covers the true jump 0.5.
+    from scanner.estimate.robust import honest_best
+    rng = np.random.default_rng(21)
+    ratio, cover = [], []
+    for _ in range(40):
+        x, y, tau = draw_discrete(rng)
+        d = side_data(to_bins(x, {"y": y}), "y", 0.0)
+        M = curvature_bound(d)
+        exact, _ = honest_best(d, M)
+        taylor, _ = honest_best(d, M, bias="taylor")
+        ratio.append((exact.ci_high - exact.ci_low) / (taylor.ci_high - taylor.ci_low))
+        cover.append(exact.ci_low <= tau <= exact.ci_high)
+    assert np.median(ratio) < 0.85 and np.mean(cover) >= 0.9, (np.median(ratio), np.mean(cover))

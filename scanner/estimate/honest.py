@@ -23,6 +23,7 @@ from .kernels import kernel as kernel_fn
 from .local import SideData
 from .robust import _pair, _scale, _sig, coef_weights, powers
 
+
 def honest_cv(t: float, alpha: float = 0.05) -> float:
     """Critical value: the 1 − α quantile of |N(t, 1)|.
 
@@ -43,21 +44,14 @@ M_FACTORS = (0.5, 1.0, 2.0)   # the bias-aware interval is also reported at thes
 
 
 def local_window(d: SideData, need: int = 4) -> float:
-    """Default window of the curvature fit: ``1.84·s·N^(-1/5)`` with a skew-resistant scale s.
+    """Default window of the curvature fit: ``1.84·s·N^(-1/5)``, s = ``mse.spread`` (skew-resistant).
 
-    ``s = min(sd, IQR/1.349)`` (Silverman's rule-of-thumb scale, common practice), widened to
-    hold ``need`` support points per side.  The plain standard deviation of a skewed running
-    variable (e.g. lognormal) is dominated by its tail and gives windows reaching far from the
-    cutoff.
+    Widened to hold ``need`` support points per side.  The plain standard deviation of a skewed
+    running variable (e.g. lognormal) is dominated by its tail and gives windows reaching far
+    from the cutoff.
     """
-    from ..engines.plan import weighted_quantile
-    from .mse import PILOT_C, reach
-    N = d.n.sum()
-    mean = (d.n * d.u).sum() / N
-    sd = np.sqrt((d.n * (d.u - mean) ** 2).sum() / max(N - 1, 1))
-    q1, q3 = weighted_quantile(d.u, d.n, np.array([0.25, 0.75]))
-    scale = min(sd, (q3 - q1) / 1.349) if q3 > q1 else sd
-    return float(max(PILOT_C * scale * N ** -0.2, reach(d, need)))
+    from .mse import PILOT_C, reach, spread   # lazy: mse → robust → honest is a cycle
+    return float(max(PILOT_C * spread(d) * d.n.sum() ** -0.2, reach(d, need)))
 
 
 def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: str = "triangular",
@@ -70,8 +64,10 @@ def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: st
     the upper end of a one-sided interval (z = 0.84: 80%), so noise in the pilot makes the
     interval wider rather than shorter.  On the discrete design of benchmarks/coverage_cct.py
     (μ exactly quadratic, so the worst case is attained) z = 0 covered 0.953 in 300 replications
-    and z = 0.84 covered 0.977 at a 10% longer interval; z = 1.28 added another 5% length.  A side with fewer than three support points inside the window
-    shows no curvature and is skipped (NaN when neither side has three).
+    and z = 0.84 covered 0.977 at a 10% longer interval; z = 1.28 added another 5% length.
+    Each side's window is widened to hold four support points where it has them (three fit the
+    quadratic exactly and leave no residual for its standard error).  A side with fewer than
+    three support points shows no curvature and is skipped (NaN when neither side has three).
 
     Notes
     -----
@@ -93,6 +89,9 @@ def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: st
         u, n, s1, s2 = d.u[side], d.n[side], d.s1[side], d.s2[side]
         if not (np.isfinite(ws) and ws > 0):
             continue
+        dist = np.unique(np.abs(u))
+        if dist.size >= 4:
+            ws = max(ws, (dist[3] + dist[4]) / 2 if dist.size > 4 else dist[3] * 1.5)
         w = K(u / ws)
         m = w > 0
         if m.sum() < 3:
@@ -195,7 +194,7 @@ class HonestFit:
 
 
 def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int = 1,
-                    alpha: float = 0.05, vce: str = "hc3") -> HonestFit:
+                    alpha: float = 0.05, vce: str = "hc3", bias: str = "exact") -> HonestFit:
     """Bias-aware interval for the local polynomial jump under |μ''| ≤ M on each side.
 
     Parameters
@@ -204,7 +203,9 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
     h : bandwidth (number or (left, right)), running-variable units.
     M : bound on the second derivative (outcome units per running-variable unit squared).
     alpha : 1 − coverage.
-    vce : variance estimator, as in :func:`robust_jump`.
+    vce : variance estimator, as in ``robust.robust_jump``.
+    bias : "exact" (default, :func:`worst_case_bias`) or "taylor" (:func:`taylor_bias_bound`,
+        kept to measure what the exact bias gains).
 
     Returns
     -------
@@ -224,7 +225,7 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
         return HonestFit(nan, nan, nan, nan, float(M), nan)
     hl, hr = _pair(h)
     conv = se = 0.0
-    bias = 0.0
+    B = 0.0
     rows = 0.0
     K = kernel_fn(kernel)
     for sign, side, hs in ((-1.0, ~d.right, hl), (1.0, d.right, hr)):
@@ -241,25 +242,29 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
         Lf = np.zeros((p + 1, u.size))
         Lf[:, m] = L
         se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, powers(u, p))[m]).sum()
-        bias += worst_case_bias(u[m], n[m] * L[0], np.ones(m.sum(), bool), M)
+        if bias == "taylor":
+            B += taylor_bias_bound(u[m], n[m] * L[0], M)
+        else:
+            B += worst_case_bias(u[m], n[m] * L[0], np.ones(m.sum(), bool), M)
         rows += n[m].sum()
     se = float(np.sqrt(se * _scale(vce, rows, 2 * (p + 1))))
     if se == 0 and np.isfinite(conv):
         # No noise (e.g. a deterministic uptake rule): only the bias bound is left.
-        return HonestFit(float(conv - bias), float(conv + bias), float(bias), float("inf"),
-                         float(M), 0.0 if abs(conv) > bias else 1.0)
+        return HonestFit(float(conv - B), float(conv + B), float(B), float("inf"),
+                         float(M), 0.0 if abs(conv) > B else 1.0)
     if not se > 0:
         return HonestFit(nan, nan, nan, nan, float(M), nan)
-    t = bias / se
+    t = B / se
     cv = honest_cv(t, alpha)
     z = abs(conv) / se
     pv = float(special.ndtr(t - z) + special.ndtr(-z - t))   # = norm.sf(z − t) + norm.cdf(−z − t)
-    return HonestFit(float(conv - cv * se), float(conv + cv * se), float(bias), cv, float(M),
+    return HonestFit(float(conv - cv * se), float(conv + cv * se), float(B), cv, float(M),
                      min(1.0, pv))
 
 
 def honest_best(d: SideData, M: float, kernel: str = "triangular", p: int = 1,
-                alpha: float = 0.05, vce: str = "hc3", max_candidates: int = 40):
+                alpha: float = 0.05, vce: str = "hc3", max_candidates: int = 40,
+                bias: str = "exact"):
     """Bias-aware interval at the bandwidth that makes it shortest; returns (HonestFit, h).
 
     Candidate bandwidths sit halfway between consecutive distinct distances |x − c| (the
@@ -275,7 +280,7 @@ def honest_best(d: SideData, M: float, kernel: str = "triangular", p: int = 1,
     cands = (dist[:-1] + dist[1:]) / 2 if dist.size > 1 else dist * 1.5
     best, best_h = None, float("nan")
     for h in np.r_[cands, dist[-1] * 1.5 if dist.size else []]:
-        fit = honest_interval(d, float(h), M, kernel, p, alpha, vce)
+        fit = honest_interval(d, float(h), M, kernel, p, alpha, vce, bias)
         if np.isfinite(fit.ci_low) and (best is None or
                                         fit.ci_high - fit.ci_low < best.ci_high - best.ci_low):
             best, best_h = fit, float(h)
