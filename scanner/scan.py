@@ -116,6 +116,13 @@ def open_for_scan(spec: ScanSpec, data=None):
     engine = spec.engine
     if data is not None and type(data).__module__.startswith("pyspark"):
         return data, "spark", notes
+    if spec.layout is not None:
+        from .events import open_registry
+        table = open_registry(spec, data)
+        _check_columns(table, spec)
+        out = cleaned(table, spec.codes(), roles(spec), spec.date, None)
+        out.registry = table.registry
+        return out, engine, notes
     if data is None:
         if not spec.source:
             raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
@@ -206,6 +213,12 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
     rows = finalize(rows, spec.alpha, extra_p)
     data_info = _data_info(binned, spec, deduped)
+    registry = getattr(table, "registry", None)
+    if registry is not None:
+        from .events import layout_dropped
+        data_info["dropped"] = layout_dropped(data_info["dropped"], spec, registry)
+        data_info["index_rows"] = registry.index_rows()
+        registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)

@@ -1,0 +1,125 @@
+"""The SQL that turns measurements and events into analysis rows, for DuckDB and Spark SQL.
+
+One query text serves both engines: dates become whole day numbers (days since 1970-01-01)
+once, and everything after that is integer arithmetic, joins, ``row_number()`` windows and
+``GROUP BY`` — SQL both dialects share.  Only identifier quoting and the day-number and
+string-type expressions differ (:data:`DIALECTS`).  The semantics are documented in
+:mod:`scanner.events.layout`.
+
+The query reads three relations the runner registers: ``meas`` (measurement rows), ``ev``
+(event rows) and, with observed time, ``obs`` (person, period start, period end).  Its result
+has one row per index row: the person, the index date, one column per running variable (the
+value on that variable's own index rows, NULL on the others), one 0/1/NULL column per uptake,
+the covariates, and ``_score`` (which running variable the row belongs to) and the flags the
+drop counts are computed from.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from .layout import Layout, Uptake
+
+
+@dataclass(frozen=True)
+class Dialect:
+    name: str
+    quote: str
+
+    def q(self, ident: str) -> str:
+        return f"{self.quote}{ident.replace(self.quote, self.quote * 2)}{self.quote}"
+
+    def day(self, expr: str) -> str:
+        """Whole days since 1970-01-01 of a date, timestamp or ISO-date text expression."""
+        if self.name == "spark":
+            return f"datediff(CAST({expr} AS DATE), DATE'1970-01-01')"
+        return f"(CAST(CAST({expr} AS DATE) AS DATE) - DATE '1970-01-01')"
+
+    def from_day(self, expr: str) -> str:
+        if self.name == "spark":
+            return f"date_add(DATE'1970-01-01', CAST({expr} AS INT))"
+        return f"(DATE '1970-01-01' + CAST({expr} AS INTEGER))"
+
+
+DIALECTS = {"duckdb": Dialect("duckdb", '"'), "spark": Dialect("spark", "`")}
+
+
+def literal(v) -> str:
+    if isinstance(v, str):
+        return "'" + v.replace("'", "''") + "'"
+    return repr(v)
+
+
+def code_match(col: str, codes: tuple) -> str:
+    """``col`` (text) is one of ``codes``; a trailing ``*`` matches a prefix."""
+    exact = [c for c in codes if not c.endswith("*")]
+    parts = []
+    if exact:
+        parts.append(f"{col} IN ({', '.join(literal(c) for c in exact)})")
+    for c in codes:
+        if c.endswith("*"):
+            parts.append(f"{col} LIKE {literal(c[:-1].replace('%', '').replace('_', '') + '%')}")
+    return "(" + " OR ".join(parts) + ")" if parts else "FALSE"
+
+
+def _score_rows(lay: Layout, i: int, d: Dialect) -> str:
+    """Index rows of running variable ``i``: one per person (first) or per person-day (each)."""
+    s = lay.scores[i]
+    q = d.q
+    covs = "".join(f", {q(c)}" for c in lay.covariates)
+    cond = [f"{q(s.column)} IS NOT NULL", f"{q(lay.date)} IS NOT NULL", f"{q(lay.person)} IS NOT NULL"]
+    cond += [f"{q(k)} = {literal(v)}" for k, v in s.where]
+    part = "person" if s.index == "first" else "person, day"
+    order = "day, x" + "".join(f", {q(c)}" for c in lay.covariates)
+    return (f"SELECT {i} AS _score, person, day, x{covs} FROM ("
+            f"SELECT *, row_number() OVER (PARTITION BY {part} ORDER BY {order}) AS _k FROM ("
+            f"SELECT CAST({q(lay.person)} AS STRING) AS person, {d.day(q(lay.date))} AS day, "
+            f"CAST({q(s.column)} AS DOUBLE) AS x{covs} FROM meas WHERE {' AND '.join(cond)}"
+            f") m) r WHERE _k = 1")
+
+
+def _uptake_cte(u: Uptake, j: int, d: Dialect) -> str:
+    lo = u.first_day
+    a, b = u.days
+    prior = (f"max(CASE WHEN e.day BETWEEN i.day - {u.prior_days} AND i.day - 1 THEN 1 ELSE 0 END)"
+             if u.prior_days else "0")
+    return (f"u{j} AS (SELECT i._rid, "
+            f"max(CASE WHEN e.day BETWEEN i.day + ({a}) AND i.day + ({b}) THEN 1 ELSE 0 END) AS hit, "
+            f"{prior} AS prior FROM idx i JOIN ev{j} e ON e.person = i.person "
+            f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({b}) GROUP BY i._rid)")
+
+
+def analysis_sql(lay: Layout, dialect: str = "duckdb", event_filters: list | None = None) -> str:
+    """The query building the analysis rows of a long-format layout.
+
+    ``event_filters`` gives, per uptake, a boolean SQL expression over ``ev``'s columns ``code``
+    (text); by default :func:`code_match` of the uptake's codes.
+    """
+    d = DIALECTS[dialect]
+    q = d.q
+    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, i, d) for i in range(len(lay.scores))) + ")",
+            "idx AS (SELECT *, row_number() OVER (ORDER BY _score, person, day) AS _rid FROM idx0)"]
+    for j, u in enumerate(lay.uptakes):
+        filt = event_filters[j] if event_filters else code_match("code", u.codes)
+        ctes.append(f"ev{j} AS (SELECT DISTINCT person, day FROM ev WHERE {filt})")
+        ctes.append(_uptake_cte(u, j, d))
+    if lay.periods or lay.omop:
+        ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
+                    "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
+                    "GROUP BY i._rid)")
+    cols = [f"i._score", f"i._rid", f"i.person AS {q(lay.person)}",
+            f"{d.from_day('i.day')} AS {q(lay.date)}"]
+    cols += [f"CASE WHEN i._score = {k} THEN i.x END AS {q(s.name)}" for k, s in enumerate(lay.scores)]
+    observed = lay.periods or lay.omop
+    for j, u in enumerate(lay.uptakes):
+        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
+                if observed else "TRUE")
+        cols.append(f"CASE WHEN coalesce(u{j}.prior, 0) = 1 THEN NULL WHEN NOT {seen} THEN NULL "
+                    f"ELSE coalesce(u{j}.hit, 0) END AS {q(u.name)}")
+        cols.append(f"coalesce(u{j}.prior, 0) AS _prior{j}")
+        cols.append(f"CASE WHEN {seen} THEN 0 ELSE 1 END AS _unseen{j}")
+    cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
+    cols += [f"i.{q(c)}" for c in lay.covariates]
+    joins = "".join(f" LEFT JOIN u{j} ON u{j}._rid = i._rid" for j in range(len(lay.uptakes)))
+    if observed:
+        joins += " LEFT JOIN cov c ON c._rid = i._rid"
+    return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
