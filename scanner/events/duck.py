@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_sql, literal
+from .sql import DIALECTS, analysis_sql, literal, view_sql
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -76,7 +76,7 @@ class Registry:
         self._q = q
 
     def _register_files(self, base: Path, data: dict) -> None:
-        lay, con, q = self.lay, self.con, DIALECTS["duckdb"].q
+        lay, con = self.lay, self.con
         srcs = {"meas": lay.source, "events": lay.events_source, "periods": lay.periods}
         rels = {}
         for key, src in srcs.items():
@@ -92,21 +92,13 @@ class Registry:
             [k for s in lay.scores for k, _ in s.where] + list(lay.covariates)
         _require(con, rels["meas"], dict.fromkeys(wanted), srcs["meas"] or "measurements",
                  "long-format measurement")
-        con.execute(f"CREATE VIEW meas AS SELECT * FROM {rels['meas']}")
         _require(con, rels["events"], [lay.events_person, lay.events_date, lay.events_code],
                  srcs["events"] or "events", "events")
-        con.execute(f"CREATE VIEW ev AS SELECT CAST({q(lay.events_person)} AS STRING) AS person, "
-                    f"{DIALECTS['duckdb'].day(q(lay.events_date))} AS day, "
-                    f"CAST({q(lay.events_code)} AS STRING) AS code FROM {rels['events']} "
-                    f"WHERE {q(lay.events_date)} IS NOT NULL")
         if "periods" in rels:
             _require(con, rels["periods"], [lay.person, lay.period_start, lay.period_end],
                      srcs["periods"] or "periods", "observed-time")
-            d = DIALECTS["duckdb"]
-            con.execute(f"CREATE VIEW obs AS SELECT CAST({q(lay.person)} AS STRING) AS person, "
-                        f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
-                        f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
-                        f"AND {q(lay.period_end)} IS NOT NULL")
+        for name, sel in view_sql(lay, "duckdb", rels).items():
+            con.execute(f"CREATE VIEW {name} AS {sel}")
 
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""

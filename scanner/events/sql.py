@@ -123,3 +123,68 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb", event_filters: list | Non
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
     return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
+
+
+# ------------------------------------------------------------------ source views
+def view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
+    """SELECTs for the relations ``meas``, ``ev`` and (with periods) ``obs`` of a long layout.
+
+    ``rels`` maps "meas", "events" and optionally "periods" to relation expressions of the
+    engine (a table function or a registered view).
+    """
+    d = DIALECTS[dialect]
+    q = d.q
+    out = {"meas": f"SELECT * FROM {rels['meas']}",
+           "ev": (f"SELECT CAST({q(lay.events_person)} AS STRING) AS person, "
+                  f"{d.day(q(lay.events_date))} AS day, CAST({q(lay.events_code)} AS STRING) AS code "
+                  f"FROM {rels['events']} WHERE {q(lay.events_date)} IS NOT NULL")}
+    if "periods" in rels:
+        out["obs"] = (f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
+                      f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
+                      f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
+                      f"AND {q(lay.period_end)} IS NOT NULL")
+    return out
+
+
+FEMALE_CONCEPT = 8532      # OMOP gender concept "FEMALE" (from memory: OMOP standard vocabulary)
+OMOP_TABLES = ("person", "measurement", "drug_exposure", "procedure_occurrence", "observation_period")
+
+
+def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> tuple[dict, list]:
+    """Views and per-uptake event filters for OMOP CDM v5.4 tables (``rels``: table → relation).
+
+    * ``meas``: ``measurement`` rows with ``age`` (years at the measurement date, birth taken
+      as the 1st of ``month_of_birth``, July when it is missing) and ``female``
+      (``gender_concept_id`` = 8532; NULL when the gender concept is 0 or missing).
+    * ``ev``: ``drug_exposure`` (start date, ``drug_concept_id``) and ``procedure_occurrence``
+      (``procedure_date``, ``procedure_concept_id``) rows.
+    * ``obs``: ``observation_period``.
+    An uptake's concepts match themselves and, when ``concept_ancestor`` is present, every
+    descendant concept.
+    """
+    d = DIALECTS[dialect]
+    birth = "make_date(CAST(p.year_of_birth AS INT), CAST(coalesce(p.month_of_birth, 7) AS INT), 1)"
+    meas = (f"SELECT m.person_id, m.measurement_date, m.measurement_concept_id, "
+            f"CAST(m.value_as_number AS DOUBLE) AS value_as_number, "
+            f"({d.day('m.measurement_date')} - {d.day(birth)}) / 365.25 AS age, "
+            f"CASE WHEN p.gender_concept_id = {FEMALE_CONCEPT} THEN 1 "
+            f"WHEN p.gender_concept_id IS NULL OR p.gender_concept_id = 0 THEN NULL ELSE 0 END AS female "
+            f"FROM {rels['measurement']} m LEFT JOIN {rels['person']} p ON p.person_id = m.person_id")
+    ev = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('drug_exposure_start_date')} AS day, "
+          f"CAST(drug_concept_id AS STRING) AS code FROM {rels['drug_exposure']} "
+          f"WHERE drug_exposure_start_date IS NOT NULL")
+    if "procedure_occurrence" in rels:
+        ev += (f" UNION ALL SELECT CAST(person_id AS STRING) AS person, {d.day('procedure_date')} AS day, "
+               f"CAST(procedure_concept_id AS STRING) AS code FROM {rels['procedure_occurrence']} "
+               f"WHERE procedure_date IS NOT NULL")
+    obs = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} AS start_day, "
+           f"{d.day('observation_period_end_date')} AS end_day FROM {rels['observation_period']}")
+    filters = []
+    for u in lay.uptakes:
+        ids = ", ".join(str(int(c)) for c in u.concepts)
+        own = f"code IN ({', '.join(literal(str(int(c))) for c in u.concepts)})"
+        if "concept_ancestor" in rels:
+            own = (f"({own} OR code IN (SELECT CAST(descendant_concept_id AS STRING) FROM "
+                   f"{rels['concept_ancestor']} WHERE ancestor_concept_id IN ({ids})))")
+        filters.append(own)
+    return {"meas": meas, "ev": ev, "obs": obs}, filters
