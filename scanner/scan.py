@@ -116,6 +116,10 @@ def open_for_scan(spec: ScanSpec, data=None):
     engine = spec.engine
     if data is not None and type(data).__module__.startswith("pyspark"):
         return data, "spark", notes
+    if spec.layout is not None and engine == "spark":
+        from .events import open_spark_registry
+        frame = open_spark_registry(spec, data)
+        return frame, "spark", notes
     if spec.layout is not None:
         from .events import open_registry
         table = open_registry(spec, data)

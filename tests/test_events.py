@@ -196,3 +196,128 @@ def test_scan_end_to_end_finds_planted_jump(tmp_path):
     top = [c for c in res["candidates"] if c["cutoff"] == 6.5][0]
     assert top["verdict"] == "usable" and abs(top["jump"] - 0.5) < 0.1
     assert res["data"]["index_rows"] == {"hba1c": n}
+
+
+# ---------------------------------------------------------------- demo registry, OMOP layout
+OMOP_SPEC = """\
+title = "omop"
+[data]
+omop = "omop"
+[[running]]
+name = "hba1c"
+concept = 3004410
+quantity = "hba1c"
+unit = "%"
+[[running]]
+name = "egfr"
+concept = 3049187
+[[events.uptake]]
+name = "metformin_180d"
+concepts = [{mtf}]
+days = [0, 180]
+prior_days = 365
+[[events.uptake]]
+name = "renal_referral_180d"
+concepts = [2000000101]
+days = [0, 180]
+[covariates]
+columns = ["age", "female"]
+[search]
+discover = false
+"""
+
+
+@pytest.fixture(scope="module")
+def long_demo(tmp_path_factory):
+    from scanner.events.demo_long import write_long, write_omop
+    folder = tmp_path_factory.mktemp("long")
+    spec = write_long(folder, n_persons=20_000, discover=False)
+    write_omop(folder / "omop", n_persons=20_000)
+    return folder, spec
+
+
+def _at(result, running, treatment, cutoff):
+    rows = [r for r in result.rows if r["running"] == running and r["treatment"] == treatment
+            and abs(r["cutoff"] - cutoff) < 1e-9]
+    assert rows, f"no candidate {running} × {treatment} at {cutoff}"
+    return rows[0]
+
+
+def test_planted_jumps_found_in_long_and_omop_layouts(long_demo):
+    """Planted (scanner/events/demo_long.py): metformin 0.10 → 0.50 at HbA1c ≥ 6.5; renal
+    referral 0.75 → 0.05 crossing eGFR 30 upwards.  Both layouts hold the same registry, so the
+    index rows and the jumps agree to rounding."""
+    import scanner
+    folder, spec = long_demo
+    long = scanner.scan(spec)
+    (folder / "omop_spec.toml").write_text(OMOP_SPEC.format(mtf=1503297))
+    omop = scanner.scan(folder / "omop_spec.toml")
+    for res in (long, omop):
+        m = _at(res, "hba1c", "metformin_180d", 6.5)
+        r = _at(res, "egfr", "renal_referral_180d", 30)
+        assert m["verdict"] == "usable" and abs(m["jump"] - 0.40) < 0.08, m["jump"]
+        assert r["verdict"] == "usable" and abs(r["jump"] + 0.70) < 0.08, r["jump"]
+        assert not any(x["verdict"] == "usable" for x in res.rows
+                       if (x["running"], x["treatment"]) in {("hba1c", "renal_referral_180d"),
+                                                             ("egfr", "metformin_180d")})
+    for run, tr, c in (("hba1c", "metformin_180d", 6.5), ("egfr", "renal_referral_180d", 30)):
+        a, b = _at(long, run, tr, c), _at(omop, run, tr, c)
+        assert a["n_left"] == b["n_left"] and a["n_right"] == b["n_right"]
+        np.testing.assert_allclose(a["jump"], b["jump"], rtol=0, atol=1e-9)
+    assert {k: long.data["index_rows"][k] for k in ("hba1c", "egfr")} == omop.data["index_rows"]
+    drops = {(d["column"], d["treatment"], d["reason"]): d["rows"] for d in omop.data["dropped"]}
+    assert drops[("hba1c", "metformin_180d", "treated before")] > 0
+
+
+def test_omop_concept_descendants_count(long_demo):
+    """An uptake of a parent concept counts its descendants through concept_ancestor."""
+    import scanner
+    folder, _ = long_demo
+    (folder / "omop_parent.toml").write_text(OMOP_SPEC.format(mtf=2000009000))
+    (folder / "omop_child.toml").write_text(OMOP_SPEC.format(mtf=1503297))
+    a, b = scanner.scan(folder / "omop_parent.toml"), scanner.scan(folder / "omop_child.toml")
+    ja, jb = _at(a, "hba1c", "metformin_180d", 6.5), _at(b, "hba1c", "metformin_180d", 6.5)
+    assert ja["jump"] == jb["jump"] and ja["n_right"] == jb["n_right"]
+    (folder / "omop_none.toml").write_text(OMOP_SPEC.format(mtf=2000009999))
+    c = scanner.scan(folder / "omop_none.toml")
+    assert _at(c, "hba1c", "metformin_180d", 6.5)["verdict"] != "usable"
+
+
+# ---------------------------------------------------------------- Spark SQL gives the same rows
+from .test_spark import needs_spark  # noqa: E402
+
+
+@needs_spark
+@pytest.mark.spark
+def test_spark_sql_equals_duckdb(tmp_path):
+    """The same query text as Spark SQL: identical analysis rows, drop counts and BinnedStats
+    (1e-9) on the same registry, with observed periods and a look-back."""
+    from scanner.engines import BinPlan, bin_table
+    from scanner.engines.spark import local_session
+    from scanner.events.spark_sql import SparkRegistry
+    from scanner.io import open_table
+    meas, ev, periods = registry(seed=5, n=300)
+    raw = {**SPEC, "data": {**SPEC["data"], "periods": "p.parquet", "period_start": "start",
+                            "period_end": "end"}}
+    lay = parse_layout(raw, "<t>", ("female",))
+    for df, name in ((meas, "m"), (ev, "e"), (periods, "p")):
+        df.to_parquet(tmp_path / f"{name}.parquet")
+    duck = Registry(lay, tmp_path)
+    spark = local_session("local[2]")
+    try:
+        sp = SparkRegistry(spark, lay, tmp_path)
+        cols = ["pid", "on", "hba1c", "mtf", "any_late", "female"]
+        a = pa.Table.from_batches(list(duck.batches(cols, 10_000))).to_pandas()
+        b = sp.frame.select(*cols).toPandas()
+        pd.testing.assert_frame_equal(a.reset_index(drop=True), b.reset_index(drop=True),
+                                      check_dtype=False)
+        assert duck.dropped() == sp.dropped() and duck.index_rows() == sp.index_rows()
+        plan = BinPlan(running=("hba1c",), columns=("mtf", "any_late", "female"),
+                       treatments=("mtf", "any_late"), date="on")
+        s1 = bin_table(open_table(pa.Table.from_batches(list(duck.batches(cols, 10_000)))), plan).stats["hba1c"]
+        s2 = bin_table(sp.frame, plan, engine="spark").stats["hba1c"]
+        from .test_engines import assert_same_stats
+        assert_same_stats(s1, s2)
+        sp.close()
+    finally:
+        duck.close()

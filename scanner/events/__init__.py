@@ -22,6 +22,25 @@ def open_registry(spec, data=None):
     return table
 
 
+def open_spark_registry(spec, data=None):
+    """The analysis rows as a Spark DataFrame (Spark SQL in the active session), carrying
+    ``registry`` for the drop counts."""
+    from pathlib import Path
+    from ..engines.spark import _pyspark
+    from ..errors import InputError
+    from .spark_sql import SparkRegistry
+    spark = _pyspark()[0].getActiveSession()
+    if spark is None:
+        raise InputError(f"{spec.path or '<spec>'}: data.engine = \"spark\" needs an active "
+                         "SparkSession (cutscan never starts a cluster from the library): create "
+                         "one, or run the cutscan command, which starts a local one.")
+    base = Path(spec.path).parent if spec.path else Path.cwd()
+    reg = SparkRegistry(spark, spec.layout, base, data)
+    frame = reg.frame
+    frame.registry = reg
+    return frame
+
+
 def layout_dropped(dropped: list, spec, registry) -> list:
     """``data.dropped`` of a long-format scan: the layout's own drops replace the generic ones.
 

@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_sql, literal, view_sql
+from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, view_sql
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -109,26 +109,7 @@ class Registry:
 
     def dropped(self) -> list[dict]:
         """Rows left out, per running variable (and uptake): ``data.dropped`` entries."""
-        lay, out = self.lay, []
-        parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
-        for j in range(len(lay.uptakes)):
-            parts += [f"sum(CASE WHEN _noobs = 0 THEN _prior{j} ELSE 0 END) AS p{j}",
-                      f"sum(CASE WHEN _noobs = 0 AND _prior{j} = 0 THEN _unseen{j} ELSE 0 END) AS w{j}"]
-        res = self.con.execute(f"SELECT {', '.join(parts)} FROM analysis GROUP BY _score ORDER BY _score"
-                               ).fetchall()
-        for r in res:
-            name = lay.scores[r[0]].name
-            if r[2]:
-                out.append({"column": name, "treatment": None, "reason": "window not observed",
-                            "rows": int(r[2])})
-            for j, u in enumerate(lay.uptakes):
-                if r[3 + 2 * j]:
-                    out.append({"column": name, "treatment": u.name, "reason": "treated before",
-                                "rows": int(r[3 + 2 * j])})
-                if r[4 + 2 * j]:
-                    out.append({"column": name, "treatment": u.name, "reason": "window not observed",
-                                "rows": int(r[4 + 2 * j])})
-        return out
+        return dropped_entries(self.lay, self.con.execute(dropped_sql(self.lay)).fetchall())
 
     def index_rows(self) -> dict:
         """Index rows per running variable (before observed-time drops)."""

@@ -188,3 +188,28 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> tuple[dict, list]:
                    f"{rels['concept_ancestor']} WHERE ancestor_concept_id IN ({ids})))")
         filters.append(own)
     return {"meas": meas, "ev": ev, "obs": obs}, filters
+
+
+def dropped_sql(lay: Layout, table: str = "analysis") -> str:
+    """One aggregate over the analysis rows: per running variable, the rows dropped whole and,
+    per uptake, those with earlier use and those whose window was not observed."""
+    parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
+    for j in range(len(lay.uptakes)):
+        parts += [f"sum(CASE WHEN _noobs = 0 THEN _prior{j} ELSE 0 END) AS p{j}",
+                  f"sum(CASE WHEN _noobs = 0 AND _prior{j} = 0 THEN _unseen{j} ELSE 0 END) AS w{j}"]
+    return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score"
+
+
+def dropped_entries(lay: Layout, rows) -> list[dict]:
+    """``data.dropped`` entries from the rows of :func:`dropped_sql`."""
+    out = []
+    for r in rows:
+        name = lay.scores[int(r[0])].name
+        if r[2]:
+            out.append({"column": name, "treatment": None, "reason": "window not observed",
+                        "rows": int(r[2])})
+        for j, u in enumerate(lay.uptakes):
+            for k, reason in ((3 + 2 * j, "treated before"), (4 + 2 * j, "window not observed")):
+                if r[k]:
+                    out.append({"column": name, "treatment": u.name, "reason": reason, "rows": int(r[k])})
+    return out
