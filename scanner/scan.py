@@ -5,6 +5,7 @@ Everything after the binning pass works on BinnedStats only.
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -156,6 +157,10 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     ScanResult with candidates best first.
     """
     spec = _as_spec(spec_or_path)
+    screen = None
+    if spec.layout is not None and spec.layout.screen is not None:
+        from .events.screen import expand
+        spec, screen = expand(spec, data)
     table, engine, notes = open_for_scan(spec, data)
     coded = getattr(table, "coded", None) or {}     # filled as batches are read; kept past keep-first
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
@@ -200,6 +205,13 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                         cands.append(Candidate(r.column, t, c, "round"))
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
+    screen_p = []
+    if screen is not None:      # registry-wide screen: full evaluation only where stage 1 passes
+        from .events.screen import first_stage
+        light = functools.partial(evaluate, light=True)
+        cands, screen_p, screen["pairs"] = first_stage(
+            cands, pooled, spec,
+            lambda st, c: evaluate_contained(light, st, c, spec, {}).get("p_value", math.nan))
     for i, c in enumerate(cands):
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
         # Declared rules with an effective date: jumps before/after it from the period keys.
@@ -215,7 +227,9 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
     if spec.discover:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
-    rows = finalize(rows, spec.alpha, extra_p)
+    rows = finalize(rows, spec.alpha, list(extra_p) + screen_p)
+    if screen is not None:
+        search["screen"] = screen
     data_info = _data_info(binned, spec, deduped)
     registry = getattr(table, "registry", None)
     if registry is not None:
@@ -255,8 +269,12 @@ def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:
                      for r in spec.running}}
 
 
-def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict) -> dict:
-    """All estimates and diagnostics for one candidate, as a flat dict."""
+def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict,
+             light: bool = False) -> dict:
+    """All estimates and diagnostics for one candidate, as a flat dict.
+
+    ``light`` stops after the jump and its interval (stage 1 of a registry-wide screen).
+    """
     t, c = cand.treatment, cand.cutoff
     d = side_data(stats, t, c, cand.right_closed)
     sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
@@ -280,6 +298,8 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
         row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
     row["design"] = _design(fit)
+    if light:
+        return row
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
         bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)

@@ -14,7 +14,7 @@ from .events.layout import DATA_KEYS, RUNNING_KEYS, parse_layout
 
 KNOWN = {
     "": {"title", "data", "running", "treatments", "covariates", "outcomes", "rules", "search",
-         "output", "events"},
+         "output", "events", "screen"},
     "data": {"source", "date", "unit", "keep", "engine", "batch_rows", "missing",
              "missing_by_column", "date_format"} | DATA_KEYS,
     "running": {"column", "quantity", "unit", "bin_width", "treatments"} | RUNNING_KEYS,
@@ -209,10 +209,10 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         runs = [runs]
     layout = parse_layout(raw, where, _columns(raw.get("covariates"), "covariates", where)) \
         if isinstance(raw.get("data", {}), dict) else None
-    if not runs:
+    if not runs and not (layout is not None and layout.screen is not None):
         raise _err(where, "no running variable: add a [[running]] table with column = \"...\".")
     running = []
-    for r in runs:
+    for r in runs or ():
         if not isinstance(r, dict):
             raise _err(where, "each [[running]] entry must be a table.")
         _check_keys(r, "running", where, text)
@@ -238,7 +238,7 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
     treatments = _columns(raw.get("treatments"), "treatments", where)
     if layout is not None:
         treatments = layout.treatments + treatments
-    if not treatments:
+    if not treatments and not (layout is not None and layout.screen is not None):
         raise _err(where, "no treatment: add [treatments] columns = [\"...\"] (0/1 uptake columns).")
     data = raw.get("data", {})
     search = raw.get("search", {})

@@ -51,7 +51,7 @@ def _require(con, rel: str, cols, name: str, keys: str) -> None:
 class Registry:
     """A DuckDB connection holding one long-format registry's relations and analysis rows."""
 
-    def __init__(self, lay: Layout, base: Path, data: dict | None = None):
+    def __init__(self, lay: Layout, base: Path, data: dict | None = None, build: bool = True):
         import duckdb
         self.lay = lay
         self._tmp = tempfile.TemporaryDirectory(prefix="cutscan-duckdb-")
@@ -69,11 +69,15 @@ class Registry:
         else:
             self._register_files(base, data or {})
             self.filters = None
-        q = DIALECTS["duckdb"].q
+        self._q = DIALECTS["duckdb"].q
+        if build:
+            self.build()
+
+    def build(self) -> None:
+        """Create the analysis rows (a table in the private database)."""
         self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb", self.filters))
         self.columns = [c for c in _columns(self.con, "analysis") if not c.startswith("_")]
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
-        self._q = q
 
     def _register_files(self, base: Path, data: dict) -> None:
         lay, con = self.lay, self.con
@@ -89,7 +93,8 @@ class Registry:
                                       {"meas": "data.source", "events": "events.source",
                                        "periods": "data.periods"}[key])
         wanted = [lay.person, lay.date] + [s.column for s in lay.scores] + \
-            [k for s in lay.scores for k, _ in s.where] + list(lay.covariates)
+            [k for s in lay.scores for k, _ in s.where] + list(lay.covariates) + \
+            ([lay.screen.test, lay.screen.value] if lay.screen else [])
         _require(con, rels["meas"], dict.fromkeys(wanted), srcs["meas"] or "measurements",
                  "long-format measurement")
         _require(con, rels["events"], [lay.events_person, lay.events_date, lay.events_code],

@@ -24,11 +24,13 @@ Semantics, fixed here and in the README:
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, replace
 
 from ..errors import SpecError
 
 DATA_KEYS = {"person", "periods", "period_start", "period_end", "omop"}
+SCREEN_KEYS = {"test", "value", "min_persons", "min_event_persons", "days", "prior_days", "index",
+               "top_pairs"}
 RUNNING_KEYS = {"name", "where", "index", "concept"}
 EVENTS_KEYS = {"source", "person", "date", "code", "uptake"}
 UPTAKE_KEYS = {"name", "codes", "concepts", "days", "prior_days"}
@@ -63,6 +65,20 @@ class Score:
 
 
 @dataclass(frozen=True)
+class Screen:
+    """A registry-wide screen: every measurement kind with at least ``min_persons`` persons
+    paired with every event code seen in at least ``min_event_persons`` persons."""
+
+    test: str = "test"
+    value: str = "value"
+    min_persons: int = 500
+    min_event_persons: int = 200
+    days: tuple = (0, 180)
+    prior_days: int | None = None
+    index: str = "first"
+
+
+@dataclass(frozen=True)
 class Layout:
     """The long-format layout of a spec (None on a spec for a one-row-per-person table)."""
 
@@ -80,7 +96,7 @@ class Layout:
     period_start: str = "period_start"
     period_end: str = "period_end"
     omop: str | None = None
-    spec_dir: str | None = field(default=None, compare=False)
+    screen: Screen | None = None
 
     @property
     def treatments(self) -> tuple:
@@ -160,8 +176,10 @@ def parse_layout(raw: dict, where: str, covariates: tuple) -> Layout | None:
     ups = events.get("uptake", [])
     if isinstance(ups, dict):
         ups = [ups]
-    if not ups:
-        raise _err(where, "no uptake: add an [[events.uptake]] table with name, codes and days.")
+    screen = _screen(raw.get("screen"), where, omop is not None)
+    if not ups and screen is None:
+        raise _err(where, "no uptake: add an [[events.uptake]] table with name, codes and days "
+                   "(or a [screen] table to pair every measurement with every event code).")
     uptakes = tuple(_uptake(u, where, omop is not None) for u in ups)
     names = [u.name for u in uptakes]
     if len(set(names)) < len(names):
@@ -204,7 +222,7 @@ def parse_layout(raw: dict, where: str, covariates: tuple) -> Layout | None:
             raise _err(where, f"with data.omop the covariates available are {', '.join(OMOP_COVARIATES)}; "
                        f"remove {bad} from [covariates] columns.")
         return Layout(None, "person_id", "measurement_date", tuple(scores), uptakes, covariates,
-                      omop=_text(omop, where, "data.omop"))
+                      omop=_text(omop, where, "data.omop"), screen=screen)
     person = _text(data.get("person"), where, "data.person")
     date = _text(data.get("date"), where, "data.date (the measurement date)")
     return Layout(
@@ -214,4 +232,30 @@ def parse_layout(raw: dict, where: str, covariates: tuple) -> Layout | None:
         events_person=events.get("person", person), events_date=_text(events.get("date"), where, "events.date"),
         events_code=_text(events.get("code"), where, "events.code"),
         periods=data.get("periods"), period_start=data.get("period_start", "period_start"),
-        period_end=data.get("period_end", "period_end"))
+        period_end=data.get("period_end", "period_end"), screen=screen)
+
+
+def _screen(raw, where: str, omop: bool) -> Screen | None:
+    from ..errors import closest
+    if raw is None:
+        return None
+    if not isinstance(raw, dict):
+        raise _err(where, "[screen] must be a table.")
+    for k in raw:
+        if k not in SCREEN_KEYS:
+            raise _err(where, f"unknown key [screen] '{k}'{closest(k, SCREEN_KEYS)}. "
+                       f"Valid keys here: {', '.join(sorted(SCREEN_KEYS))}.")
+    for k in ("min_persons", "min_event_persons"):
+        v = raw.get(k, 1)
+        if not (isinstance(v, int) and not isinstance(v, bool) and v >= 1):
+            raise _err(where, f"screen.{k} = {v!r} must be a whole number ≥ 1.")
+    up = _uptake({"name": "screen", "codes": ["*"], "concepts": [0] if omop else [],
+                  "days": raw.get("days", [0, 180]), "prior_days": raw.get("prior_days")}, where, omop)
+    idx = raw.get("index", "first")
+    if idx not in ("first", "each"):
+        raise _err(where, f"screen.index = {idx!r} must be 'first' or 'each'.")
+    base = Screen() if not omop else Screen(test="measurement_concept_id", value="value_as_number")
+    return replace(base, test=raw.get("test", base.test), value=raw.get("value", base.value),
+                   min_persons=raw.get("min_persons", base.min_persons),
+                   min_event_persons=raw.get("min_event_persons", base.min_event_persons),
+                   days=up.days, prior_days=up.prior_days, index=idx)
