@@ -5,7 +5,6 @@ Everything after the binning pass works on BinnedStats only.
 from __future__ import annotations
 
 import datetime as dt
-import functools
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -208,10 +207,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     screen_p = []
     if screen is not None:      # registry-wide screen: full evaluation only where stage 1 passes
         from .events.screen import first_stage
-        light = functools.partial(evaluate, light=True)
-        cands, screen_p, screen["pairs"] = first_stage(
-            cands, pooled, spec,
-            lambda st, c: evaluate_contained(light, st, c, spec, {}).get("p_value", math.nan))
+        cands, screen_p, screen["pairs"] = first_stage(cands, pooled, spec)
     for i, c in enumerate(cands):
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
         # Declared rules with an effective date: jumps before/after it from the period keys.
@@ -269,12 +265,8 @@ def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:
                      for r in spec.running}}
 
 
-def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict,
-             light: bool = False) -> dict:
-    """All estimates and diagnostics for one candidate, as a flat dict.
-
-    ``light`` stops after the jump and its interval (stage 1 of a registry-wide screen).
-    """
+def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict) -> dict:
+    """All estimates and diagnostics for one candidate, as a flat dict."""
     t, c = cand.treatment, cand.cutoff
     d = side_data(stats, t, c, cand.right_closed)
     sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
@@ -298,8 +290,6 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
         row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
     row["design"] = _design(fit)
-    if light:
-        return row
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
         bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)

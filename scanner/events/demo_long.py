@@ -46,7 +46,7 @@ def _draw(rng, n, mean, sd, dec):
 
 
 def generate(n_persons: int = 60_000, seed: int = 11, extra_tests: int = 0, extra_codes: int = 0,
-             visits: float = 2.5):
+             visits: float = 2.5, noise_events: int | None = None):
     """Measurements, events and enrolment periods (pandas DataFrames) with planted truth."""
     rng = np.random.default_rng(seed)
     pid = np.arange(n_persons)
@@ -83,7 +83,7 @@ def generate(n_persons: int = 60_000, seed: int = 11, extra_tests: int = 0, extr
                                              "day": f["day"].to_numpy()[old] - rng.integers(1, 300, old.sum()),
                                              "code": "NM-MTF"}))
     codes = ["NM-MTF", "NM-STAT", "NM-RENAL"] + [f"RX{k:03d}" for k in range(extra_codes)]
-    n_noise = int(n_persons * (1 + 0.15 * extra_codes))
+    n_noise = int(n_persons * (1 + 0.15 * extra_codes)) if noise_events is None else noise_events
     p = rng.integers(0, n_persons, n_noise)
     e_parts.append(pd.DataFrame({"person_id": p, "day": start[p] + rng.integers(-200, 3000, n_noise),
                                  "code": rng.choice(codes[3:] or codes, n_noise)}))

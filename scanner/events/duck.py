@@ -64,18 +64,17 @@ class Registry:
         self.name = str(base)
         if lay.omop:
             from .omop import register_omop
-            self.filters = register_omop(self.con, lay, base / lay.omop)
+            register_omop(self.con, lay, base / lay.omop)
             self.name = str(base / lay.omop)
         else:
             self._register_files(base, data or {})
-            self.filters = None
         self._q = DIALECTS["duckdb"].q
         if build:
             self.build()
 
     def build(self) -> None:
         """Create the analysis rows (a table in the private database)."""
-        self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb", self.filters))
+        self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb"))
         self.columns = [c for c in _columns(self.con, "analysis") if not c.startswith("_")]
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
 

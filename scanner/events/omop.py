@@ -46,9 +46,7 @@ def omop_relations(con, where: Path) -> dict:
     return rels
 
 
-def register_omop(con, lay, where: Path) -> list:
-    """Create the views ``meas``, ``ev`` and ``obs`` from OMOP tables; return uptake filters."""
-    views, filters = omop_view_sql(lay, "duckdb", omop_relations(con, where))
-    for name, sel in views.items():
+def register_omop(con, lay, where: Path) -> None:
+    """Create the views ``meas``, ``ev``, ``obs`` and the uptake code map from OMOP tables."""
+    for name, sel in omop_view_sql(lay, "duckdb", omop_relations(con, where)).items():
         con.execute(f"CREATE VIEW {name} AS {sel}")
-    return filters

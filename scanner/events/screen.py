@@ -68,14 +68,29 @@ def expand(spec, data=None):
     return replace(spec, layout=lay2, running=running, treatments=treatments), info
 
 
-def first_stage(cands, pooled: dict, spec, light_evaluate):
+def stage_one_p(stats, cand, spec) -> float:
+    """The robust bias-corrected p-value of the jump at the candidate's MSE-optimal bandwidth
+    (Calonico, Cattaneo & Titiunik 2014) — the full evaluation's interval without its
+    diagnostics; NaN where the fit is not estimable."""
+    from ..estimate import side_data
+    from ..estimate.robust import robust_jump
+    from ..estimate.select import select_bandwidth
+    from ..score import MIN_DISTINCT
+    try:
+        d = side_data(stats, cand.treatment, cand.cutoff, cand.right_closed)
+        sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
+        return float(robust_jump(d, sel.h, sel.b, spec.kernel, spec.degree).p_value)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError, ZeroDivisionError):
+        return float("nan")
+
+
+def first_stage(cands, pooled: dict, spec):
     """Stage 1 of a screen: which candidates get the full evaluation.
 
-    ``light_evaluate(stats, cand)`` returns the candidate's p-value (jump and robust interval
-    only).  Returns (kept candidates, stage-1 p-values of the others, summary per pair).
+    Returns (kept candidates, stage-1 p-values of the others, summary per pair).
     """
     from ..score import bh_qvalues
-    ps = np.array([light_evaluate(pooled[c.running], c) for c in cands], dtype=float)
+    ps = np.array([stage_one_p(pooled[c.running], c, spec) for c in cands], dtype=float)
     q = bh_qvalues(list(ps))
     keep = [(c.origin == "declared") or (np.isfinite(qv) and qv < spec.alpha)
             for c, qv in zip(cands, q)]

@@ -38,7 +38,7 @@ class SparkRegistry:
                         _read(spark, cand, f"OMOP table {t}").createOrReplaceTempView(f"_cdm_{t}")
                         rels[t] = f"_cdm_{t}"
                         break
-            views, filters = omop_view_sql(lay, "spark", rels)
+            views = omop_view_sql(lay, "spark", rels)
         else:
             srcs = {"meas": lay.source, "events": lay.events_source, "periods": lay.periods}
             for key, src in srcs.items():
@@ -58,10 +58,10 @@ class SparkRegistry:
                         raise ColumnNotFoundError(c, list(df.columns), src or key, key)
                 df.createOrReplaceTempView(f"_src_{key}")
                 rels[key] = f"_src_{key}"
-            views, filters = view_sql(lay, "spark", rels), None
+            views = view_sql(lay, "spark", rels)
         for name, sel in views.items():
             spark.sql(sel).createOrReplaceTempView(name)
-        self.all = spark.sql(analysis_sql(lay, "spark", filters)).cache()
+        self.all = spark.sql(analysis_sql(lay, "spark")).cache()
         self.all.createOrReplaceTempView("_analysis")
         self.frame = self.all.where("_noobs = 0").orderBy("_rid").drop(
             *[c for c in self.all.columns if c.startswith("_")])

@@ -49,16 +49,21 @@ def literal(v) -> str:
     return repr(v)
 
 
-def code_match(col: str, codes: tuple) -> str:
-    """``col`` (text) is one of ``codes``; a trailing ``*`` matches a prefix."""
-    exact = [c for c in codes if not c.endswith("*")]
-    parts = []
-    if exact:
-        parts.append(f"{col} IN ({', '.join(literal(c) for c in exact)})")
-    for c in codes:
-        if c.endswith("*"):
-            parts.append(f"{col} LIKE {literal(c[:-1].replace('%', '').replace('_', '') + '%')}")
-    return "(" + " OR ".join(parts) + ")" if parts else "FALSE"
+def code_map(lay: Layout) -> dict:
+    """``uc`` (uptake j, exact code) and ``ucp`` (uptake j, LIKE prefix) as portable SELECTs.
+
+    A trailing ``*`` in a code matches a prefix; ``%`` and ``_`` in codes are literal text.
+    """
+    exact, pref = [], []
+    for j, u in enumerate(lay.uptakes):
+        for c in u.codes:
+            if c.endswith("*"):
+                pref.append(f"SELECT {j} AS j, {literal(c[:-1].replace('%', '').replace('_', '') + '%')} AS prefix")
+            else:
+                exact.append(f"SELECT {j} AS j, {literal(c)} AS code")
+    none = "SELECT -1 AS j, '' AS {0} WHERE 1 = 0"
+    return {"uc": " UNION ALL ".join(exact) or none.format("code"),
+            "ucp": " UNION ALL ".join(pref) or none.format("prefix")}
 
 
 def _score_rows(lay: Layout, i: int, d: Dialect) -> str:
@@ -77,49 +82,53 @@ def _score_rows(lay: Layout, i: int, d: Dialect) -> str:
             f") m) r WHERE _k = 1")
 
 
-def _uptake_cte(u: Uptake, j: int, d: Dialect) -> str:
-    lo = u.first_day
-    a, b = u.days
-    prior = (f"max(CASE WHEN e.day BETWEEN i.day - {u.prior_days} AND i.day - 1 THEN 1 ELSE 0 END)"
-             if u.prior_days else "0")
-    return (f"u{j} AS (SELECT i._rid, "
-            f"max(CASE WHEN e.day BETWEEN i.day + ({a}) AND i.day + ({b}) THEN 1 ELSE 0 END) AS hit, "
-            f"{prior} AS prior FROM idx i JOIN ev{j} e ON e.person = i.person "
-            f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({b}) GROUP BY i._rid)")
-
-
-def analysis_sql(lay: Layout, dialect: str = "duckdb", event_filters: list | None = None) -> str:
+def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     """The query building the analysis rows of a long-format layout.
 
-    ``event_filters`` gives, per uptake, a boolean SQL expression over ``ev``'s columns ``code``
-    (text); by default :func:`code_match` of the uptake's codes.
+    Events reach the index rows through one range join: ``evj`` holds each (person, day,
+    uptake) once — codes matched through the code map ``uc``/``ucp`` — and one GROUP BY per
+    index row gives every uptake's hit and look-back flags by conditional aggregation.  (One
+    join for all uptakes, rather than one per uptake, keeps a screen of many event codes to a
+    single pass over the events.)
     """
     d = DIALECTS[dialect]
     q = d.q
+    ups = lay.uptakes
+    lo = min(u.first_day for u in ups)
+    hi = max(u.days[1] for u in ups)
     ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, i, d) for i in range(len(lay.scores))) + ")",
-            "idx AS (SELECT *, row_number() OVER (ORDER BY _score, person, day) AS _rid FROM idx0)"]
-    for j, u in enumerate(lay.uptakes):
-        filt = event_filters[j] if event_filters else code_match("code", u.codes)
-        ctes.append(f"ev{j} AS (SELECT DISTINCT person, day FROM ev WHERE {filt})")
-        ctes.append(_uptake_cte(u, j, d))
-    if lay.periods or lay.omop:
+            "idx AS (SELECT *, row_number() OVER (ORDER BY _score, person, day) AS _rid FROM idx0)",
+            "evj AS (SELECT DISTINCT person, day, j FROM ("
+            "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
+            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
+    aggs = []
+    for j, u in enumerate(ups):
+        a, b = u.days
+        aggs.append(f"max(CASE WHEN e.j = {j} AND e.day BETWEEN i.day + ({a}) AND i.day + ({b}) "
+                    f"THEN 1 ELSE 0 END) AS hit{j}")
+        if u.prior_days:
+            aggs.append(f"max(CASE WHEN e.j = {j} AND e.day BETWEEN i.day - {u.prior_days} AND "
+                        f"i.day - 1 THEN 1 ELSE 0 END) AS prior{j}")
+    ctes.append(f"hits AS (SELECT i._rid, {', '.join(aggs)} FROM idx i JOIN evj e ON e.person = i.person "
+                f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) GROUP BY i._rid)")
+    observed = lay.periods or lay.omop
+    if observed:
         ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
                     "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
                     "GROUP BY i._rid)")
-    cols = [f"i._score", f"i._rid", f"i.person AS {q(lay.person)}",
-            f"{d.from_day('i.day')} AS {q(lay.date)}"]
+    cols = ["i._score", "i._rid", f"i.person AS {q(lay.person)}", f"{d.from_day('i.day')} AS {q(lay.date)}"]
     cols += [f"CASE WHEN i._score = {k} THEN i.x END AS {q(s.name)}" for k, s in enumerate(lay.scores)]
-    observed = lay.periods or lay.omop
-    for j, u in enumerate(lay.uptakes):
+    for j, u in enumerate(ups):
         seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
                 if observed else "TRUE")
-        cols.append(f"CASE WHEN coalesce(u{j}.prior, 0) = 1 THEN NULL WHEN NOT {seen} THEN NULL "
-                    f"ELSE coalesce(u{j}.hit, 0) END AS {q(u.name)}")
-        cols.append(f"coalesce(u{j}.prior, 0) AS _prior{j}")
+        prior = f"coalesce(h.prior{j}, 0)" if u.prior_days else "0"
+        cols.append(f"CASE WHEN {prior} = 1 THEN NULL WHEN NOT {seen} THEN NULL "
+                    f"ELSE coalesce(h.hit{j}, 0) END AS {q(u.name)}")
+        cols.append(f"{prior} AS _prior{j}")
         cols.append(f"CASE WHEN {seen} THEN 0 ELSE 1 END AS _unseen{j}")
     cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
     cols += [f"i.{q(c)}" for c in lay.covariates]
-    joins = "".join(f" LEFT JOIN u{j} ON u{j}._rid = i._rid" for j in range(len(lay.uptakes)))
+    joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
     return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
@@ -138,6 +147,7 @@ def view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
            "ev": (f"SELECT CAST({q(lay.events_person)} AS STRING) AS person, "
                   f"{d.day(q(lay.events_date))} AS day, CAST({q(lay.events_code)} AS STRING) AS code "
                   f"FROM {rels['events']} WHERE {q(lay.events_date)} IS NOT NULL")}
+    out.update(code_map(lay))
     if "periods" in rels:
         out["obs"] = (f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
                       f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
@@ -150,8 +160,8 @@ FEMALE_CONCEPT = 8532      # OMOP gender concept "FEMALE" (from memory: OMOP sta
 OMOP_TABLES = ("person", "measurement", "drug_exposure", "procedure_occurrence", "observation_period")
 
 
-def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> tuple[dict, list]:
-    """Views and per-uptake event filters for OMOP CDM v5.4 tables (``rels``: table → relation).
+def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
+    """Views (with the uptake code map) for OMOP CDM v5.4 tables (``rels``: table → relation).
 
     * ``meas``: ``measurement`` rows with ``age`` (years at the measurement date, birth taken
       as the 1st of ``month_of_birth``, July when it is missing) and ``female``
@@ -179,15 +189,15 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> tuple[dict, list]:
                f"WHERE procedure_date IS NOT NULL")
     obs = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} AS start_day, "
            f"{d.day('observation_period_end_date')} AS end_day FROM {rels['observation_period']}")
-    filters = []
-    for u in lay.uptakes:
-        ids = ", ".join(str(int(c)) for c in u.concepts)
-        own = f"code IN ({', '.join(literal(str(int(c))) for c in u.concepts)})"
-        if "concept_ancestor" in rels:
-            own = (f"({own} OR code IN (SELECT CAST(descendant_concept_id AS STRING) FROM "
-                   f"{rels['concept_ancestor']} WHERE ancestor_concept_id IN ({ids})))")
-        filters.append(own)
-    return {"meas": meas, "ev": ev, "obs": obs}, filters
+    own = " UNION ALL ".join(f"SELECT {j} AS j, {int(c)} AS concept"
+                             for j, u in enumerate(lay.uptakes) for c in u.concepts)
+    uc = f"SELECT j, CAST(concept AS STRING) AS code FROM ({own}) o"
+    if "concept_ancestor" in rels:
+        uc = (f"SELECT DISTINCT j, code FROM ({uc} UNION ALL SELECT o.j, "
+              f"CAST(a.descendant_concept_id AS STRING) AS code FROM ({own}) o "
+              f"JOIN {rels['concept_ancestor']} a ON a.ancestor_concept_id = o.concept) z")
+    return {"meas": meas, "ev": ev, "obs": obs, "uc": uc, "ucp": code_map(lay)["ucp"]}
+
 
 
 def dropped_sql(lay: Layout, table: str = "analysis") -> str:
