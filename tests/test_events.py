@@ -321,3 +321,56 @@ def test_spark_sql_equals_duckdb(tmp_path):
         sp.close()
     finally:
         duck.close()
+
+
+# ---------------------------------------------------------------- registry-wide screen
+SCREEN_SPEC = """\
+title = "screen"
+[data]
+source = "lab_results.parquet"
+person = "person_id"
+date = "taken_on"
+periods = "enrolment.parquet"
+period_start = "enrolled_from"
+period_end = "enrolled_to"
+[events]
+source = "dispensing.parquet"
+date = "dispensed_on"
+code = "code"
+[screen]
+min_persons = 2000
+min_event_persons = 500
+days = [0, 180]
+[search]
+discover = false
+"""
+
+
+def test_screen_pairs_every_measurement_with_every_code(tmp_path):
+    """Planted pairs (scanner/events/demo_long.py) survive stage 1 and are usable; noise pairs
+    are not; the q-value family counts every stage-1 test of every pair."""
+    import json
+    import scanner
+    from scanner.events.demo_long import write_long
+    write_long(tmp_path, n_persons=20_000, extra_tests=2, extra_codes=3)
+    (tmp_path / "screen.toml").write_text(SCREEN_SPEC)
+    res = scanner.scan(tmp_path / "screen.toml")
+    s = res.search["screen"]
+    kinds = {k["kind"] for k in s["measurement_kinds"]}
+    codes = {c["code"] for c in s["event_codes"]}
+    assert kinds == {"HBA1C", "EGFR", "LDL", "LAB000", "LAB001"}
+    assert {"NM-MTF", "NM-RENAL", "RX000"} <= codes
+    assert len(s["pairs"]) == len(kinds) * len(codes)
+    tested = sum(p["tested"] for p in s["pairs"])
+    assert tested > 10 * len(s["pairs"])
+    assert res.rows[0]["n_tested"] <= tested and res.rows[0]["n_tested"] >= tested - 50
+    assert _at(res, "HBA1C", "NM-MTF", 6.5)["verdict"] in ("usable", "caution", "doubtful")
+    assert _at(res, "EGFR", "NM-RENAL", 30)["verdict"] in ("usable", "caution")
+    planted = {("HBA1C", "NM-MTF"), ("EGFR", "NM-RENAL")}
+    assert not [r for r in res.rows if (r["running"], r["treatment"]) not in planted
+                and r["verdict"] == "usable"]
+    res.to_json(tmp_path / "r.json")
+    res.report(tmp_path / "r.html")
+    page = (tmp_path / "r.html").read_text()
+    assert "Screen by measurement" in page and "NM-RENAL at 30" in page
+    assert json.loads((tmp_path / "r.json").read_text())["search"]["screen"]["pairs"]
