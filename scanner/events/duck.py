@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, view_sql
+from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, scan_sql, view_sql
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -75,7 +75,8 @@ class Registry:
     def build(self) -> None:
         """Create the analysis rows (a table in the private database)."""
         self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb"))
-        self.columns = [c for c in _columns(self.con, "analysis") if not c.startswith("_")]
+        self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
+            list(self.lay.treatments) + list(self.lay.covariates)
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
 
     def _register_files(self, base: Path, data: dict) -> None:
@@ -106,9 +107,8 @@ class Registry:
 
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
-        sel = ", ".join(self._q(c) for c in cols)
-        reader = self.con.cursor().sql(f"SELECT {sel} FROM analysis WHERE _noobs = 0 ORDER BY _rid"
-                              ).to_arrow_reader(rows)
+        reader = self.con.cursor().sql(scan_sql(self.lay, "duckdb", "analysis", cols)
+                                       ).to_arrow_reader(rows)
         yield from reader
 
     def dropped(self) -> list[dict]:

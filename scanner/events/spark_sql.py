@@ -8,7 +8,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import ColumnNotFoundError, InputError
-from .sql import OMOP_TABLES, analysis_sql, dropped_entries, dropped_sql, omop_view_sql, view_sql
+from .sql import OMOP_TABLES, analysis_sql, scan_sql, dropped_entries, dropped_sql, omop_view_sql, view_sql
 
 
 def _read(spark, path: Path, what: str):
@@ -63,8 +63,7 @@ class SparkRegistry:
             spark.sql(sel).createOrReplaceTempView(name)
         self.all = spark.sql(analysis_sql(lay, "spark")).cache()
         self.all.createOrReplaceTempView("_analysis")
-        self.frame = self.all.where("_noobs = 0").orderBy("_rid").drop(
-            *[c for c in self.all.columns if c.startswith("_")])
+        self.frame = spark.sql(scan_sql(lay, "spark", "_analysis"))
 
     def dropped(self) -> list[dict]:
         rows = [tuple(r) for r in self.spark.sql(dropped_sql(self.lay, "_analysis")).collect()]

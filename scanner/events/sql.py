@@ -34,6 +34,17 @@ class Dialect:
             return f"datediff(CAST({expr} AS DATE), DATE'1970-01-01')"
         return f"(CAST(CAST({expr} AS DATE) AS DATE) - DATE '1970-01-01')"
 
+    def shl(self, value: str, bits: str) -> str:
+        if self.name == "spark":
+            return f"shiftleft(CAST({value} AS BIGINT), {bits})"
+        return f"(CAST({value} AS BIGINT) << {bits})"
+
+    def bit(self, mask: str, j: int) -> str:
+        """Bit ``j`` of a BIGINT mask, as 0/1."""
+        if self.name == "spark":
+            return f"(shiftright({mask}, {j}) & 1)"
+        return f"(({mask} >> {j}) & 1)"
+
     def from_day(self, expr: str) -> str:
         if self.name == "spark":
             return f"date_add(DATE'1970-01-01', CAST({expr} AS INT))"
@@ -66,72 +77,123 @@ def code_map(lay: Layout) -> dict:
             "ucp": " UNION ALL ".join(pref) or none.format("prefix")}
 
 
-def _score_rows(lay: Layout, i: int, d: Dialect) -> str:
-    """Index rows of running variable ``i``: one per person (first) or per person-day (each)."""
-    s = lay.scores[i]
+def _score_groups(lay: Layout) -> list[list[int]]:
+    """Running variables read by one query: same value column, one equality filter on the same
+    column, same index rule (a screen's measurement kinds share one pass over the rows)."""
+    groups: dict = {}
+    out = []
+    for i, s in enumerate(lay.scores):
+        if len(s.where) == 1:
+            groups.setdefault((s.column, s.where[0][0], s.index), []).append(i)
+        else:
+            out.append([i])
+    return list(groups.values()) + out
+
+
+def _score_rows(lay: Layout, ids: list, d: Dialect) -> str:
+    """Index rows of the running variables ``ids``: one per person (first) or per person-day
+    (each) and variable; several values on one day keep the lowest."""
+    s = lay.scores[ids[0]]
     q = d.q
     covs = "".join(f", {q(c)}" for c in lay.covariates)
     cond = [f"{q(s.column)} IS NOT NULL", f"{q(lay.date)} IS NOT NULL", f"{q(lay.person)} IS NOT NULL"]
-    cond += [f"{q(k)} = {literal(v)}" for k, v in s.where]
-    part = "person" if s.index == "first" else "person, day"
+    if len(ids) == 1:
+        cond += [f"{q(k)} = {literal(v)}" for k, v in s.where]
+        kind, join, score = "0", "", f"{ids[0]}"
+    else:
+        col = q(s.where[0][0])
+        vals = ", ".join(literal(lay.scores[i].where[0][1]) for i in ids)
+        cond.append(f"{col} IN ({vals})")
+        kind = f"CAST({col} AS STRING)"
+        smap = " UNION ALL ".join(f"SELECT {i} AS _score, CAST({literal(lay.scores[i].where[0][1])} "
+                                  f"AS STRING) AS kind" for i in ids)
+        join, score = f" JOIN ({smap}) sm ON sm.kind = r.kind", "sm._score"
+    part = "kind, person" if s.index == "first" else "kind, person, day"
     order = "day, x" + "".join(f", {q(c)}" for c in lay.covariates)
-    return (f"SELECT {i} AS _score, person, day, x{covs} FROM ("
+    return (f"SELECT {score} AS _score, person, day, x{covs} FROM ("
             f"SELECT *, row_number() OVER (PARTITION BY {part} ORDER BY {order}) AS _k FROM ("
-            f"SELECT CAST({q(lay.person)} AS STRING) AS person, {d.day(q(lay.date))} AS day, "
-            f"CAST({q(s.column)} AS DOUBLE) AS x{covs} FROM meas WHERE {' AND '.join(cond)}"
-            f") m) r WHERE _k = 1")
+            f"SELECT {kind} AS kind, CAST({q(lay.person)} AS STRING) AS person, "
+            f"{d.day(q(lay.date))} AS day, CAST({q(s.column)} AS DOUBLE) AS x{covs} FROM meas "
+            f"WHERE {' AND '.join(cond)}) m) r{join} WHERE _k = 1")
 
 
 def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     """The query building the analysis rows of a long-format layout.
 
     Events reach the index rows through one range join: ``evj`` holds each (person, day,
-    uptake) once — codes matched through the code map ``uc``/``ucp`` — and one GROUP BY per
-    index row gives every uptake's hit and look-back flags by conditional aggregation.  (One
-    join for all uptakes, rather than one per uptake, keeps a screen of many event codes to a
-    single pass over the events.)
+    uptake) once — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
+    (index row, uptake), gives each uptake's hit and look-back flags; they are folded into one
+    bit mask per 62 uptakes and index row.  One join for all uptakes, and masks rather than a
+    column per uptake in the aggregate, keep a screen of many event codes to one pass over the
+    events and a narrow aggregate.
     """
     d = DIALECTS[dialect]
     q = d.q
     ups = lay.uptakes
     lo = min(u.first_day for u in ups)
     hi = max(u.days[1] for u in ups)
-    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, i, d) for i in range(len(lay.scores))) + ")",
+    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
             "idx AS (SELECT *, row_number() OVER (ORDER BY _score, person, day) AS _rid FROM idx0)",
             "evj AS (SELECT DISTINCT person, day, j FROM ("
             "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
-    aggs = []
-    for j, u in enumerate(ups):
-        a, b = u.days
-        aggs.append(f"max(CASE WHEN e.j = {j} AND e.day BETWEEN i.day + ({a}) AND i.day + ({b}) "
-                    f"THEN 1 ELSE 0 END) AS hit{j}")
-        if u.prior_days:
-            aggs.append(f"max(CASE WHEN e.j = {j} AND e.day BETWEEN i.day - {u.prior_days} AND "
-                        f"i.day - 1 THEN 1 ELSE 0 END) AS prior{j}")
-    ctes.append(f"hits AS (SELECT i._rid, {', '.join(aggs)} FROM idx i JOIN evj e ON e.person = i.person "
-                f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) GROUP BY i._rid)")
+    # Hits per (index row, uptake), then one BIGINT bit mask per 62 uptakes and index row.
+    uw = " UNION ALL ".join(f"SELECT {j} AS j, {u.days[0]} AS a, {u.days[1]} AS b, "
+                            f"{u.prior_days or 0} AS k" for j, u in enumerate(ups))
+    ctes.append(f"hl AS (SELECT i._rid, e.j, "
+                f"max(CASE WHEN e.day BETWEEN i.day + w.a AND i.day + w.b THEN 1 ELSE 0 END) AS hit, "
+                f"max(CASE WHEN w.k > 0 AND e.day BETWEEN i.day - w.k AND i.day - 1 THEN 1 ELSE 0 END) "
+                f"AS prior FROM idx i JOIN evj e ON e.person = i.person "
+                f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) "
+                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j)")
+    masks = []
+    for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
+        sel = f"CASE WHEN j >= {g * MASK_BITS} AND j < {(g + 1) * MASK_BITS}"
+        masks.append(f"bit_or({sel} AND hit = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS h{g}")
+        masks.append(f"bit_or({sel} AND prior = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS p{g}")
+    ctes.append(f"hits AS (SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid)")
     observed = lay.periods or lay.omop
     if observed:
         ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
                     "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
                     "GROUP BY i._rid)")
-    cols = ["i._score", "i._rid", f"i.person AS {q(lay.person)}", f"{d.from_day('i.day')} AS {q(lay.date)}"]
-    cols += [f"CASE WHEN i._score = {k} THEN i.x END AS {q(s.name)}" for k, s in enumerate(lay.scores)]
+    cols = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
     for j, u in enumerate(ups):
         seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
                 if observed else "TRUE")
-        prior = f"coalesce(h.prior{j}, 0)" if u.prior_days else "0"
-        cols.append(f"CASE WHEN {prior} = 1 THEN NULL WHEN NOT {seen} THEN NULL "
-                    f"ELSE coalesce(h.hit{j}, 0) END AS {q(u.name)}")
-        cols.append(f"{prior} AS _prior{j}")
-        cols.append(f"CASE WHEN {seen} THEN 0 ELSE 1 END AS _unseen{j}")
+        g, k = divmod(j, MASK_BITS)
+        prior = f"{d.bit(f'coalesce(h.p{g}, 0)', k)} = 1" if u.prior_days else "FALSE"
+        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN NOT {seen} THEN {UNSEEN} "
+                    f"ELSE {d.bit(f'coalesce(h.h{g}, 0)', k)} END AS TINYINT) AS _u{j}")
     cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
     cols += [f"i.{q(c)}" for c in lay.covariates]
     joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
     return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
+
+
+def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
+    """The analysis rows as the scan reads them, from the compact table of :func:`analysis_sql`.
+
+    The compact table holds one value column for all running variables (``_x`` with the
+    running variable's number in ``_score``) and one small status code per uptake (0/1, or
+    earlier use, or window not observed); here they become one column per running variable
+    (NULL on the other variables' rows) and 0/1/NULL uptakes, for the kept rows in a fixed order.
+    ``columns`` picks and orders the output columns (default: all).
+    """
+    q = DIALECTS[dialect].q
+    expr = {lay.person: "_person", lay.date: DIALECTS[dialect].from_day("_day")}
+    expr.update({s.name: f"CASE WHEN _score = {k} THEN _x END" for k, s in enumerate(lay.scores)})
+    expr.update({u.name: f"CASE WHEN _u{j} < 2 THEN CAST(_u{j} AS DOUBLE) END"
+                 for j, u in enumerate(lay.uptakes)})
+    expr.update({c: q(c) for c in lay.covariates})
+    cols = ", ".join(f"{expr[c]} AS {q(c)}" for c in (columns or expr))
+    return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _rid"
+
+
+PRIOR, UNSEEN = 2, 3        # uptake status codes besides 0/1
+MASK_BITS = 62              # uptakes per BIGINT bit mask (sign bit and one spare left alone)
 
 
 # ------------------------------------------------------------------ source views
@@ -205,8 +267,8 @@ def dropped_sql(lay: Layout, table: str = "analysis") -> str:
     per uptake, those with earlier use and those whose window was not observed."""
     parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
     for j in range(len(lay.uptakes)):
-        parts += [f"sum(CASE WHEN _noobs = 0 THEN _prior{j} ELSE 0 END) AS p{j}",
-                  f"sum(CASE WHEN _noobs = 0 AND _prior{j} = 0 THEN _unseen{j} ELSE 0 END) AS w{j}"]
+        parts += [f"sum(CASE WHEN _noobs = 0 AND _u{j} = {PRIOR} THEN 1 ELSE 0 END) AS p{j}",
+                  f"sum(CASE WHEN _noobs = 0 AND _u{j} = {UNSEEN} THEN 1 ELSE 0 END) AS w{j}"]
     return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score"
 
 
