@@ -45,6 +45,18 @@ class Dialect:
             return f"(shiftright({mask}, {j}) & 1)"
         return f"(({mask} >> {j}) & 1)"
 
+    def row_id(self) -> str:
+        """A unique row number, a join key only (output order comes from (running variable,
+        person, day), which identify an index row).  DuckDB numbers the rows in no particular
+        order inside a MATERIALIZED CTE, so every reference sees the same numbers; Spark inlines
+        CTEs, so there the number must be deterministic: an ordered row_number()."""
+        return ("row_number() OVER (ORDER BY _score, person, day)" if self.name == "spark"
+                else "row_number() OVER ()")
+
+    @property
+    def materialized(self) -> str:
+        return "" if self.name == "spark" else "MATERIALIZED "
+
     def from_day(self, expr: str) -> str:
         if self.name == "spark":
             return f"date_add(DATE'1970-01-01', CAST({expr} AS INT))"
@@ -133,7 +145,7 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     lo = min(u.first_day for u in ups)
     hi = max(u.days[1] for u in ups)
     ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
-            "idx AS (SELECT *, row_number() OVER (ORDER BY _score, person, day) AS _rid FROM idx0)",
+            f"idx AS {d.materialized}(SELECT *, {d.row_id()} AS _rid FROM idx0)",
             "evj AS (SELECT DISTINCT person, day, j FROM ("
             "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
@@ -189,7 +201,7 @@ def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
                  for j, u in enumerate(lay.uptakes)})
     expr.update({c: q(c) for c in lay.covariates})
     cols = ", ".join(f"{expr[c]} AS {q(c)}" for c in (columns or expr))
-    return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _rid"
+    return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _score, _person, _day"
 
 
 PRIOR, UNSEEN = 2, 3        # uptake status codes besides 0/1
