@@ -95,7 +95,7 @@ def run_child(folder: str, which: str) -> None:
     print(json.dumps({"wall": wall, "peak_mb": peak_rss_mb(), "candidates": len(res.rows),
                       "pairs": len(s.get("pairs", [])) or 1,
                       "stage1": sum(p["tested"] for p in s.get("pairs", [])),
-                      "index_rows": sum(res.data.get("index_rows", {}).values())}))
+                      "index_rows": sum(x["rows"] for x in res.data.get("index_rows", []))}))
 
 
 def main() -> None:

@@ -231,7 +231,8 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if registry is not None:
         from .events import layout_dropped
         data_info["dropped"] = layout_dropped(data_info["dropped"], spec, registry)
-        data_info["index_rows"] = registry.index_rows()
+        data_info["index_rows"] = [{"column": k, "rows": v}
+                                  for k, v in registry.index_rows().items()]
         registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,

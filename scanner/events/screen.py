@@ -63,8 +63,8 @@ def expand(spec, data=None):
     running = tuple(spec.running) + tuple(RunningSpec(s.name) for s in scores[len(lay.scores):])
     treatments = tuple(u.name for u in ups) + tuple(t for t in spec.treatments
                                                     if t not in lay.treatments)
-    info = {"measurement_kinds": [{"kind": _name(k, "m"), "persons": int(n)} for k, n in kinds],
-            "event_codes": [{"code": str(c), "persons": int(n)} for c, n in codes]}
+    info = {"measurement_kinds": [{"kind": _name(k, "m"), "n_persons": int(n)} for k, n in kinds],
+            "event_codes": [{"code": str(c), "n_persons": int(n)} for c, n in codes]}
     return replace(spec, layout=lay2, running=running, treatments=treatments), info
 
 

@@ -19,7 +19,7 @@ def screen_section(results: dict) -> list[str]:
     if not s:
         return []
     m = results["disclosure"]["min_cell"]
-    persons = {k["kind"]: k["persons"] for k in s.get("measurement_kinds", [])}
+    persons = {k["kind"]: k["n_persons"] for k in s.get("measurement_kinds", [])}
     best: dict = {}
     for c in results["candidates"]:
         best.setdefault(c["running"], c)
