@@ -374,3 +374,20 @@ def test_screen_pairs_every_measurement_with_every_code(tmp_path):
     page = (tmp_path / "r.html").read_text()
     assert "Screen by measurement" in page and "NM-RENAL at 30" in page
     assert json.loads((tmp_path / "r.json").read_text())["search"]["screen"]["pairs"]
+
+
+def test_cli_long_demo(tmp_path):
+    """`cutscan demo --long`: the planted declared rules come out usable, the written input
+    holds the three long-format tables, and counts of dropped rows are reported."""
+    import json
+    out = run_cli("demo", "--long", "--out", tmp_path / "o", "--quiet")
+    assert out.returncode == 0, out.stderr
+    res = json.loads((tmp_path / "o" / "results.json").read_text())
+    got = {(c["running"], c["treatment"], c["cutoff"]): c["verdict"] for c in res["candidates"]
+           if c["origin"] == "declared"}
+    assert got[("hba1c", "metformin_180d", 6.5)] == "usable"
+    assert got[("egfr", "renal_referral_180d", 30.0)] == "usable"
+    reasons = {d["reason"] for d in res["data"]["dropped"]}
+    assert {"treated before", "window not observed"} <= reasons
+    assert sorted(p.name for p in (tmp_path / "o" / "input").glob("*.parquet")) == [
+        "dispensing.parquet", "enrolment.parquet", "lab_results.parquet"]
