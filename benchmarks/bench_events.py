@@ -24,21 +24,11 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
 from benchmarks.bench_data import DATA, child, machine, peak_rss_mb, publish  # noqa: E402
+from scanner.events.demo_long import DATA_TABLES, EVENTS_TABLE  # noqa: E402
 
 SCREEN = """\
 title = "events benchmark: registry-wide screen"
-[data]
-source = "lab_results.parquet"
-person = "person_id"
-date = "taken_on"
-periods = "enrolment.parquet"
-period_start = "enrolled_from"
-period_end = "enrolled_to"
-[events]
-source = "dispensing.parquet"
-date = "dispensed_on"
-code = "code"
-[screen]
+""" + DATA_TABLES + EVENTS_TABLE + """[screen]
 min_persons = 1000
 min_event_persons = 1000
 days = [0, 180]
@@ -48,22 +38,11 @@ columns = ["female"]
 
 PAIR = """\
 title = "events benchmark: one pair"
-[data]
-source = "lab_results.parquet"
-person = "person_id"
-date = "taken_on"
-periods = "enrolment.parquet"
-period_start = "enrolled_from"
-period_end = "enrolled_to"
-[[running]]
+""" + DATA_TABLES + """[[running]]
 name = "hba1c"
 column = "value"
 where = { test = "HBA1C" }
-[events]
-source = "dispensing.parquet"
-date = "dispensed_on"
-code = "code"
-[[events.uptake]]
+""" + EVENTS_TABLE + """[[events.uptake]]
 name = "metformin_180d"
 codes = ["NM-MTF"]
 days = [0, 180]

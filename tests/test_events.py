@@ -14,6 +14,7 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
+from scanner.events.demo_long import DATA_TABLES, EVENTS_TABLE
 from scanner.events.duck import Registry
 from scanner.events.layout import parse_layout
 from scanner.errors import ColumnNotFoundError, SpecError
@@ -326,18 +327,7 @@ def test_spark_sql_equals_duckdb(tmp_path):
 # ---------------------------------------------------------------- registry-wide screen
 SCREEN_SPEC = """\
 title = "screen"
-[data]
-source = "lab_results.parquet"
-person = "person_id"
-date = "taken_on"
-periods = "enrolment.parquet"
-period_start = "enrolled_from"
-period_end = "enrolled_to"
-[events]
-source = "dispensing.parquet"
-date = "dispensed_on"
-code = "code"
-[screen]
+""" + DATA_TABLES + EVENTS_TABLE + """[screen]
 min_persons = 2000
 min_event_persons = 500
 days = [0, 180]

@@ -101,8 +101,8 @@ def _dates(days):
     return START + np.asarray(days).astype("timedelta64[D]")
 
 
-SPEC = """\
-title = "Northmere lab results and dispensings (long format)"
+# The [data] and [events] tables of every spec over the files write_long() writes.
+DATA_TABLES = """\
 [data]
 source = "lab_results.parquet"
 person = "person_id"
@@ -110,7 +110,17 @@ date = "taken_on"
 periods = "enrolment.parquet"
 period_start = "enrolled_from"
 period_end = "enrolled_to"
+"""
+EVENTS_TABLE = """\
+[events]
+source = "dispensing.parquet"
+date = "dispensed_on"
+code = "code"
+"""
 
+SPEC = """\
+title = "Northmere lab results and dispensings (long format)"
+""" + DATA_TABLES.replace("{", "{{").replace("}", "}}") + """
 [[running]]
 name = "hba1c"
 column = "value"
@@ -130,11 +140,7 @@ name = "ldl"
 column = "value"
 where = {{ test = "LDL" }}
 
-[events]
-source = "dispensing.parquet"
-date = "dispensed_on"
-code = "code"
-
+""" + EVENTS_TABLE + """
 [[events.uptake]]
 name = "metformin_180d"
 codes = ["NM-MTF"]
