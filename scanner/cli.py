@@ -38,6 +38,8 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--force", action="store_true", help="replace an existing output folder")
     d.add_argument("--rows", type=int, default=200_000, help="rows to generate (default 200000)")
     d.add_argument("--seed", type=int, default=7, help="random seed of the generator")
+    d.add_argument("--long", action="store_true",
+                   help="the long-format version: lab results, dispensings and enrolment periods")
     d.add_argument("--quiet", action="store_true", help="no progress bars or table")
     d.add_argument("--min-cell", type=int, default=None, metavar="N",
                    help="suppress counts below N in every output (default 11)")
@@ -144,7 +146,11 @@ def _demo(args) -> int:
     check_out(out, args.force)
     tmp = Path(tempfile.mkdtemp(prefix="cutscan-demo-"))
     try:
-        spec = write_inputs(tmp / "input", n=args.rows, seed=args.seed)
+        if args.long:
+            from .events.demo_long import write_long
+            spec = write_long(tmp / "input", n_persons=max(args.rows // 4, 1000), seed=args.seed)
+        else:
+            spec = write_inputs(tmp / "input", n=args.rows, seed=args.seed)
         _run_scan(spec, out, args.force, args.min_cell, None, args.quiet)
         shutil.copytree(tmp / "input", out / "input")
     finally:

@@ -116,6 +116,17 @@ def open_for_scan(spec: ScanSpec, data=None):
     engine = spec.engine
     if data is not None and type(data).__module__.startswith("pyspark"):
         return data, "spark", notes
+    if spec.layout is not None and engine == "spark":
+        from .events import open_spark_registry
+        frame = open_spark_registry(spec, data)
+        return frame, "spark", notes
+    if spec.layout is not None:
+        from .events import open_registry
+        table = open_registry(spec, data)
+        _check_columns(table, spec)
+        out = cleaned(table, spec.codes(), roles(spec), spec.date, None)
+        out.registry = table.registry
+        return out, engine, notes
     if data is None:
         if not spec.source:
             raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
@@ -145,6 +156,10 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     ScanResult with candidates best first.
     """
     spec = _as_spec(spec_or_path)
+    screen = None
+    if spec.layout is not None and spec.layout.screen is not None:
+        from .events.screen import expand
+        spec, screen = expand(spec, data)
     table, engine, notes = open_for_scan(spec, data)
     coded = getattr(table, "coded", None) or {}     # filled as batches are read; kept past keep-first
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
@@ -189,6 +204,10 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                         cands.append(Candidate(r.column, t, c, "round"))
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
+    screen_p = []
+    if screen is not None:      # registry-wide screen: full evaluation only where stage 1 passes
+        from .events.screen import first_stage
+        cands, screen_p, screen["pairs"] = first_stage(cands, pooled, spec)
     for i, c in enumerate(cands):
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
         # Declared rules with an effective date: jumps before/after it from the period keys.
@@ -204,8 +223,17 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
     if spec.discover:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
-    rows = finalize(rows, spec.alpha, extra_p)
+    rows = finalize(rows, spec.alpha, list(extra_p) + screen_p)
+    if screen is not None:
+        search["screen"] = screen
     data_info = _data_info(binned, spec, deduped)
+    registry = getattr(table, "registry", None)
+    if registry is not None:
+        from .events import layout_dropped
+        data_info["dropped"] = layout_dropped(data_info["dropped"], spec, registry)
+        data_info["index_rows"] = [{"column": k, "rows": v}
+                                  for k, v in registry.index_rows().items()]
+        registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)

@@ -10,13 +10,14 @@ from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
 from .errors import SpecError, closest, parse_toml, read_text
+from .events.layout import DATA_KEYS, RUNNING_KEYS, parse_layout
 
 KNOWN = {
     "": {"title", "data", "running", "treatments", "covariates", "outcomes", "rules", "search",
-         "output"},
+         "output", "events", "screen"},
     "data": {"source", "date", "unit", "keep", "engine", "batch_rows", "missing",
-             "missing_by_column", "date_format"},
-    "running": {"column", "quantity", "unit", "bin_width", "treatments"},
+             "missing_by_column", "date_format"} | DATA_KEYS,
+    "running": {"column", "quantity", "unit", "bin_width", "treatments"} | RUNNING_KEYS,
     "treatments": {"columns"},
     "covariates": {"columns"},
     "outcomes": {"columns", "effects"},
@@ -69,6 +70,7 @@ class ScanSpec:
     missing: tuple = ()                 # codes meaning "missing" in every scanned column
     missing_by_column: dict = field(default_factory=dict)   # column -> extra missing codes
     date_format: str | None = None      # strptime format of data.date when it is ambiguous text
+    layout: object = None               # scanner.events.Layout for long-format registries
 
     def codes(self) -> dict:
         """Declared missing codes per scanned column (global codes plus the column's own)."""
@@ -205,13 +207,20 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
     runs = raw.get("running")
     if isinstance(runs, dict):
         runs = [runs]
-    if not runs:
+    layout = parse_layout(raw, where, _columns(raw.get("covariates"), "covariates", where)) \
+        if isinstance(raw.get("data", {}), dict) else None
+    if not runs and not (layout is not None and layout.screen is not None):
         raise _err(where, "no running variable: add a [[running]] table with column = \"...\".")
     running = []
-    for r in runs:
+    for r in runs or ():
         if not isinstance(r, dict):
             raise _err(where, "each [[running]] entry must be a table.")
         _check_keys(r, "running", where, text)
+        if layout is not None:
+            r = dict(r, column=layout.scores[len(running)].name)
+        elif set(r) & RUNNING_KEYS:
+            raise _err(where, f"running keys {sorted(set(r) & RUNNING_KEYS)} belong to the "
+                       "long-format layout; add an [events] table (or data.omop) or remove them.")
         if not isinstance(r.get("column"), str):
             raise _err(where, "each [[running]] needs column = \"<name>\".")
         bw = r.get("bin_width")
@@ -227,7 +236,9 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         running.append(RunningSpec(r["column"], r.get("quantity"), r.get("unit"),
                                    float(bw) if bw else None, tuple(tr) if tr else None))
     treatments = _columns(raw.get("treatments"), "treatments", where)
-    if not treatments:
+    if layout is not None:
+        treatments = layout.treatments + treatments
+    if not treatments and not (layout is not None and layout.screen is not None):
         raise _err(where, "no treatment: add [treatments] columns = [\"...\"] (0/1 uptake columns).")
     data = raw.get("data", {})
     search = raw.get("search", {})
@@ -236,6 +247,10 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
     keep = data.get("keep", "all")
     if keep not in ("all", "first"):
         raise _err(f"{where}:{_line_of(text, 'keep')}", f"keep = '{keep}' must be 'all' or 'first'.")
+    if layout is not None and (keep != "all" or data.get("unit")):
+        raise _err(where, "in the long-format layout each [[running]] picks its index rows "
+                   "(index = 'first' or 'each'); remove data.keep and data.unit (the person "
+                   "column is data.person).")
     if keep == "first" and not (data.get("unit") and data.get("date")):
         raise _err(where, "keep = 'first' needs both data.unit and data.date (earliest row per unit).")
     codes, by_col, date_format = _missing(data, where, text)
@@ -277,7 +292,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         outcomes=_columns(outcomes, "outcomes", where) if outcomes else (),
         effects=bool(outcomes.get("effects", False)) if isinstance(outcomes, dict) else False,
         title=str(raw.get("title", "cutscan scan")), source=data.get("source"),
-        date=data.get("date"), unit=data.get("unit"), keep=keep,
+        date=layout.date if layout else data.get("date"),
+        unit=layout.person if layout else data.get("unit"), keep=keep, layout=layout,
         engine=data.get("engine", "local"), batch_rows=int(data.get("batch_rows", 1_000_000)),
         catalogues=tuple(cats), round_numbers=bool(search.get("round_numbers", True)),
         discover=bool(search.get("discover", True)),

@@ -250,8 +250,9 @@ def fit_jumps(data: SideData, cutoff: float, bandwidth: float, kernel: str = "tr
     Hahn, Todd & van der Klaauw (2001); sandwich variance White (1980) with HC1 scaling.
     """
     d = data
-    S1 = d.s1.reshape(d.u.size, -1)
-    S2 = d.s2.reshape(d.u.size, -1)
+    k0 = d.s1.shape[1] if d.s1.ndim == 2 else 1     # explicit: a column with no rows has u.size 0
+    S1 = d.s1.reshape(d.u.size, k0)
+    S2 = d.s2.reshape(d.u.size, k0)
     h = float(bandwidth)
     w, L, Rm = _windows(d, h, kernel, degree, bandwidth_right)
     counts = _support(L, Rm, d)

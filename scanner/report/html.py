@@ -12,6 +12,7 @@ from pathlib import Path
 from ..score import format_p, format_p_eq
 from . import figures
 from .exports import cautions
+from .screen import screen_section
 
 esc = html.escape
 CARD_VERDICTS = ("usable", "caution", "doubtful")
@@ -284,6 +285,7 @@ def render(results: dict) -> str:
     parts += [f"<li>{esc(t)}</li>" for t in cautions(m)]
     parts.append("</ul></section>")
     parts += _overview(results)
+    parts += screen_section(results)
     parts += _ranking(results, max(top, 20))
     parts.append("<section id='candidates'><h2>Candidate cards</h2>")
     cards = [c for c in results["candidates"][:top] if c["verdict"] in CARD_VERDICTS][:MAX_CARDS]

@@ -1,0 +1,105 @@
+"""Long-format registry benchmark: measurements and events → a registry-wide screen.
+
+Data (invented, scanner.events.demo_long): 1M persons, about 10M measurements of 20 kinds and
+10M events of 50 codes, with enrolment periods; planted jumps for HbA1c → metformin, eGFR →
+renal referral, everything else noise.  Two timings, each in a fresh interpreter (own peak RSS),
+with DuckDB building the analysis rows:
+
+* the registry-wide screen (``[screen]``: 20 measurement kinds × 50 event codes = 1,000 pairs,
+  window 0–180 days, defaults otherwise: round numbers and discovery with the held-out half),
+  scan and results.json;
+* one pair (HbA1c × metformin within 180 days, 365-day look-back), scan and results.json.
+
+Usage: python benchmarks/bench_events.py [--persons 1000000]
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))
+
+from benchmarks.bench_data import DATA, child, machine, peak_rss_mb, publish  # noqa: E402
+from scanner.events.demo_long import DATA_TABLES, EVENTS_TABLE  # noqa: E402
+
+SCREEN = """\
+title = "events benchmark: registry-wide screen"
+""" + DATA_TABLES + EVENTS_TABLE + """[screen]
+min_persons = 1000
+min_event_persons = 1000
+days = [0, 180]
+[covariates]
+columns = ["female"]
+"""
+
+PAIR = """\
+title = "events benchmark: one pair"
+""" + DATA_TABLES + """[[running]]
+name = "hba1c"
+column = "value"
+where = { test = "HBA1C" }
+""" + EVENTS_TABLE + """[[events.uptake]]
+name = "metformin_180d"
+codes = ["NM-MTF"]
+days = [0, 180]
+prior_days = 365
+[covariates]
+columns = ["female"]
+"""
+
+
+def data(persons: int) -> Path:
+    from scanner.events.demo_long import write_long
+    folder = DATA / f"events_{persons}"
+    if not (folder / "_complete").exists():
+        write_long(folder, n_persons=persons, extra_tests=17, extra_codes=47, visits=1.0,
+                   noise_events=9 * persons + persons // 2)
+        (folder / "_complete").write_text("ok\n")
+    return folder
+
+
+def run_child(folder: str, which: str) -> None:
+    import scanner
+    spec = Path(folder) / f"bench_{which}.toml"
+    spec.write_text(SCREEN if which == "screen" else PAIR)
+    t0 = time.perf_counter()
+    res = scanner.scan(spec)
+    res.to_json(Path(folder) / f"bench_{which}.json")
+    wall = time.perf_counter() - t0
+    s = res.search.get("screen") or {}
+    print(json.dumps({"wall": wall, "peak_mb": peak_rss_mb(), "candidates": len(res.rows),
+                      "pairs": len(s.get("pairs", [])) or 1,
+                      "stage1": sum(p["tested"] for p in s.get("pairs", [])),
+                      "index_rows": sum(x["rows"] for x in res.data.get("index_rows", []))}))
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--persons", type=int, default=1_000_000)
+    ap.add_argument("--child", nargs=2)
+    a = ap.parse_args()
+    if a.child:
+        return run_child(*a.child)
+    folder = data(a.persons)
+    import pyarrow.parquet as pq
+    n_m = pq.ParquetFile(folder / "lab_results.parquet").metadata.num_rows
+    n_e = pq.ParquetFile(folder / "dispensing.parquet").metadata.num_rows
+    lines = [f"## Long-format registry ({a.persons:,} persons, {n_m:,} measurements, {n_e:,} events)",
+             "", f"Machine: {machine()}.", "",
+             "| run | pairs | stage-1 tests | index rows | candidates | wall (s) | peak memory (MB) |",
+             "|---|---:|---:|---:|---:|---:|---:|"]
+    for which in ("pair", "screen"):
+        r = child(Path(__file__), folder, which)
+        lines.append(f"| {which} | {r['pairs']:,} | {r['stage1']:,} | {r['index_rows']:,} | "
+                     f"{r['candidates']:,} | {r['wall']:.1f} | {r['peak_mb']:.0f} |")
+    lines += ["", "Command: `python benchmarks/bench_events.py --persons "
+              f"{a.persons}` (DuckDB builds the analysis rows; defaults on)."]
+    publish("events", lines)
+
+
+if __name__ == "__main__":
+    main()

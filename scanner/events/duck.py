@@ -1,0 +1,128 @@
+"""Running the analysis-row SQL in DuckDB (the embedded default for long-format registries).
+
+DuckDB reads the Parquet, CSV or DuckDB-file sources out of core, with a memory limit, and
+keeps the analysis rows in a temporary table; the scan then streams them in Arrow batches
+through the usual binning pass.  Drop counts are one aggregate query over the same table.
+"""
+from __future__ import annotations
+
+import tempfile
+from pathlib import Path
+
+from ..errors import InputError
+from .layout import Layout
+from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, scan_sql, view_sql
+
+MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
+
+
+def _relation(path: Path, what: str) -> str:
+    """A DuckDB table function reading ``path`` (Parquet file or folder, CSV)."""
+    if not path.exists():
+        raise InputError(f"{path}: {what} file not found. Check the spec (paths are relative "
+                         "to the spec file).")
+    p = str(path).replace("'", "''")
+    if path.is_dir():
+        if any(path.rglob("*.parquet")):
+            return f"read_parquet('{p}/**/*.parquet')"
+        if any(path.rglob("*.csv")):
+            return f"read_csv('{p}/**/*.csv', header = true)"
+        raise InputError(f"{path}: folder holds no .parquet or .csv files ({what}).")
+    suf = "".join(path.suffixes).lower()
+    if suf.endswith((".parquet", ".pq")):
+        return f"read_parquet('{p}')"
+    if suf.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
+        return f"read_csv('{p}', header = true)"
+    raise InputError(f"{path}: {what} must be a .parquet or .csv file (or a folder of them).")
+
+
+def _columns(con, rel: str) -> list[str]:
+    return [r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {rel}").fetchall()]
+
+
+def _require(con, rel: str, cols, name: str, keys: str) -> None:
+    from ..errors import ColumnNotFoundError
+    have = _columns(con, rel)
+    for c in cols:
+        if c not in have:
+            raise ColumnNotFoundError(c, have, name, keys)
+
+
+class Registry:
+    """A DuckDB connection holding one long-format registry's relations and analysis rows."""
+
+    def __init__(self, lay: Layout, base: Path, data: dict | None = None, build: bool = True):
+        import duckdb
+        self.lay = lay
+        self._tmp = tempfile.TemporaryDirectory(prefix="cutscan-duckdb-")
+        # A database file in a private temporary folder: the analysis rows may exceed memory,
+        # and every batch reader gets its own cursor on the same database.
+        self.con = duckdb.connect(str(Path(self._tmp.name) / "registry.duckdb"))
+        self.con.execute(f"SET memory_limit = '{MEMORY_LIMIT}'")
+        self.con.execute(f"SET temp_directory = '{self._tmp.name}'")
+        self.con.execute("SET preserve_insertion_order = false")
+        self.name = str(base)
+        if lay.omop:
+            from .omop import register_omop
+            register_omop(self.con, lay, base / lay.omop)
+            self.name = str(base / lay.omop)
+        else:
+            self._register_files(base, data or {})
+        self._q = DIALECTS["duckdb"].q
+        if build:
+            self.build()
+
+    def build(self) -> None:
+        """Create the analysis rows (a table in the private database)."""
+        self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb"))
+        self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
+            list(self.lay.treatments) + list(self.lay.covariates)
+        self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
+
+    def _register_files(self, base: Path, data: dict) -> None:
+        lay, con = self.lay, self.con
+        srcs = {"meas": lay.source, "events": lay.events_source, "periods": lay.periods}
+        rels = {}
+        for key, src in srcs.items():
+            if key in data:
+                con.register(f"_{key}_df", data[key])
+                rels[key] = f"_{key}_df"
+            elif src:
+                p = Path(src)
+                rels[key] = _relation(p if p.is_absolute() else base / p,
+                                      {"meas": "data.source", "events": "events.source",
+                                       "periods": "data.periods"}[key])
+        wanted = [lay.person, lay.date] + [s.column for s in lay.scores] + \
+            [k for s in lay.scores for k, _ in s.where] + list(lay.covariates) + \
+            ([lay.screen.test, lay.screen.value] if lay.screen else [])
+        _require(con, rels["meas"], dict.fromkeys(wanted), srcs["meas"] or "measurements",
+                 "long-format measurement")
+        _require(con, rels["events"], [lay.events_person, lay.events_date, lay.events_code],
+                 srcs["events"] or "events", "events")
+        if "periods" in rels:
+            _require(con, rels["periods"], [lay.person, lay.period_start, lay.period_end],
+                     srcs["periods"] or "periods", "observed-time")
+        for name, sel in view_sql(lay, "duckdb", rels).items():
+            con.execute(f"CREATE VIEW {name} AS {sel}")
+
+    def batches(self, cols, rows):
+        """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
+        reader = self.con.cursor().sql(scan_sql(self.lay, "duckdb", "analysis", cols)
+                                       ).to_arrow_reader(rows)
+        yield from reader
+
+    def dropped(self) -> list[dict]:
+        """Rows left out, per running variable (and uptake): ``data.dropped`` entries."""
+        return dropped_entries(self.lay, self.con.execute(dropped_sql(self.lay)).fetchall())
+
+    def index_rows(self) -> dict:
+        """Index rows per running variable (before observed-time drops)."""
+        res = self.con.execute("SELECT _score, count(*) FROM analysis GROUP BY _score").fetchall()
+        return {self.lay.scores[s].name: int(n) for s, n in sorted(res)}
+
+    def close(self) -> None:
+        self.con.close()
+        self._tmp.cleanup()
+
+
+__all__ = ["Registry", "literal"]

@@ -1,0 +1,299 @@
+"""The SQL that turns measurements and events into analysis rows, for DuckDB and Spark SQL.
+
+One query text serves both engines: dates become whole day numbers (days since 1970-01-01)
+once, and everything after that is integer arithmetic, joins, ``row_number()`` windows and
+``GROUP BY`` — SQL both dialects share.  Only identifier quoting and the day-number and
+string-type expressions differ (:data:`DIALECTS`).  The semantics are documented in
+:mod:`scanner.events.layout`.
+
+The query reads three relations the runner registers: ``meas`` (measurement rows), ``ev``
+(event rows) and, with observed time, ``obs`` (person, period start, period end).  Its result
+has one row per index row: the person, the index date, one column per running variable (the
+value on that variable's own index rows, NULL on the others), one 0/1/NULL column per uptake,
+the covariates, and ``_score`` (which running variable the row belongs to) and the flags the
+drop counts are computed from.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from .layout import Layout, Uptake
+
+
+@dataclass(frozen=True)
+class Dialect:
+    name: str
+    quote: str
+
+    def q(self, ident: str) -> str:
+        return f"{self.quote}{ident.replace(self.quote, self.quote * 2)}{self.quote}"
+
+    def day(self, expr: str) -> str:
+        """Whole days since 1970-01-01 of a date, timestamp or ISO-date text expression."""
+        if self.name == "spark":
+            return f"datediff(CAST({expr} AS DATE), DATE'1970-01-01')"
+        return f"(CAST(CAST({expr} AS DATE) AS DATE) - DATE '1970-01-01')"
+
+    def shl(self, value: str, bits: str) -> str:
+        if self.name == "spark":
+            return f"shiftleft(CAST({value} AS BIGINT), {bits})"
+        return f"(CAST({value} AS BIGINT) << {bits})"
+
+    def bit(self, mask: str, j: int) -> str:
+        """Bit ``j`` of a BIGINT mask, as 0/1."""
+        if self.name == "spark":
+            return f"(shiftright({mask}, {j}) & 1)"
+        return f"(({mask} >> {j}) & 1)"
+
+    def row_id(self) -> str:
+        """A unique row number, a join key only (output order comes from (running variable,
+        person, day), which identify an index row).  DuckDB numbers the rows in no particular
+        order inside a MATERIALIZED CTE, so every reference sees the same numbers; Spark inlines
+        CTEs, so there the number must be deterministic: an ordered row_number()."""
+        return ("row_number() OVER (ORDER BY _score, person, day)" if self.name == "spark"
+                else "row_number() OVER ()")
+
+    @property
+    def materialized(self) -> str:
+        return "" if self.name == "spark" else "MATERIALIZED "
+
+    def from_day(self, expr: str) -> str:
+        if self.name == "spark":
+            return f"date_add(DATE'1970-01-01', CAST({expr} AS INT))"
+        return f"(DATE '1970-01-01' + CAST({expr} AS INTEGER))"
+
+
+DIALECTS = {"duckdb": Dialect("duckdb", '"'), "spark": Dialect("spark", "`")}
+
+
+def literal(v) -> str:
+    if isinstance(v, str):
+        return "'" + v.replace("'", "''") + "'"
+    return repr(v)
+
+
+def code_map(lay: Layout) -> dict:
+    """``uc`` (uptake j, exact code) and ``ucp`` (uptake j, LIKE prefix) as portable SELECTs.
+
+    A trailing ``*`` in a code matches a prefix; ``%`` and ``_`` in codes are literal text.
+    """
+    exact, pref = [], []
+    for j, u in enumerate(lay.uptakes):
+        for c in u.codes:
+            if c.endswith("*"):
+                pref.append(f"SELECT {j} AS j, {literal(c[:-1].replace('%', '').replace('_', '') + '%')} AS prefix")
+            else:
+                exact.append(f"SELECT {j} AS j, {literal(c)} AS code")
+    none = "SELECT -1 AS j, '' AS {0} WHERE 1 = 0"
+    return {"uc": " UNION ALL ".join(exact) or none.format("code"),
+            "ucp": " UNION ALL ".join(pref) or none.format("prefix")}
+
+
+def _score_groups(lay: Layout) -> list[list[int]]:
+    """Running variables read by one query: same value column, one equality filter on the same
+    column, same index rule (a screen's measurement kinds share one pass over the rows)."""
+    groups: dict = {}
+    out = []
+    for i, s in enumerate(lay.scores):
+        if len(s.where) == 1:
+            groups.setdefault((s.column, s.where[0][0], s.index), []).append(i)
+        else:
+            out.append([i])
+    return list(groups.values()) + out
+
+
+def _score_rows(lay: Layout, ids: list, d: Dialect) -> str:
+    """Index rows of the running variables ``ids``: one per person (first) or per person-day
+    (each) and variable; several values on one day keep the lowest."""
+    s = lay.scores[ids[0]]
+    q = d.q
+    covs = "".join(f", {q(c)}" for c in lay.covariates)
+    cond = [f"{q(s.column)} IS NOT NULL", f"{q(lay.date)} IS NOT NULL", f"{q(lay.person)} IS NOT NULL"]
+    if len(ids) == 1:
+        cond += [f"{q(k)} = {literal(v)}" for k, v in s.where]
+        kind, join, score = "0", "", f"{ids[0]}"
+    else:
+        col = q(s.where[0][0])
+        vals = ", ".join(literal(lay.scores[i].where[0][1]) for i in ids)
+        cond.append(f"{col} IN ({vals})")
+        kind = f"CAST({col} AS STRING)"
+        smap = " UNION ALL ".join(f"SELECT {i} AS _score, CAST({literal(lay.scores[i].where[0][1])} "
+                                  f"AS STRING) AS kind" for i in ids)
+        join, score = f" JOIN ({smap}) sm ON sm.kind = r.kind", "sm._score"
+    part = "kind, person" if s.index == "first" else "kind, person, day"
+    order = "day, x" + "".join(f", {q(c)}" for c in lay.covariates)
+    return (f"SELECT {score} AS _score, person, day, x{covs} FROM ("
+            f"SELECT *, row_number() OVER (PARTITION BY {part} ORDER BY {order}) AS _k FROM ("
+            f"SELECT {kind} AS kind, CAST({q(lay.person)} AS STRING) AS person, "
+            f"{d.day(q(lay.date))} AS day, CAST({q(s.column)} AS DOUBLE) AS x{covs} FROM meas "
+            f"WHERE {' AND '.join(cond)}) m) r{join} WHERE _k = 1")
+
+
+def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
+    """The query building the analysis rows of a long-format layout.
+
+    Events reach the index rows through one range join: ``evj`` holds each (person, day,
+    uptake) once — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
+    (index row, uptake), gives each uptake's hit and look-back flags; they are folded into one
+    bit mask per 62 uptakes and index row.  One join for all uptakes, and masks rather than a
+    column per uptake in the aggregate, keep a screen of many event codes to one pass over the
+    events and a narrow aggregate.
+    """
+    d = DIALECTS[dialect]
+    q = d.q
+    ups = lay.uptakes
+    lo = min(u.first_day for u in ups)
+    hi = max(u.days[1] for u in ups)
+    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
+            f"idx AS {d.materialized}(SELECT *, {d.row_id()} AS _rid FROM idx0)",
+            "evj AS (SELECT DISTINCT person, day, j FROM ("
+            "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
+            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
+    # Hits per (index row, uptake), then one BIGINT bit mask per 62 uptakes and index row.
+    uw = " UNION ALL ".join(f"SELECT {j} AS j, {u.days[0]} AS a, {u.days[1]} AS b, "
+                            f"{u.prior_days or 0} AS k" for j, u in enumerate(ups))
+    ctes.append(f"hl AS (SELECT i._rid, e.j, "
+                f"max(CASE WHEN e.day BETWEEN i.day + w.a AND i.day + w.b THEN 1 ELSE 0 END) AS hit, "
+                f"max(CASE WHEN w.k > 0 AND e.day BETWEEN i.day - w.k AND i.day - 1 THEN 1 ELSE 0 END) "
+                f"AS prior FROM idx i JOIN evj e ON e.person = i.person "
+                f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) "
+                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j)")
+    masks = []
+    for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
+        sel = f"CASE WHEN j >= {g * MASK_BITS} AND j < {(g + 1) * MASK_BITS}"
+        masks.append(f"bit_or({sel} AND hit = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS h{g}")
+        masks.append(f"bit_or({sel} AND prior = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS p{g}")
+    ctes.append(f"hits AS (SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid)")
+    observed = lay.periods or lay.omop
+    if observed:
+        ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
+                    "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
+                    "GROUP BY i._rid)")
+    cols = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
+    for j, u in enumerate(ups):
+        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
+                if observed else "TRUE")
+        g, k = divmod(j, MASK_BITS)
+        prior = f"{d.bit(f'coalesce(h.p{g}, 0)', k)} = 1" if u.prior_days else "FALSE"
+        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN NOT {seen} THEN {UNSEEN} "
+                    f"ELSE {d.bit(f'coalesce(h.h{g}, 0)', k)} END AS TINYINT) AS _u{j}")
+    cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
+    cols += [f"i.{q(c)}" for c in lay.covariates]
+    joins = " LEFT JOIN hits h ON h._rid = i._rid"
+    if observed:
+        joins += " LEFT JOIN cov c ON c._rid = i._rid"
+    return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
+
+
+def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
+    """The analysis rows as the scan reads them, from the compact table of :func:`analysis_sql`.
+
+    The compact table holds one value column for all running variables (``_x`` with the
+    running variable's number in ``_score``) and one small status code per uptake (0/1, or
+    earlier use, or window not observed); here they become one column per running variable
+    (NULL on the other variables' rows) and 0/1/NULL uptakes, for the kept rows in a fixed order.
+    ``columns`` picks and orders the output columns (default: all).
+    """
+    q = DIALECTS[dialect].q
+    expr = {lay.person: "_person", lay.date: DIALECTS[dialect].from_day("_day")}
+    expr.update({s.name: f"CASE WHEN _score = {k} THEN _x END" for k, s in enumerate(lay.scores)})
+    expr.update({u.name: f"CASE WHEN _u{j} < 2 THEN CAST(_u{j} AS DOUBLE) END"
+                 for j, u in enumerate(lay.uptakes)})
+    expr.update({c: q(c) for c in lay.covariates})
+    cols = ", ".join(f"{expr[c]} AS {q(c)}" for c in (columns or expr))
+    return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _score, _person, _day"
+
+
+PRIOR, UNSEEN = 2, 3        # uptake status codes besides 0/1
+MASK_BITS = 62              # uptakes per BIGINT bit mask (sign bit and one spare left alone)
+
+
+# ------------------------------------------------------------------ source views
+def view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
+    """SELECTs for the relations ``meas``, ``ev`` and (with periods) ``obs`` of a long layout.
+
+    ``rels`` maps "meas", "events" and optionally "periods" to relation expressions of the
+    engine (a table function or a registered view).
+    """
+    d = DIALECTS[dialect]
+    q = d.q
+    out = {"meas": f"SELECT * FROM {rels['meas']}",
+           "ev": (f"SELECT CAST({q(lay.events_person)} AS STRING) AS person, "
+                  f"{d.day(q(lay.events_date))} AS day, CAST({q(lay.events_code)} AS STRING) AS code "
+                  f"FROM {rels['events']} WHERE {q(lay.events_date)} IS NOT NULL")}
+    out.update(code_map(lay))
+    if "periods" in rels:
+        out["obs"] = (f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
+                      f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
+                      f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
+                      f"AND {q(lay.period_end)} IS NOT NULL")
+    return out
+
+
+FEMALE_CONCEPT = 8532      # OMOP gender concept "FEMALE" (from memory: OMOP standard vocabulary)
+OMOP_TABLES = ("person", "measurement", "drug_exposure", "procedure_occurrence", "observation_period")
+
+
+def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
+    """Views (with the uptake code map) for OMOP CDM v5.4 tables (``rels``: table → relation).
+
+    * ``meas``: ``measurement`` rows with ``age`` (years at the measurement date, birth taken
+      as the 1st of ``month_of_birth``, July when it is missing) and ``female``
+      (``gender_concept_id`` = 8532; NULL when the gender concept is 0 or missing).
+    * ``ev``: ``drug_exposure`` (start date, ``drug_concept_id``) and ``procedure_occurrence``
+      (``procedure_date``, ``procedure_concept_id``) rows.
+    * ``obs``: ``observation_period``.
+    An uptake's concepts match themselves and, when ``concept_ancestor`` is present, every
+    descendant concept.
+    """
+    d = DIALECTS[dialect]
+    birth = "make_date(CAST(p.year_of_birth AS INT), CAST(coalesce(p.month_of_birth, 7) AS INT), 1)"
+    meas = (f"SELECT m.person_id, m.measurement_date, m.measurement_concept_id, "
+            f"CAST(m.value_as_number AS DOUBLE) AS value_as_number, "
+            f"({d.day('m.measurement_date')} - {d.day(birth)}) / 365.25 AS age, "
+            f"CASE WHEN p.gender_concept_id = {FEMALE_CONCEPT} THEN 1 "
+            f"WHEN p.gender_concept_id IS NULL OR p.gender_concept_id = 0 THEN NULL ELSE 0 END AS female "
+            f"FROM {rels['measurement']} m LEFT JOIN {rels['person']} p ON p.person_id = m.person_id")
+    ev = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('drug_exposure_start_date')} AS day, "
+          f"CAST(drug_concept_id AS STRING) AS code FROM {rels['drug_exposure']} "
+          f"WHERE drug_exposure_start_date IS NOT NULL")
+    if "procedure_occurrence" in rels:
+        ev += (f" UNION ALL SELECT CAST(person_id AS STRING) AS person, {d.day('procedure_date')} AS day, "
+               f"CAST(procedure_concept_id AS STRING) AS code FROM {rels['procedure_occurrence']} "
+               f"WHERE procedure_date IS NOT NULL")
+    obs = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} AS start_day, "
+           f"{d.day('observation_period_end_date')} AS end_day FROM {rels['observation_period']}")
+    own = " UNION ALL ".join(f"SELECT {j} AS j, {int(c)} AS concept"
+                             for j, u in enumerate(lay.uptakes) for c in u.concepts)
+    uc = f"SELECT j, CAST(concept AS STRING) AS code FROM ({own}) o"
+    if "concept_ancestor" in rels:
+        uc = (f"SELECT DISTINCT j, code FROM ({uc} UNION ALL SELECT o.j, "
+              f"CAST(a.descendant_concept_id AS STRING) AS code FROM ({own}) o "
+              f"JOIN {rels['concept_ancestor']} a ON a.ancestor_concept_id = o.concept) z")
+    return {"meas": meas, "ev": ev, "obs": obs, "uc": uc, "ucp": code_map(lay)["ucp"]}
+
+
+
+def dropped_sql(lay: Layout, table: str = "analysis") -> str:
+    """One aggregate over the analysis rows: per running variable, the rows dropped whole and,
+    per uptake, those with earlier use and those whose window was not observed."""
+    parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
+    for j in range(len(lay.uptakes)):
+        parts += [f"sum(CASE WHEN _noobs = 0 AND _u{j} = {PRIOR} THEN 1 ELSE 0 END) AS p{j}",
+                  f"sum(CASE WHEN _noobs = 0 AND _u{j} = {UNSEEN} THEN 1 ELSE 0 END) AS w{j}"]
+    return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score"
+
+
+def dropped_entries(lay: Layout, rows) -> list[dict]:
+    """``data.dropped`` entries from the rows of :func:`dropped_sql`."""
+    out = []
+    for r in rows:
+        name = lay.scores[int(r[0])].name
+        if r[2]:
+            out.append({"column": name, "treatment": None, "reason": "window not observed",
+                        "rows": int(r[2])})
+        for j, u in enumerate(lay.uptakes):
+            for k, reason in ((3 + 2 * j, "treated before"), (4 + 2 * j, "window not observed")):
+                if r[k]:
+                    out.append({"column": name, "treatment": u.name, "reason": reason, "rows": int(r[k])})
+    return out

@@ -1,0 +1,383 @@
+"""Long-format registries: analysis rows built in DuckDB equal a plain pandas construction.
+
+The reference below is written from the documented semantics (scanner/events/layout.py) with
+pandas merges only, independently of the SQL: index row = earliest measurement per person
+(lowest value on a tie day) or every measurement day; uptake = an event of the codes on days
+index + a .. index + b inclusive; ``prior_days`` look-back sets the uptake missing; with observed
+periods, an uptake whose days are not covered is missing and an index day outside every period
+drops the row.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pytest
+
+from scanner.events.demo_long import DATA_TABLES, EVENTS_TABLE
+from scanner.events.duck import Registry
+from scanner.events.layout import parse_layout
+from scanner.errors import ColumnNotFoundError, SpecError
+
+from .conftest import run_cli
+
+DAY0 = pd.Timestamp("2016-01-01")
+
+
+def registry(seed=3, n=400):
+    rng = np.random.default_rng(seed)
+    k = rng.integers(1, 5, n)
+    pid = np.repeat(np.arange(n), k)
+    day = rng.integers(0, 900, pid.size)
+    day[rng.random(pid.size) < 0.15] = day[0]           # same-day repeats exist
+    meas = pd.DataFrame({
+        "pid": pid.astype(str), "on": DAY0 + pd.to_timedelta(day, "D"),
+        "test": rng.choice(["HBA1C", "LDL"], pid.size, p=[0.7, 0.3]),
+        "value": np.round(rng.normal(6.4, 0.7, pid.size), 1), "female": pid % 2})
+    ne = 3 * n
+    ev = pd.DataFrame({"pid": rng.integers(0, n, ne).astype(str),
+                       "when": DAY0 + pd.to_timedelta(rng.integers(-400, 1200, ne), "D"),
+                       "code": rng.choice(["MTF", "MTF2", "A10BA02", "X1"], ne)})
+    start = rng.integers(-500, 400, n)
+    periods = pd.DataFrame({"pid": np.arange(n).astype(str),
+                            "start": DAY0 + pd.to_timedelta(start, "D"),
+                            "end": DAY0 + pd.to_timedelta(start + rng.integers(100, 1500, n), "D")})
+    return meas, ev, periods
+
+
+SPEC = {"data": {"source": "m.parquet", "person": "pid", "date": "on"},
+        "running": [{"name": "hba1c", "column": "value", "where": {"test": "HBA1C"}}],
+        "events": {"source": "e.parquet", "date": "when", "code": "code",
+                   "uptake": [{"name": "mtf", "codes": ["MTF", "A10B*"], "days": [0, 180],
+                               "prior_days": 90},
+                              {"name": "any_late", "codes": ["X1"], "days": [30, 365]}]}}
+
+
+def reference(meas, ev, periods, index="first", observed=True):
+    m = meas[meas.test == "HBA1C"].copy()
+    m["day"] = (m.on - pd.Timestamp("1970-01-01")).dt.days
+    m = m.sort_values(["pid", "day", "value", "female"])
+    key = ["pid"] if index == "first" else ["pid", "day"]
+    idx = m.drop_duplicates(key, keep="first")[["pid", "day", "value", "female"]].reset_index(drop=True)
+    e = ev.copy()
+    e["eday"] = (e.when - pd.Timestamp("1970-01-01")).dt.days
+    p = periods.copy()
+    p["s"] = (p.start - pd.Timestamp("1970-01-01")).dt.days
+    p["t"] = (p.end - pd.Timestamp("1970-01-01")).dt.days
+    cover = idx.reset_index().merge(p, on="pid")
+    cover = cover[(cover.day >= cover.s) & (cover.day <= cover.t)].groupby("index").agg(s=("s", "min"), t=("t", "max"))
+    idx = idx.join(cover)
+    out = {}
+    for name, is_code, (a, b), prior in (("mtf", lambda c: c.isin(["MTF"]) | c.str.startswith("A10B"), (0, 180), 90),
+                                         ("any_late", lambda c: c == "X1", (30, 365), None)):
+        ee = e[is_code(e.code)]
+        j = idx.reset_index().merge(ee, on="pid")
+        rel = j.eday - j.day
+        hit = j[(rel >= a) & (rel <= b)]["index"].unique()
+        pri = j[(rel >= -(prior or 0)) & (rel <= -1)]["index"].unique() if prior else []
+        col = pd.Series(0.0, index=idx.index)
+        col[hit] = 1.0
+        first = -prior if prior else min(a, 0)
+        if observed:
+            seen = (idx.s <= idx.day + first) & (idx.t >= idx.day + b)
+            col[~seen.fillna(False).astype(bool)] = np.nan
+        col[pri] = np.nan
+        out[name] = col
+        out["prior_" + name] = pd.Series(idx.index.isin(pri), index=idx.index)
+    res = idx.assign(**{k: v for k, v in out.items() if not k.startswith("prior_")})
+    if observed:
+        res = res[res.s.notna()]
+    return res, out
+
+
+def build(meas, ev, periods, index="first", observed=True):
+    raw = {**SPEC, "running": [dict(SPEC["running"][0], index=index)]}
+    if observed:
+        raw = {**raw, "data": {**raw["data"], "periods": "p.parquet", "period_start": "start",
+                               "period_end": "end"}}
+    lay = parse_layout(raw, "<test>", ("female",))
+    data = {"meas": meas, "events": ev}
+    if observed:
+        data["periods"] = periods
+    reg = Registry(lay, __import__("pathlib").Path("."), data)
+    got = pa.Table.from_batches(list(reg.batches(reg.columns, 1000))).to_pandas()
+    return reg, got
+
+
+@pytest.mark.parametrize("index", ["first", "each"])
+@pytest.mark.parametrize("observed", [True, False])
+def test_index_rows_and_windows_equal_pandas(index, observed):
+    meas, ev, periods = registry()
+    want, parts = reference(meas, ev, periods, index, observed)
+    want_index = want.index
+    reg, got = build(meas, ev, periods, index, observed)
+    try:
+        got = got.sort_values(["pid", "on"]).reset_index(drop=True)
+        want = want.sort_values(["pid", "day"]).reset_index(drop=True)
+        assert len(got) == len(want) and len(got) > 100
+        assert (got.pid.to_numpy() == want.pid.to_numpy()).all()
+        days = (pd.to_datetime(got.on) - pd.Timestamp("1970-01-01")).dt.days.to_numpy()
+        np.testing.assert_array_equal(days, want.day.to_numpy())
+        np.testing.assert_array_equal(got.hba1c.to_numpy(), want.value.to_numpy())
+        np.testing.assert_array_equal(got.female.to_numpy(), want.female.to_numpy())
+        for u in ("mtf", "any_late"):
+            np.testing.assert_array_equal(got[u].to_numpy(dtype=float), want[u].to_numpy(dtype=float))
+        # Every kind of drop happens in this design, so the counts below are not vacuous.
+        dropped = {(d["treatment"], d["reason"]): d["rows"] for d in reg.dropped()}
+        prior = int(parts["prior_mtf"][want_index].sum())
+        assert prior > 0
+        if observed:
+            n_all = len(reference(meas, ev, periods, index, False)[0])
+            assert dropped[(None, "window not observed")] == n_all - len(want) > 0
+            assert dropped[("mtf", "treated before")] == prior
+            assert dropped[("mtf", "window not observed")] == int(want.mtf.isna().sum()) - prior > 0
+            assert dropped[("any_late", "window not observed")] == int(want.any_late.isna().sum()) > 0
+        else:
+            assert dropped == {("mtf", "treated before"): int(want.mtf.isna().sum())}
+    finally:
+        reg.close()
+
+
+def test_window_ends_inclusive_and_day_zero():
+    """Hand-made: events on day 0, day 180 and day 181; a prior event on day −1."""
+    meas = pd.DataFrame({"pid": ["a", "b", "c", "d"], "on": [DAY0] * 4, "test": "HBA1C",
+                         "value": [6.0, 6.5, 7.0, 7.5], "female": 0})
+    ev = pd.DataFrame({"pid": ["a", "b", "c", "d"],
+                       "when": DAY0 + pd.to_timedelta([0, 180, 181, -1], "D"), "code": "MTF"})
+    raw = {**SPEC, "events": {**SPEC["events"], "uptake": [SPEC["events"]["uptake"][0]]}}
+    reg = Registry(parse_layout(raw, "<t>", ("female",)), __import__("pathlib").Path("."),
+                   {"meas": meas, "events": ev})
+    try:
+        got = pa.Table.from_batches(list(reg.batches(["pid", "mtf"], 10))).to_pandas()
+        mtf = got.set_index("pid").mtf.to_dict()
+        assert mtf["a"] == 1.0 and mtf["b"] == 1.0 and mtf["c"] == 0.0 and np.isnan(mtf["d"])
+    finally:
+        reg.close()
+
+
+def test_spec_errors_name_the_key():
+    bad = {**SPEC, "events": {**SPEC["events"], "uptake": [{"name": "x", "codes": ["A"], "days": [10, 0]}]}}
+    with pytest.raises(SpecError, match=r"days = \[10, 0\] must be \[first, last\]"):
+        parse_layout(bad, "s.toml", ())
+    bad = {**SPEC, "events": {**SPEC["events"], "uptake": [{"name": "x", "code": ["A"]}]}}
+    with pytest.raises(SpecError, match="unknown key .*'code'.*Did you mean 'codes'|unknown key .*'code'"):
+        parse_layout(bad, "s.toml", ())
+
+
+def test_missing_column_is_named(tmp_path):
+    meas, ev, periods = registry(n=20)
+    lay = parse_layout({**SPEC, "data": {**SPEC["data"], "person": "patient"}}, "<t>", ())
+    with pytest.raises(ColumnNotFoundError, match="patient"):
+        Registry(lay, tmp_path, {"meas": meas, "events": ev})
+
+
+def test_scan_end_to_end_finds_planted_jump(tmp_path):
+    """A planted uptake jump of 0.5 at HbA1c 6.5 % in the long layout is found and usable."""
+    rng = np.random.default_rng(7)
+    n = 6000
+    meas = pd.DataFrame({"pid": np.arange(n).astype(str),
+                         "on": DAY0 + pd.to_timedelta(rng.integers(0, 700, n), "D"), "test": "HBA1C",
+                         "value": np.round(rng.normal(6.4, 0.5, n), 1), "female": rng.integers(0, 2, n)})
+    p = np.where(meas.value >= 6.5, 0.6, 0.1)
+    took = rng.random(n) < p
+    ev = pd.DataFrame({"pid": meas.pid[took], "when": meas.on[took] + pd.to_timedelta(
+        rng.integers(0, 170, took.sum()), "D"), "code": "MTF"})
+    meas.to_parquet(tmp_path / "m.parquet")
+    ev.to_parquet(tmp_path / "e.parquet")
+    (tmp_path / "spec.toml").write_text(
+        'title = "long"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n'
+        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n'
+        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
+        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n'
+        '[search]\ndiscover = false\n')
+    out = run_cli("scan", tmp_path / "spec.toml", "--out", tmp_path / "out")
+    assert out.returncode == 0, out.stderr
+    import json
+    res = json.loads((tmp_path / "out" / "results.json").read_text())
+    top = [c for c in res["candidates"] if c["cutoff"] == 6.5][0]
+    assert top["verdict"] == "usable" and abs(top["jump"] - 0.5) < 0.1
+    assert res["data"]["index_rows"] == [{"column": "hba1c", "rows": n}]
+
+
+# ---------------------------------------------------------------- demo registry, OMOP layout
+OMOP_SPEC = """\
+title = "omop"
+[data]
+omop = "omop"
+[[running]]
+name = "hba1c"
+concept = 3004410
+quantity = "hba1c"
+unit = "%"
+[[running]]
+name = "egfr"
+concept = 3049187
+[[events.uptake]]
+name = "metformin_180d"
+concepts = [{mtf}]
+days = [0, 180]
+prior_days = 365
+[[events.uptake]]
+name = "renal_referral_180d"
+concepts = [2000000101]
+days = [0, 180]
+[covariates]
+columns = ["age", "female"]
+[search]
+discover = false
+"""
+
+
+@pytest.fixture(scope="module")
+def long_demo(tmp_path_factory):
+    from scanner.events.demo_long import write_long, write_omop
+    folder = tmp_path_factory.mktemp("long")
+    spec = write_long(folder, n_persons=20_000, discover=False)
+    write_omop(folder / "omop", n_persons=20_000)
+    return folder, spec
+
+
+def _at(result, running, treatment, cutoff):
+    rows = [r for r in result.rows if r["running"] == running and r["treatment"] == treatment
+            and abs(r["cutoff"] - cutoff) < 1e-9]
+    assert rows, f"no candidate {running} × {treatment} at {cutoff}"
+    return rows[0]
+
+
+def test_planted_jumps_found_in_long_and_omop_layouts(long_demo):
+    """Planted (scanner/events/demo_long.py): metformin 0.10 → 0.50 at HbA1c ≥ 6.5; renal
+    referral 0.75 → 0.05 crossing eGFR 30 upwards.  Both layouts hold the same registry, so the
+    index rows and the jumps agree to rounding."""
+    import scanner
+    folder, spec = long_demo
+    long = scanner.scan(spec)
+    (folder / "omop_spec.toml").write_text(OMOP_SPEC.format(mtf=1503297))
+    omop = scanner.scan(folder / "omop_spec.toml")
+    for res in (long, omop):
+        m = _at(res, "hba1c", "metformin_180d", 6.5)
+        r = _at(res, "egfr", "renal_referral_180d", 30)
+        assert m["verdict"] == "usable" and abs(m["jump"] - 0.40) < 0.08, m["jump"]
+        assert r["verdict"] == "usable" and abs(r["jump"] + 0.70) < 0.08, r["jump"]
+        assert not any(x["verdict"] == "usable" for x in res.rows
+                       if (x["running"], x["treatment"]) in {("hba1c", "renal_referral_180d"),
+                                                             ("egfr", "metformin_180d")})
+    for run, tr, c in (("hba1c", "metformin_180d", 6.5), ("egfr", "renal_referral_180d", 30)):
+        a, b = _at(long, run, tr, c), _at(omop, run, tr, c)
+        assert a["n_left"] == b["n_left"] and a["n_right"] == b["n_right"]
+        np.testing.assert_allclose(a["jump"], b["jump"], rtol=0, atol=1e-9)
+    assert long.data["index_rows"][:2] == omop.data["index_rows"]
+    drops = {(d["column"], d["treatment"], d["reason"]): d["rows"] for d in omop.data["dropped"]}
+    assert drops[("hba1c", "metformin_180d", "treated before")] > 0
+
+
+def test_omop_concept_descendants_count(long_demo):
+    """An uptake of a parent concept counts its descendants through concept_ancestor."""
+    import scanner
+    folder, _ = long_demo
+    (folder / "omop_parent.toml").write_text(OMOP_SPEC.format(mtf=2000009000))
+    (folder / "omop_child.toml").write_text(OMOP_SPEC.format(mtf=1503297))
+    a, b = scanner.scan(folder / "omop_parent.toml"), scanner.scan(folder / "omop_child.toml")
+    ja, jb = _at(a, "hba1c", "metformin_180d", 6.5), _at(b, "hba1c", "metformin_180d", 6.5)
+    assert ja["jump"] == jb["jump"] and ja["n_right"] == jb["n_right"]
+    (folder / "omop_none.toml").write_text(OMOP_SPEC.format(mtf=2000009999))
+    c = scanner.scan(folder / "omop_none.toml")
+    assert _at(c, "hba1c", "metformin_180d", 6.5)["verdict"] != "usable"
+
+
+# ---------------------------------------------------------------- Spark SQL gives the same rows
+from .test_spark import needs_spark  # noqa: E402
+
+
+@needs_spark
+@pytest.mark.spark
+def test_spark_sql_equals_duckdb(tmp_path):
+    """The same query text as Spark SQL: identical analysis rows, drop counts and BinnedStats
+    (1e-9) on the same registry, with observed periods and a look-back."""
+    from scanner.engines import BinPlan, bin_table
+    from scanner.engines.spark import local_session
+    from scanner.events.spark_sql import SparkRegistry
+    from scanner.io import open_table
+    meas, ev, periods = registry(seed=5, n=300)
+    raw = {**SPEC, "data": {**SPEC["data"], "periods": "p.parquet", "period_start": "start",
+                            "period_end": "end"}}
+    lay = parse_layout(raw, "<t>", ("female",))
+    for df, name in ((meas, "m"), (ev, "e"), (periods, "p")):
+        df.to_parquet(tmp_path / f"{name}.parquet")
+    duck = Registry(lay, tmp_path)
+    spark = local_session("local[2]")
+    try:
+        sp = SparkRegistry(spark, lay, tmp_path)
+        cols = ["pid", "on", "hba1c", "mtf", "any_late", "female"]
+        a = pa.Table.from_batches(list(duck.batches(cols, 10_000))).to_pandas()
+        b = sp.frame.select(*cols).toPandas()
+        pd.testing.assert_frame_equal(a.reset_index(drop=True), b.reset_index(drop=True),
+                                      check_dtype=False)
+        assert duck.dropped() == sp.dropped() and duck.index_rows() == sp.index_rows()
+        plan = BinPlan(running=("hba1c",), columns=("mtf", "any_late", "female"),
+                       treatments=("mtf", "any_late"), date="on")
+        s1 = bin_table(open_table(pa.Table.from_batches(list(duck.batches(cols, 10_000)))), plan).stats["hba1c"]
+        s2 = bin_table(sp.frame, plan, engine="spark").stats["hba1c"]
+        from .test_engines import assert_same_stats
+        assert_same_stats(s1, s2)
+        sp.close()
+    finally:
+        duck.close()
+
+
+# ---------------------------------------------------------------- registry-wide screen
+SCREEN_SPEC = """\
+title = "screen"
+""" + DATA_TABLES + EVENTS_TABLE + """[screen]
+min_persons = 2000
+min_event_persons = 500
+days = [0, 180]
+[search]
+discover = false
+"""
+
+
+def test_screen_pairs_every_measurement_with_every_code(tmp_path):
+    """Planted pairs (scanner/events/demo_long.py) survive stage 1 and are usable; noise pairs
+    are not; the q-value family counts every stage-1 test of every pair."""
+    import json
+    import scanner
+    from scanner.events.demo_long import write_long
+    write_long(tmp_path, n_persons=20_000, extra_tests=2, extra_codes=3)
+    (tmp_path / "screen.toml").write_text(SCREEN_SPEC)
+    res = scanner.scan(tmp_path / "screen.toml")
+    s = res.search["screen"]
+    kinds = {k["kind"] for k in s["measurement_kinds"]}
+    codes = {c["code"] for c in s["event_codes"]}
+    assert kinds == {"HBA1C", "EGFR", "LDL", "LAB000", "LAB001"}
+    assert {"NM-MTF", "NM-RENAL", "RX000"} <= codes
+    assert len(s["pairs"]) == len(kinds) * len(codes)
+    tested = sum(p["tested"] for p in s["pairs"])
+    assert tested > 10 * len(s["pairs"])
+    assert res.rows[0]["n_tested"] <= tested and res.rows[0]["n_tested"] >= tested - 50
+    assert _at(res, "HBA1C", "NM-MTF", 6.5)["verdict"] in ("usable", "caution", "doubtful")
+    assert _at(res, "EGFR", "NM-RENAL", 30)["verdict"] in ("usable", "caution")
+    planted = {("HBA1C", "NM-MTF"), ("EGFR", "NM-RENAL")}
+    assert not [r for r in res.rows if (r["running"], r["treatment"]) not in planted
+                and r["verdict"] == "usable"]
+    res.to_json(tmp_path / "r.json")
+    res.report(tmp_path / "r.html")
+    page = (tmp_path / "r.html").read_text()
+    assert "Screen by measurement" in page and "NM-RENAL at 30" in page
+    assert json.loads((tmp_path / "r.json").read_text())["search"]["screen"]["pairs"]
+
+
+def test_cli_long_demo(tmp_path):
+    """`cutscan demo --long`: the planted declared rules come out usable, the written input
+    holds the three long-format tables, and counts of dropped rows are reported."""
+    import json
+    out = run_cli("demo", "--long", "--out", tmp_path / "o", "--quiet")
+    assert out.returncode == 0, out.stderr
+    res = json.loads((tmp_path / "o" / "results.json").read_text())
+    got = {(c["running"], c["treatment"], c["cutoff"]): c["verdict"] for c in res["candidates"]
+           if c["origin"] == "declared"}
+    assert got[("hba1c", "metformin_180d", 6.5)] == "usable"
+    assert got[("egfr", "renal_referral_180d", 30.0)] == "usable"
+    reasons = {d["reason"] for d in res["data"]["dropped"]}
+    assert {"treated before", "window not observed"} <= reasons
+    assert sorted(p.name for p in (tmp_path / "o" / "input").glob("*.parquet")) == [
+        "dispensing.parquet", "enrolment.parquet", "lab_results.parquet"]
