@@ -21,8 +21,9 @@ from .errors import InputError
 from .estimate import fit_jump, side_data
 from .estimate.inference import inference_fields
 from .estimate.select import select_bandwidth
-from .guards import (add_cleaning_info, checked_rules, evaluate_contained, explain_nan,
-                     keep_first, roles, text_columns, unit_repeats)
+from .guards import (add_cleaning_info, checked_rules, cleaning_for, evaluate_contained,
+                     explain_nan, keep_first, roles, text_columns, unit_repeats)
+from . import quality
 from .io import cleaned, open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
@@ -41,6 +42,7 @@ class ScanResult:
     notes: list = field(default_factory=list)
     created: str = ""
     search: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)     # {"kind", "column", "message"}, in order found
 
     @property
     def candidates(self):
@@ -100,6 +102,11 @@ def _check_columns(table, spec: ScanSpec) -> None:
         table.require(spec.unit, "unit")
     for c in spec.missing_by_column:
         table.require(c, "data.missing_by_column")
+    for c in spec.value_map:
+        table.require(c, "data.value_map")
+    for r in spec.running:
+        if r.unit_column:
+            table.require(r.unit_column, "unit_column")
     for r in spec.running:
         for t in r.treatments or ():
             if t not in spec.treatments:
@@ -111,6 +118,8 @@ def open_for_scan(spec: ScanSpec, data=None):
     """Open the table a spec names (or ``data``), check its columns and wrap it for cleaning.
 
     Returns ``(table, engine, notes)``; a Spark DataFrame passes through to the Spark engine.
+    The cleaned table carries ``quality``: the warnings found so far and the profile's findings
+    (see :mod:`scanner.quality`), completed with exact counts after the pass.
     """
     notes = []
     engine = spec.engine
@@ -124,10 +133,11 @@ def open_for_scan(spec: ScanSpec, data=None):
     else:
         table = open_table(data)
     _check_columns(table, spec)
-    warn = unit_repeats(table, spec)
-    if warn:
-        notes.append(warn)
-    return cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format), engine, notes
+    repeated = unit_repeats(table, spec)
+    cleaning, sources = cleaning_for(table, spec)
+    out = cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format, cleaning)
+    out.quality = {"repeated": repeated, "sources": sources, "found": quality.plan(out, spec)}
+    return out, engine, notes
 
 
 def scan(spec_or_path, data=None, progress=None) -> ScanResult:
@@ -164,6 +174,8 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if spec.keep == "first" and engine == "spark":
         raise InputError(f"{spec.path or '<spec>'}: keep = 'first' is not available with the Spark "
                          "engine; deduplicate the DataFrame first (e.g. a window over data.unit).")
+    cleaning = getattr(table, "cleaning", None)
+    checks = getattr(table, "quality", None)
     if spec.keep == "first" and engine == "local":
         table, deduped, no_unit = keep_first(table, spec, plan.needed)
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
@@ -205,22 +217,51 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if spec.discover:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
     rows = finalize(rows, spec.alpha, extra_p)
-    data_info = _data_info(binned, spec, deduped)
+    data_info = _data_info(binned, spec, deduped, getattr(table, "blanked", {}), cleaning)
     add_cleaning_info(data_info, coded, spec, no_unit)
+    warnings = collect_warnings(spec, checks, cleaning, binned.stats, rules)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
-                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)
+                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search,
+                      warnings)
 
 
-def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:
+def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> list[dict]:
+    """Every data-quality warning of the scan, in the order found (scanner.quality)."""
+    from .candidates import rule_cutoff
+    out = []
+    if cleaning is not None and checks is not None:
+        out += quality.parse_warnings(cleaning, spec, checks["sources"])
+        out += quality.findings_to_warnings(checks["found"], cleaning, stats, spec)
+        out += checks["repeated"]
+    out += quality.rule_warnings(spec, rules, stats, rule_cutoff)
+    out += quality.no_variation(spec, stats)
+    return out
+
+
+def _data_info(binned, spec: ScanSpec, deduped: int, blanked=None, cleaning=None) -> dict:
+    blanked = blanked or {}
     dropped = []
     if deduped:
         dropped.append({"column": spec.unit, "treatment": None,
                         "reason": "repeat rows of a unit (keep = first)", "rows": deduped})
     for r in spec.running:
         col = r.column
-        if binned.missing[col]:
+        # Values a cleaning step set missing are counted under their own reason, not twice.
+        own = []
+        if blanked.get(col):
+            own.append(("not the unit's first value (keep = first)", blanked[col]))
+        if cleaning is not None and spec.keep != "first":
+            hits = sum(cleaning.sentinel_hits.get(col, {}).values())
+            if hits:
+                own.append(("missing-value code outside the plausible range", hits))
+            if cleaning.out_of_range.get(col):
+                own.append(("value fits only another unit", cleaning.out_of_range[col]))
+        plain = binned.missing[col] - sum(k for _, k in own)
+        if plain:
             dropped.append({"column": col, "treatment": None, "reason": "running variable missing",
-                            "rows": binned.missing[col]})
+                            "rows": plain})
+        for why, k in own:
+            dropped.append({"column": col, "treatment": None, "reason": why, "rows": k})
         if binned.nonfinite[col]:
             dropped.append({"column": col, "treatment": None,
                             "reason": "running variable not finite", "rows": binned.nonfinite[col]})
