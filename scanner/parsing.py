@@ -396,4 +396,4 @@ def csv_conversion_message(exc: Exception, path, columns: list[str]) -> str | No
     where = f"at line {row}" if row else "further down"
     advice = _bad_text_advice([value], name, ".")
     return (f"{path}: column '{name}' holds {_KIND.get(typ, typ)} in the first rows but {value!r} "
-            f"{where}; {advice or 'fix that cell'}.")
+            f"{where}; fix that cell" + (f", or: {advice}." if advice else "."))

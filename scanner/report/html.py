@@ -270,6 +270,21 @@ def card(c: dict, unit: str | None) -> str:
     return "".join(parts)
 
 
+def warnings_block(results: dict) -> list[str]:
+    """The data-quality warnings, at the top of the report (before the overview and ranking)."""
+    ws = results.get("warnings") or []
+    if not ws:
+        return []
+    parts = [f"<section id='warnings' class='caution'><h2>Data warnings ({len(ws)})</h2>"
+             "<p class='muted'>What cutscan found in the data, what it did and the spec key that "
+             "fixes it. Read these before the ranking: each one can change it.</p><ul>"]
+    parts += [f"<li><b>{esc(w['kind'])}</b>"
+              + (f" <code>{esc(str(w['column']))}</code>" if w.get("column") else "")
+              + f": {esc(w['message'])}</li>" for w in ws]
+    parts.append("</ul></section>")
+    return parts
+
+
 def render(results: dict) -> str:
     """The whole report as one HTML string."""
     m = results["disclosure"]["min_cell"]
@@ -283,6 +298,7 @@ def render(results: dict) -> str:
              "<section id='cautions' class='caution'><h2>Read this first</h2><ul>"]
     parts += [f"<li>{esc(t)}</li>" for t in cautions(m)]
     parts.append("</ul></section>")
+    parts += warnings_block(results)
     parts += _overview(results)
     parts += _ranking(results, max(top, 20))
     parts.append("<section id='candidates'><h2>Candidate cards</h2>")

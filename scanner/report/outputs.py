@@ -28,7 +28,10 @@ COUNT_FIELDS = ("n_left", "n_right")
 CSV_FIELDS = ("rank", "running", "treatment", "cutoff", "origin", "rule_id", "eligible_side",
               "jump", "se", "ci_low", "ci_high", "p_value", "q_value", "first_stage_f", "design",
               "bandwidth", "n_left", "n_right", "distinct_left", "distinct_right", "density_p",
-              "balance_p", "placebo_p", "score", "verdict", "flags")
+              "balance_p", "placebo_p", "score", "verdict", "flags",
+              # added after the contract fields: which interval ci_low/ci_high are, which test
+              # density_p comes from, and the verdict's reasons (joined by " | ")
+              "interval", "density_method", "reasons")
 
 
 def clean(value):
@@ -121,6 +124,7 @@ def results_dict(result) -> dict:
         "n_candidates": len(rows),
         "n_tested": rows[0]["n_tested"] if rows else 0,
         "disclosure": {},
+        "warnings": [dict(w) for w in getattr(result, "warnings", [])],
         "notes": list(result.notes),
         "candidates": rows,
     })
@@ -149,6 +153,7 @@ def tidy_rows(candidates: list[dict]) -> list[dict]:
     for c in candidates:
         row = {k: c.get(k) for k in CSV_FIELDS}
         row["flags"] = ";".join(c.get("flags") or [])
+        row["reasons"] = " | ".join(c.get("reasons") or [])
         out.append(row)
     return out
 
@@ -332,6 +337,28 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
                   format_p(c["q_value"], "—"), _num(c["score"], ".0f"),
                   f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
     return t
+
+
+def plain_lines(results: dict, top: int = 20) -> str:
+    """The table for a pipe or a file: a title line, then one line per candidate.
+
+    Each line holds rank, candidate, jump with its reported interval (and the interval's kind),
+    F, q, score, verdict and flags, so ``grep`` and ``cut`` work on it and nothing wraps.
+    """
+    n = results["n_candidates"]
+    lines = [f"{results['title']}: {n} candidates, {results['n_tested']} tests in the q-value "
+             f"family, best {min(top, n)} shown"]
+    for c in results["candidates"][:top]:
+        ci = ("" if c.get("ci_low") is None else
+              f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
+        f = c.get("first_stage_f")
+        fs = "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}")
+        flags = " ".join(c.get("flags") or []) or "-"
+        lines.append(f"{c['rank']:>3}  {c['running']} → {c['treatment']} at {c['cutoff']:g} "
+                     f"({c.get('rule_id') or c['origin']})  jump {_num(c['jump'], '+.3f')}{ci}  "
+                     f"F {fs}  q {format_p(c['q_value'], '—')}  score {_num(c['score'], '.0f')}  "
+                     f"{c['verdict']}  flags: {flags}")
+    return "\n".join(lines)
 
 
 STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta", "no jump": "dim",
