@@ -162,7 +162,7 @@ def unit_repeats(table, spec: ScanSpec) -> list[dict]:
                    f"if it identifies persons, add data.unit = \"{col}\" and data.keep = \"first\" "
                    "(with data.date) to count each unit once, or data.unit alone to keep every row "
                    "and split the held-out half by unit.")
-        return [warning("repeated_units", col, msg)]
+        return [warning("repeated_units", col, msg, repeats)]
     return []
 
 

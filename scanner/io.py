@@ -408,6 +408,8 @@ def _parse(b: pa.RecordBatch, i: int, c: str, cl: Cleaning, source: str) -> np.n
         cl.mapped[c] = cl.mapped.get(c, 0) + hits
         return x
     x = numeric(b, c, source, role, cc, cl.reader)
+    if not x.flags.writeable:            # zero-copy views of Arrow buffers are read-only
+        x = x.copy()
     if cc:
         cl.coded[c] = cl.coded.get(c, 0) + _code_hits(b.column(i), x, cc, c, source, cl.roles,
                                                       cl.reader)

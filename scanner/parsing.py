@@ -78,6 +78,7 @@ class NumberReader:
         self.mode: dict[str, str] = {}
         self.thousands: dict[str, str] = {}          # column -> first cell read as thousands
         self.comma_cells: dict[str, int] = {}
+        self.example: dict[str, str] = {}             # column -> one cell read with a comma
 
     def decide(self, column: str, s: pa.Array, role: str) -> str:
         """The decimal mark of ``column`` given one batch of trimmed present cells."""
@@ -164,6 +165,8 @@ def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=()
             is_comma = pc.fill_null(pc.match_substring_regex(s, _DEC_COMMA), False)
             hits = int(pc.sum(pc.and_(is_comma, present)).as_py() or 0)
             reader.comma_cells[column] = reader.comma_cells.get(column, 0) + hits
+            if hits and column not in reader.example:
+                reader.example[column] = pc.filter(s, pc.and_(is_comma, present))[0].as_py()
             cleaned = pc.if_else(is_comma, pc.replace_substring(
                 pc.replace_substring(s, ".", ""), ",", "."), s)
         else:

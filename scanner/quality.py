@@ -39,9 +39,12 @@ MIXED_SHARE = 0.005      # share of rows fitting only another unit that makes a 
 MIXED_MIN = 20
 
 
-def warning(kind: str, column, message: str) -> dict:
+def warning(kind: str, column, message: str, count=None) -> dict:
+    """One warning; ``count`` (rows or cells concerned, when one number says it) is an extra
+    field beside the contract's three."""
     assert kind in KINDS, kind
-    return {"kind": kind, "column": column, "message": message}
+    return {"kind": kind, "column": column, "message": message,
+            "count": None if count is None else int(count)}
 
 
 def _n(k) -> str:
@@ -49,7 +52,7 @@ def _n(k) -> str:
 
 
 def _g(v: float) -> str:
-    return f"{v:.6g}"
+    return f"{v:.6g}" if float(v) == round(float(v), 4) else f"{v:.4g}"
 
 
 # ---------------------------------------------------------------------- profile and plan
@@ -198,11 +201,12 @@ def parse_warnings(cl, spec, value_map_sources: dict) -> list[dict]:
     out = []
     for c, k in (cl.reader.comma_cells if cl.reader else {}).items():
         if k and spec.decimal != ",":
+            ex = cl.reader.example.get(c, "6,5")
             out.append(warning("decimal_comma", c,
-                f"column '{c}': {k:,} cells hold numbers with a decimal comma (such as 6,5) and "
-                "were read as decimals (6.5). If the file uses commas as decimal marks, say so "
+                f"column '{c}': {k:,} cells hold numbers with a decimal comma (such as {ex!r}) "
+                f"and were read as decimals ({ex.replace('.', '').replace(',', '.')}). If the file uses commas as decimal marks, say so "
                 "with [data] decimal = \",\"; if they are thousands separators, set "
-                "decimal = \".\" and cutscan will refuse the cells instead."))
+                "decimal = \".\" and cutscan will refuse the cells instead.", k))
     for c, k in cl.mapped.items():
         if not k:
             continue
@@ -212,7 +216,7 @@ def parse_warnings(cl, spec, value_map_sources: dict) -> list[dict]:
         fix = ("set [data.value_map] " + c + " = { ... } to read them otherwise"
                if src != "data.value_map" else "edit data.value_map to change it")
         out.append(warning("value_map", c,
-            f"column '{c}': {k:,} cells were recoded by {src} ({how}); {fix}."))
+            f"column '{c}': {k:,} cells were recoded by {src} ({how}); {fix}.", k))
     return out
 
 
@@ -231,13 +235,13 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                     f"column '{c}': {_n(k)} hold {s:g}, a spike outside the bulk of the values "
                     f"and outside the plausible range of {_quantity(spec, c)} ({_g(lo)}–{_g(hi)} "
                     f"{unit}); they were treated as missing. Declare the code with {key} to make "
-                    "this explicit."))
+                    "this explicit.", k))
             else:
                 k = cl.watched.get(c, {}).get(s, 0)
                 out.append(warning("sentinel_values", c,
                     f"column '{c}': {_n(k)} hold {s:g}, a spike outside the bulk of the values "
                     f"that looks like a missing-value code; they were kept as values. If {s:g} "
-                    f"means 'not recorded', declare it with {key}."))
+                    f"means 'not recorded', declare it with {key}.", k))
         elif f["kind"] == "mixed_units" and "unit_column" in f:
             conv = cl.converted.get(c, {})
             target = _running(spec, c).unit
@@ -248,7 +252,8 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                 tail = (f"; {_n(empty)} with an empty unit cell were read as {target}" if empty else "")
                 out.append(warning("mixed_units", c,
                     f"column '{c}' holds two units by its unit column '{f['unit_column']}' "
-                    f"({parts}); {_n(moved)} were converted to {target} row by row{tail}."))
+                    f"({parts}); {_n(moved)} were converted to {target} row by row{tail}.",
+                    moved))
         elif f["kind"] == "mixed_units":
             k = cl.out_of_range.get(c, 0)
             lo, hi = f["keep"]
@@ -260,7 +265,7 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                 f"{_g(a)}–{_g(b)}). {_n(k)} outside {_g(lo)}–{_g(hi)} were set missing; values "
                 f"inside it are kept as {f['own']}. If a column holds each row's unit, name it "
                 f"with unit_column = \"...\" in the [[running]] table of '{c}' so rows are "
-                "converted instead."))
+                "converted instead.", k))
         elif f["kind"] == "wrong_unit":
             st = stats.get(c)
             lo, hi = f["range"]
@@ -272,7 +277,7 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                 f"column '{c}': {_n(k)} lie outside the plausible range of "
                 f"{_running(spec, c).quantity} in {unit} ({_g(lo)}–{_g(hi)}); the median is "
                 f"{_g(f['median'])}" + (f", which fits {f['fits']}" if f["fits"] else "") +
-                f". Rules were converted to {unit} and may miss the data: {fix}."))
+                f". Rules were converted to {unit} and may miss the data: {fix}.", k))
     return out
 
 
@@ -330,7 +335,7 @@ def rule_warnings(spec, rules, stats: dict, rule_cutoff) -> list[dict]:
                     f"{_g(above)} ({_n(k_hi)}) {side} it, so the candidate is the split between "
                     f"{_g(below)} and {_g(above)} (declared value {_g(c)}, first value on the "
                     f"right {_g(above)}). If the rule is applied to a rounded value, state its "
-                    "cutoff on the recorded scale in the catalogue."))
+                    "cutoff on the recorded scale in the catalogue.", k_lo + k_hi))
     return out
 
 
@@ -357,7 +362,7 @@ def no_variation(spec, stats: dict) -> list[dict]:
                 out.append(warning("no_variation", col,
                     f"{role} '{col}' is {mean:g} in every one of {k:,.0f} rows where it is "
                     f"recorded, so it can show no jump{' or imbalance' if role == 'covariate' else ''}; "
-                    f"check the column (a filter upstream?) or drop it from [{role}s] columns."))
+                    f"check the column (a filter upstream?) or drop it from [{role}s] columns.", k))
     return out
 
 
