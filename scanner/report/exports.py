@@ -24,6 +24,19 @@ CAUTION_LINES = [
 ]
 
 
+DENSITY_TESTS = {"local_polynomial": "local-polynomial test", "mccrary": "McCrary test",
+                 "binomial_window": "binomial window test", "frandsen": "Frandsen discrete test"}
+
+
+def density_label(method) -> str:
+    """Which density test ``density_p`` comes from, in words (scanner.diagnostics.sorting)."""
+    if not method:
+        return "density test"
+    base = method.removesuffix("_without_heaps")
+    words = DENSITY_TESTS.get(base, base.replace("_", " "))
+    return words + (", heaps removed" if method.endswith("_without_heaps") else "")
+
+
 def cautions(min_cell: int) -> list[str]:
     return [t.format(m=min_cell, m1=min_cell - 1) for t in CAUTION_LINES]
 
@@ -81,7 +94,8 @@ def markdown(results: dict, top: int = 5) -> str:
             lines.append(
                 f"| {c['rank']} | {c['running']} | {c['treatment']} | {c['cutoff']:g} | {origin} | "
                 f"{_num(c['jump'], '+.3f')}{ci} | {_num(c['n_left'], ',', 'suppressed')} / "
-                f"{_num(c['n_right'], ',', 'suppressed')} | {_p(c.get('density_p'))} | "
+                f"{_num(c['n_right'], ',', 'suppressed')} | {_p(c.get('density_p'))} "
+                f"({density_label(c.get('density_method'))}) | "
                 f"{_p(c.get('balance_p'))} | {c['verdict']}"
                 f"{' (' + ', '.join(c['flags']) + ')' if c['flags'] else ''} |")
         lines.append("")

@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..score import format_p, format_p_eq
 from . import figures
-from .exports import cautions
+from .exports import cautions, density_label
 
 esc = html.escape
 CARD_VERDICTS = ("usable", "caution", "doubtful")
@@ -73,7 +73,10 @@ def _overview(results: dict) -> list[str]:
              f"<tr><th class='l'>covariates</th><td class='l'>{esc(', '.join(spec.get('covariates', [])) or 'none')}</td></tr>",
              f"<tr><th class='l'>date column</th><td class='l'>{esc(spec.get('date') or 'none')}</td></tr>",
              f"<tr><th class='l'>cutoffs examined</th><td>{results['n_candidates']:,} "
-             f"({results['n_tested']:,} estimable and tested; q-values adjust for all of them)</td></tr>",
+             f"({results['n_tested']:,} tests in the q-value family: "
+             f"{(results.get('tests') or {}).get('candidates', results['n_tested']):,} candidates "
+             f"with a p-value and {(results.get('tests') or {}).get('searches', 0):,} search scans "
+             "that added no candidate)</td></tr>",
              f"<tr><th class='l'>estimator</th><td class='l'>local polynomial of degree "
              f"{spec.get('degree', 1)}, {esc(str(spec.get('kernel', '')))} kernel, bandwidth "
              f"{esc(str(spec.get('bandwidth', '')))}</td></tr></table>"]
@@ -118,7 +121,8 @@ def _ranking(results: dict, limit: int) -> list[str]:
             f"<td>{_fmt(c['jump'], '+.3f')}{ci}</td>"
             f"<td>{'—' if f is None else ('>9999' if f > 9999 else f'{f:.0f}')}</td>"
             f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}</td>"
-            f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}</td>"
+            f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}"
+            f"<br><span class='ci'>{esc(density_label(c.get('density_method')))}</span></td>"
             f"<td>{_p(c.get('balance_p'))}</td><td>{_fmt(c.get('score'), '.0f')}</td>"
             f"<td class='l v-{c['verdict'].replace(' ', '-')}'>{esc(c['verdict'])}</td>"
             f"<td class='l'>{esc(', '.join(c.get('flags') or []))}</td></tr>")
@@ -242,7 +246,7 @@ def card(c: dict, unit: str | None) -> str:
                        f"within the bandwidth {_fmt(c.get('bandwidth'), '.4g')} with 95% bands."))
     parts.append(_draw(figures.density_figure(c, unit), "density around the cutoff",
                        f"Density of {c['running']}: histogram and fitted one-sided densities "
-                       f"({_p_eq('density test p', c.get('density_p'))})."))
+                       f"({_p_eq(density_label(c.get('density_method')) + ' p', c.get('density_p'))})."))
     parts.append(_draw(figures.balance_figure(c), "covariate balance",
                        f"Covariate balance: standardised jumps ({_p_eq('joint p', c.get('balance_p'))})."))
     parts.append(_draw(figures.sensitivity_figure(c, _sensitivity_points(c), unit),

@@ -123,6 +123,7 @@ def results_dict(result) -> dict:
         "data": data,
         "n_candidates": len(rows),
         "n_tested": rows[0]["n_tested"] if rows else 0,
+        "tests": test_family(rows, getattr(result, "search", None) or {}),
         "disclosure": {},
         "warnings": [dict(w) for w in getattr(result, "warnings", [])],
         "notes": list(result.notes),
@@ -141,6 +142,16 @@ def results_dict(result) -> dict:
                                  f"{m} rows (and, for 0/1 columns, 0 or at least {m} ones and zeros)",
                          "suppressed_fields": caught}
     return out
+
+
+def test_family(rows: list, search: dict) -> dict:
+    """What ``n_tested`` counts (scanner.score): candidates with a finite p-value, plus each
+    discovery scan of a running variable × treatment that added no row of its own."""
+    finite = sum(1 for r in rows if r.get("p_value") is not None
+                 and math.isfinite(float(r["p_value"])))
+    found = {(r["running"], r["treatment"]) for r in rows if r.get("origin") == "discovered"}
+    scans = int(search.get("n_scans", 0) or 0)
+    return {"candidates": finite, "searches": max(scans - len(found), 0) if scans else 0}
 
 
 def _pkg_version():
@@ -321,7 +332,8 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
     grid = results.get("n_grid_points") or 0
     scanned = f" (search: {grid} grid cutoffs examined)" if grid else ""
     t = Table(title=f"{results['title']} — {results['n_candidates']} candidates, "
-                    f"{results['n_tested']} tested{scanned}, best {min(top, results['n_candidates'])} shown",
+                    f"{results['n_tested']} tests{_family(results)}{scanned}, best "
+                    f"{min(top, results['n_candidates'])} shown",
               header_style="bold", show_lines=False)
     for col, just in (("#", "right"), ("running", "left"), ("treatment", "left"),
                       ("cutoff", "right"), ("origin", "left"), ("jump [95% CI]", "right"),
@@ -347,7 +359,7 @@ def plain_lines(results: dict, top: int = 20) -> str:
     """
     n = results["n_candidates"]
     lines = [f"{results['title']}: {n} candidates, {results['n_tested']} tests in the q-value "
-             f"family, best {min(top, n)} shown"]
+             f"family{_family(results)}, best {min(top, n)} shown"]
     for c in results["candidates"][:top]:
         ci = ("" if c.get("ci_low") is None else
               f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
@@ -361,6 +373,13 @@ def plain_lines(results: dict, top: int = 20) -> str:
     return "\n".join(lines)
 
 
+def _family(results: dict) -> str:
+    t = results.get("tests") or {}
+    if not t.get("searches"):
+        return ""
+    return f" ({t['candidates']} candidates with a p-value + {t['searches']} search scans)"
+
+
 STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta", "no jump": "dim",
          "not estimable": "dim red"}
 
@@ -369,7 +388,7 @@ def _compact_table(results: dict, top: int):
     """Narrow terminals: one text column for the candidate, the interval left to the outputs."""
     from rich.table import Table
     t = Table(title=f"{results['title']}: {results['n_candidates']} candidates, "
-                    f"{results['n_tested']} tested (intervals in candidates.csv)",
+                    f"{results['n_tested']} tests{_family(results)} (intervals in candidates.csv)",
               header_style="bold")
     for col, just in (("#", "right"), ("candidate", "left"), ("jump", "right"), ("q", "right"),
                       ("score", "right"), ("verdict", "left"), ("flags", "left")):
