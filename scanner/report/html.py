@@ -6,6 +6,9 @@ placebo, compliance shares, power, timeline) appear only when those fields are p
 """
 from __future__ import annotations
 
+import hashlib
+import json
+
 import html
 from pathlib import Path
 
@@ -53,8 +56,58 @@ def _img(png: str | None, alt: str, caption: str) -> str:
             f"<figcaption>{esc(caption)}</figcaption></figure>")
 
 
-def _draw(fig, alt, caption):
-    return _img(figures.to_png(fig), alt, caption) if fig is not None else ""
+def _draw(call, alt, caption):
+    """A figure as an <img>: ``call`` is (figure function, its arguments...).
+
+    Drawing is the slow part of a report (about 0.3 s a figure), so each PNG is kept in the
+    output folder's figure cache under a hash of the function, its inputs and the figure code;
+    ``cutscan report`` redraws only figures whose inputs changed (e.g. after --min-cell).
+    """
+    png = FIGURE_CACHE.get(call)
+    return _img(png, alt, caption) if png else ""
+
+
+class FigureCache:
+    """PNG (base64) per figure input, kept in ``folder`` (None: no cache, always draw)."""
+
+    def __init__(self):
+        self.folder, self.used = None, set()
+        import inspect
+        self.code = hashlib.sha256(inspect.getsource(figures).encode()).hexdigest()[:16]
+
+    def key(self, call) -> str:
+        fn, *args = call
+        blob = json.dumps([fn.__name__, args], sort_keys=True, default=str)
+        return hashlib.sha256((self.code + blob).encode()).hexdigest()[:32]
+
+    def get(self, call) -> str:
+        key = self.key(call)
+        path = self.folder / f"{key}.b64" if self.folder else None
+        self.used.add(key)
+        if path is not None and path.exists():
+            return path.read_text(encoding="ascii")
+        fn, *args = call
+        fig = fn(*args)
+        png = figures.to_png(fig) if fig is not None else ""
+        if path is not None:
+            path.write_text(png, encoding="ascii")
+        return png
+
+    def start(self, folder) -> None:
+        self.folder, self.used = folder, set()
+        if folder is not None:
+            folder.mkdir(exist_ok=True)
+
+    def prune(self) -> None:
+        """Forget figures this report no longer shows."""
+        if self.folder is not None:
+            for p in self.folder.glob("*.b64"):
+                if p.stem not in self.used:
+                    p.unlink()
+
+
+FIGURE_CACHE = FigureCache()
+FIGURE_DIR = ".figures"
 
 
 def _units(results: dict) -> dict:
@@ -241,18 +294,18 @@ def card(c: dict, unit: str | None) -> str:
                      + "".join(f"<tr><th class='l'>{esc(n)}</th><td>[{lo:+.3f}, {hi:+.3f}]</td></tr>"
                                for n, lo, hi in ivs) + "</table></div>")
     parts.append("<div class='grid'>")
-    parts.append(_draw(figures.uptake_figure(c, unit), "uptake around the cutoff",
+    parts.append(_draw((figures.uptake_figure, c, unit), "uptake around the cutoff",
                        "Uptake: binned shares (IMSE-optimal evenly spaced bins) and the local fits "
                        f"within the bandwidth {_fmt(c.get('bandwidth'), '.4g')} with 95% bands."))
-    parts.append(_draw(figures.density_figure(c, unit), "density around the cutoff",
+    parts.append(_draw((figures.density_figure, c, unit), "density around the cutoff",
                        f"Density of {c['running']}: histogram and fitted one-sided densities "
                        f"({_p_eq(density_label(c.get('density_method')) + ' p', c.get('density_p'))})."))
-    parts.append(_draw(figures.balance_figure(c), "covariate balance",
+    parts.append(_draw((figures.balance_figure, c), "covariate balance",
                        f"Covariate balance: standardised jumps ({_p_eq('joint p', c.get('balance_p'))})."))
-    parts.append(_draw(figures.sensitivity_figure(c, _sensitivity_points(c), unit),
+    parts.append(_draw((figures.sensitivity_figure, c, _sensitivity_points(c), unit),
                        "bandwidth sensitivity", "Bandwidth sensitivity: the jump re-estimated at "
                        "other bandwidths."))
-    parts.append(_draw(figures.timeline_figure(c, _timeline_points(c)), "timeline of the jump",
+    parts.append(_draw((figures.timeline_figure, c, _timeline_points(c)), "timeline of the jump",
                        "Timeline: the jump estimated period by period."))
     parts.append("</div>")
     parts.append(_compliance(c))
@@ -314,6 +367,15 @@ def render(results: dict) -> str:
     return "\n".join(parts)
 
 
-def write_report(results: dict, path: Path, stats=None) -> None:
-    """Write report.html (``stats`` is unused: everything comes from the results dict)."""
-    Path(path).write_text(render(results), encoding="utf-8")
+def write_report(results: dict, path: Path, stats=None, cache: bool = False) -> None:
+    """Write report.html (``stats`` is unused: everything comes from the results dict).
+
+    With ``cache`` the figures are kept in ``.figures/`` beside the report (see :func:`_draw`).
+    """
+    path = Path(path)
+    FIGURE_CACHE.start(path.parent / FIGURE_DIR if cache else None)
+    try:
+        path.write_text(render(results), encoding="utf-8")
+        FIGURE_CACHE.prune()
+    finally:
+        FIGURE_CACHE.start(None)

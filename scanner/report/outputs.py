@@ -315,7 +315,7 @@ def write_derived(results: dict, folder: Path) -> None:
     """report.html, results.md and bins.csv: everything rebuilt from results.json alone."""
     from .exports import write_bins_csv, write_markdown
     from .html import write_report
-    write_report(results, folder / "report.html")
+    write_report(results, folder / "report.html", cache=True)
     write_markdown(results, folder / "results.md")
     write_bins_csv(results, folder / "bins.csv")
 
