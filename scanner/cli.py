@@ -253,6 +253,10 @@ def _check(args) -> int:
         stem = safe if len(results) == 1 else f"{safe}.{res.treatment}"
         write_figure(res, out / f"{stem}.timeline.png", min_cell)
     write_json({"version": 1, "checks": [to_dict(r, min_cell) for r in results]}, target)
+    if len(results) > 1 and args.treatment is None and not results[0].rule.treatments:
+        console.print(f"Rule '{results[0].rule.id}' lists no treatments, so all {len(results)} "
+                      "treatments of its running variable are shown; name its own with "
+                      "treatments = [...] in the catalogue, or pass --treatment T.")
     console.print(f"[dim]{CAUTION}[/]")
     console.print(f"Wrote {target} and the timeline figure(s) in {out}")
     return 0

@@ -153,9 +153,10 @@ def unit_repeats(table, spec: ScanSpec) -> list[dict]:
         seen = (f"{repeats:,} of the first {first.num_rows:,} rows share a value with an earlier "
                 f"row; {distinct:,} distinct values")
         if spec.unit:
+            need = "" if spec.date else " and data.date (the column that orders a unit's rows)"
             msg = (f"column '{col}' is data.unit and repeats ({seen}), so units with many rows "
-                   "count many times; add data.keep = \"first\" to count each unit once, by its "
-                   "earliest row holding each running variable.")
+                   f"count many times; add data.keep = \"first\"{need} to count each unit once, "
+                   "by its earliest row holding each running variable.")
         else:
             why = "is named like a unit identifier" if named else "repeats like a unit identifier"
             msg = (f"column '{col}' {why} ({seen}), so units with many rows count many times; "

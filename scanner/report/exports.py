@@ -8,7 +8,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-from ..score import format_p
+from ..textfmt import format_p, format_p_eq  # noqa: F401  (html and outputs import them here)
 
 BIN_FIELDS = ("rank", "running", "treatment", "cutoff", "figure", "side", "x_low", "x_high",
               "x_mean", "n", "value", "value_kind")

@@ -12,9 +12,7 @@ import json
 import html
 from pathlib import Path
 
-from ..score import format_p, format_p_eq
-from . import figures
-from .exports import cautions, density_label
+from .exports import cautions, density_label, format_p, format_p_eq
 
 esc = html.escape
 CARD_VERDICTS = ("usable", "caution", "doubtful")
@@ -68,16 +66,20 @@ def _draw(call, alt, caption):
 
 
 class FigureCache:
-    """PNG (base64) per figure input, kept in ``folder`` (None: no cache, always draw)."""
+    """PNG (base64) per figure input, kept in ``folder`` (None: no cache, always draw).
+
+    The figure module (and matplotlib, a second of imports) is loaded only when a figure has
+    to be drawn, so a rebuild whose figures are all cached never imports it.
+    """
 
     def __init__(self):
         self.folder, self.used = None, set()
-        import inspect
-        self.code = hashlib.sha256(inspect.getsource(figures).encode()).hexdigest()[:16]
+        code = (Path(__file__).parent / "figures.py").read_bytes()
+        self.code = hashlib.sha256(code).hexdigest()[:16]
 
     def key(self, call) -> str:
         fn, *args = call
-        blob = json.dumps([fn.__name__, args], sort_keys=True, default=str)
+        blob = json.dumps([fn, args], sort_keys=True, default=str)
         return hashlib.sha256((self.code + blob).encode()).hexdigest()[:32]
 
     def get(self, call) -> str:
@@ -86,8 +88,9 @@ class FigureCache:
         self.used.add(key)
         if path is not None and path.exists():
             return path.read_text(encoding="ascii")
+        from . import figures
         fn, *args = call
-        fig = fn(*args)
+        fig = getattr(figures, fn)(*args)
         png = figures.to_png(fig) if fig is not None else ""
         if path is not None:
             path.write_text(png, encoding="ascii")
@@ -159,7 +162,10 @@ RANK_HEADS = (("#", ""), ("running", "l"), ("treatment", "l"), ("cutoff", ""), (
 def _ranking(results: dict, limit: int) -> list[str]:
     parts = ["<section id='ranking'><h2>Ranked candidates</h2>",
              f"<p class='muted'>Best {min(limit, results['n_candidates'])} of "
-             f"{results['n_candidates']}; rows left/right count the rows within the bandwidth. "
+             f"{results['n_candidates']}; rows left/right count the rows within the bandwidth "
+             "('suppressed' where the count, or its difference from a figure's bins, would be "
+             f"below {results['disclosure']['min_cell']}, so one side can be hidden while the "
+             "other shows thousands). "
              "The full list is in candidates.csv.</p><table><tr>"]
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
@@ -294,18 +300,18 @@ def card(c: dict, unit: str | None) -> str:
                      + "".join(f"<tr><th class='l'>{esc(n)}</th><td>[{lo:+.3f}, {hi:+.3f}]</td></tr>"
                                for n, lo, hi in ivs) + "</table></div>")
     parts.append("<div class='grid'>")
-    parts.append(_draw((figures.uptake_figure, c, unit), "uptake around the cutoff",
+    parts.append(_draw(("uptake_figure", c, unit), "uptake around the cutoff",
                        "Uptake: binned shares (IMSE-optimal evenly spaced bins) and the local fits "
                        f"within the bandwidth {_fmt(c.get('bandwidth'), '.4g')} with 95% bands."))
-    parts.append(_draw((figures.density_figure, c, unit), "density around the cutoff",
+    parts.append(_draw(("density_figure", c, unit), "density around the cutoff",
                        f"Density of {c['running']}: histogram and fitted one-sided densities "
                        f"({_p_eq(density_label(c.get('density_method')) + ' p', c.get('density_p'))})."))
-    parts.append(_draw((figures.balance_figure, c), "covariate balance",
+    parts.append(_draw(("balance_figure", c), "covariate balance",
                        f"Covariate balance: standardised jumps ({_p_eq('joint p', c.get('balance_p'))})."))
-    parts.append(_draw((figures.sensitivity_figure, c, _sensitivity_points(c), unit),
+    parts.append(_draw(("sensitivity_figure", c, _sensitivity_points(c), unit),
                        "bandwidth sensitivity", "Bandwidth sensitivity: the jump re-estimated at "
                        "other bandwidths."))
-    parts.append(_draw((figures.timeline_figure, c, _timeline_points(c)), "timeline of the jump",
+    parts.append(_draw(("timeline_figure", c, _timeline_points(c)), "timeline of the jump",
                        "Timeline: the jump estimated period by period."))
     parts.append("</div>")
     parts.append(_compliance(c))

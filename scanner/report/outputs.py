@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import OutputError
-from ..score import format_p
+from .exports import format_p
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}   # held back while folders are created or moved
