@@ -35,6 +35,8 @@ SENTINELS = (-1.0, -9.0, -99.0, -999.0, -9999.0, 8.0, 9.0, 88.0, 99.0, 888.0, 99
 PROFILE_ROWS = 500_000
 MIN_SPIKE = 5            # rows at a code before it counts as a spike
 SPIKE_RATIO = 3          # ... and at least this many times any value between it and the bulk
+GAP_STEPS = 3            # ... and apart from every other value by 3 recording steps
+GAP_SHARE = 0.05         # ... and by 5 % of the bulk's range (a code is not the next value)
 MIXED_SHARE = 0.005      # share of rows fitting only another unit that makes a column "mixed"
 MIXED_MIN = 20
 
@@ -88,9 +90,12 @@ def profile(table, columns: list[str]) -> dict[str, np.ndarray]:
 def sentinel_spikes(v: np.ndarray) -> list[float]:
     """Codes from SENTINELS that form a spike outside the bulk of ``v``.
 
-    Outside the bulk: beyond the 0.1 % / 99.9 % quantiles of the other values.  A spike: at least
-    MIN_SPIKE rows, and SPIKE_RATIO times the rows at any other value lying between it and the
-    bulk (so a smooth tail such as 6, 7, 8 admissions is not a code, while 999 after a gap is).
+    Outside the bulk: beyond the 0.1 % / 99.9 % quantiles of the other values, and apart from the
+    nearest other value by GAP_STEPS recording steps (median spacing of the support) and
+    GAP_SHARE of the bulk's range, so 99 on a 0–99 scale is the scale's last value, not a code.
+    A spike: at least MIN_SPIKE rows, and SPIKE_RATIO times the rows at any other value lying
+    between it and the bulk (so a smooth tail such as 6, 7, 8 admissions is not a code, while
+    999 after a gap is).  Common practice, tuned on invented extracts.
     """
     if v.size < 20:
         return []
@@ -100,9 +105,14 @@ def sentinel_spikes(v: np.ndarray) -> list[float]:
     if bulk.size < 20:
         return []
     lo, hi = np.quantile(bulk, [0.001, 0.999])
+    support = vals[~is_code]
+    spacing = float(np.median(np.diff(support))) if support.size > 1 else 0.0
+    gap_needed = max(GAP_STEPS * spacing, GAP_SHARE * (hi - lo))
     found = []
     for s, k in zip(vals[is_code], counts[is_code]):
         if k < MIN_SPIKE or lo <= s <= hi:
+            continue
+        if np.min(np.abs(support - s)) < gap_needed:     # the next value of a tail, not a code
             continue
         between = (~is_code) & ((vals > hi) & (vals < s) if s > hi else (vals < lo) & (vals > s))
         if k >= SPIKE_RATIO * (counts[between].max() if between.any() else 0):

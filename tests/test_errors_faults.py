@@ -204,7 +204,8 @@ def test_force_is_needed_and_replaces_whole_folder(tmp_path, capsys):
     assert main(["scan", str(spec), "--out", str(out), "--quiet"]) == 2
     assert "add --force" in capsys.readouterr().err
     assert main(["scan", str(spec), "--out", str(out), "--quiet", "--force"]) == 0
-    assert sorted(p.name for p in out.iterdir()) == ["bins.csv", "candidates.csv", "report.html", "results.json", "results.md"]
+    assert sorted(p.name for p in out.iterdir()) == [".figures", "bins.csv", "candidates.csv",
+                                                     "report.html", "results.json", "results.md"]
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
 
 

@@ -80,6 +80,9 @@ def markdown(results: dict, top: int = 5) -> str:
              f"{_num(d.get('rows_used'), ',', 'a suppressed number of')} rows "
              f"({results['n_candidates']} cutoffs examined, {results['n_tested']} tested; "
              "q-values are Benjamini–Hochberg adjusted over all tests).", ""]
+    if results.get("warnings"):
+        lines += [f"**Data warnings ({len(results['warnings'])})** — read before the table:", ""]
+        lines += [f"- `{w['kind']}`: {w['message']}" for w in results["warnings"]] + [""]
     shown = [c for c in results["candidates"] if c["verdict"] not in ("no jump", "not estimable")]
     shown = shown[:top]
     if not shown:
