@@ -346,6 +346,11 @@ class Cleaning:
     unit_missing: dict = field(default_factory=dict)       # column -> rows with an empty unit
     out_of_range: dict = field(default_factory=dict)       # column -> rows set missing
     watched: dict = field(default_factory=dict)            # column -> {value: rows}
+    # the profile: the first ``profile_rows`` rows of the pass, handed to ``planner``
+    planner: object = None
+    profile_columns: tuple = ()
+    profile_rows: int = 500_000
+    planned: bool = False
     reader: NumberReader | None = None
 
     def scanned(self) -> list[str]:
@@ -368,28 +373,92 @@ def cleaned(table: Table, codes: dict, roles: dict, date: str | None = None,
     for c in codes:
         cl.coded.setdefault(c, 0)
 
+    scanned = set(roles) | set(codes) | set(cl.value_maps)
+
+    def parse(b):
+        values = {}
+        for i, c in enumerate(b.schema.names):
+            if c in scanned and _needs_work(b.column(i), c, cl):
+                values[c] = _parse(b, i, c, cl, table.name)
+        return b, values
+
+    def finish(b, values, cols, extra):
+        names = b.schema.names
+        arrays = list(b.columns)
+        for i, c in enumerate(names):
+            if c in scanned and c not in values and _needs_work(b.column(i), c, cl):
+                values[c] = _parse(b, i, c, cl, table.name)     # needs work since the profile
+        for c, x in values.items():
+            if _changes(c, cl) or cl.watch.get(c):
+                if not x.flags.writeable:
+                    x = values[c] = x.copy()
+                _after_profile(b, c, x, cl, table.name)
+            arrays[names.index(c)] = pa.array(x, type=pa.float64(), from_pandas=True)
+        if parser and date in names:
+            i = names.index(date)
+            arrays[i] = to_timestamps(arrays[i], date, table.name, parser)
+        out = pa.RecordBatch.from_arrays(arrays, names=names)
+        return out.select(list(cols)) if extra else out
+
+    def plan(pending):
+        """Hand the first rows' parsed values to the profile's planner (scanner.quality)."""
+        profile = {}
+        for c in cl.profile_columns:
+            parts, left = [], cl.profile_rows
+            for b, values in pending:
+                if left <= 0:
+                    break
+                if c in values:
+                    parts.append(values[c][:left])
+                elif c in b.schema.names:
+                    parts.append(numeric(b.slice(0, left), c, table.name, roles.get(c, "scanned")))
+                left -= b.num_rows
+            profile[c] = np.concatenate(parts) if parts else np.array([])
+        cl.planned = True
+        cl.planner(profile)
+
     def batches(cols, rows):
         extra = [u.column for c, u in cl.units.items() if c in cols and u.column not in cols]
+        pending, seen = [], 0
         for b in table.batches(list(cols) + list(dict.fromkeys(extra)), rows):
-            names = b.schema.names
-            arrays = list(b.columns)
-            values = {}
-            for i, c in enumerate(names):
-                if c in roles or c in codes or c in cl.value_maps:
-                    values[c] = _parse(b, i, c, cl, table.name)
-            for c, x in values.items():
-                _after_profile(b, c, x, cl, table.name)
-                arrays[names.index(c)] = pa.array(x, type=pa.float64(), from_pandas=True)
-            if parser and date in names:
-                i = names.index(date)
-                arrays[i] = to_timestamps(arrays[i], date, table.name, parser)
-            out = pa.RecordBatch.from_arrays(arrays, names=names)
-            yield out.select(list(cols)) if extra else out
+            item = parse(b)
+            if cl.planner is not None and not cl.planned:
+                # The data-quality profile is the first rows of this very pass (no extra read):
+                # they are held until enough rows are in, planned on, then cleaned and passed on.
+                pending.append(item)
+                seen += b.num_rows
+                if seen < cl.profile_rows:
+                    continue
+                plan(pending)
+                for p in pending:
+                    yield finish(*p, cols, extra)
+                pending = []
+                continue
+            yield finish(*item, cols, extra)
+        if pending:
+            plan(pending)
+            for p in pending:
+                yield finish(*p, cols, extra)
     out = Table(table.name, table.columns, batches, table.num_rows)
     out.cleaning = cl
     out.coded = cl.coded
     out.raw = table
     return out
+
+
+def _changes(c: str, cl: Cleaning) -> bool:
+    """True when the steps after the profile may change column ``c`` in place."""
+    return bool(cl.sentinels.get(c) or c in cl.units or c in cl.keep_range)
+
+
+def _needs_work(arr, c: str, cl: Cleaning) -> bool:
+    """False for a numeric or boolean column nothing will change: the engine reads it as it is
+    (parsing it here would only copy it)."""
+    t = arr.type.value_type if pa.types.is_dictionary(arr.type) else arr.type
+    plain = (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
+             or pa.types.is_decimal(t))
+    return not plain or bool(cl.codes.get(c)) or c in cl.value_maps or _changes(c, cl) \
+        or bool(cl.watch.get(c))
 
 
 def _parse(b: pa.RecordBatch, i: int, c: str, cl: Cleaning, source: str) -> np.ndarray:
@@ -408,8 +477,6 @@ def _parse(b: pa.RecordBatch, i: int, c: str, cl: Cleaning, source: str) -> np.n
         cl.mapped[c] = cl.mapped.get(c, 0) + hits
         return x
     x = numeric(b, c, source, role, cc, cl.reader)
-    if not x.flags.writeable:            # zero-copy views of Arrow buffers are read-only
-        x = x.copy()
     if cc:
         cl.coded[c] = cl.coded.get(c, 0) + _code_hits(b.column(i), x, cc, c, source, cl.roles,
                                                       cl.reader)

@@ -17,12 +17,11 @@ counts), what cutscan did and the spec key that fixes or silences it.  Kinds (ne
 * ``repeated_units`` — units (persons) with several rows counted several times;
 * ``no_variation`` — a treatment or covariate with one value only.
 
-Detection reads a profile of the first ``PROFILE_ROWS`` rows; the counts in messages are exact,
-taken in the scan's own pass (``scanner.io.Cleaning``) or from the binned sums.
+Detection reads a profile of the first ``PROFILE_ROWS`` rows of the scan's own pass (no extra
+read); the counts in messages are exact, taken in that pass (``scanner.io.Cleaning``) or from
+the binned sums.
 """
 from __future__ import annotations
-
-import dataclasses
 
 import numpy as np
 
@@ -32,7 +31,7 @@ KINDS = ("mixed_units", "sentinel_values", "decimal_comma", "cutoff_off_lattice"
          "rule_outside_data", "repeated_units", "no_variation", "value_map", "wrong_unit")
 SENTINELS = (-1.0, -9.0, -99.0, -999.0, -9999.0, 8.0, 9.0, 88.0, 99.0, 888.0, 999.0, 8888.0,
              9999.0, 99999.0)
-PROFILE_ROWS = 500_000
+PROFILE_ROWS = 200_000
 MIN_SPIKE = 5            # rows at a code before it counts as a spike
 SPIKE_RATIO = 3          # ... and at least this many times any value between it and the bulk
 GAP_STEPS = 3            # ... and apart from every other value by 3 recording steps
@@ -58,35 +57,6 @@ def _g(v: float) -> str:
 
 
 # ---------------------------------------------------------------------- profile and plan
-def profile(table, columns: list[str]) -> dict[str, np.ndarray]:
-    """Parsed values of ``columns`` in the first PROFILE_ROWS rows (finite values only).
-
-    ``table`` is the output of :func:`scanner.io.cleaned`; the profile reads its raw table through
-    a copy of its cleaning settings with fresh counters, so the pass's counts stay exact.
-    """
-    from .io import Cleaning, cleaned
-    cl: Cleaning = table.cleaning
-    fresh = dataclasses.replace(cl, sentinels={}, units={}, keep_range={}, watch={}, coded={},
-                                mapped={}, sentinel_hits={}, converted={}, unit_missing={},
-                                out_of_range={}, watched={}, reader=None)
-    fresh.reader = None
-    view = cleaned(table.raw, cl.codes, cl.roles, None, None, fresh)
-    got = {c: [] for c in columns}
-    rows = 0
-    for b in view.batches(columns, 100_000):
-        for c in columns:
-            v = b.column(b.schema.get_field_index(c)).to_numpy(zero_copy_only=False)
-            got[c].append(np.asarray(v, dtype=float))
-        rows += b.num_rows
-        if rows >= PROFILE_ROWS:
-            break
-    out = {}
-    for c, parts in got.items():
-        v = np.concatenate(parts) if parts else np.array([])
-        out[c] = v[np.isfinite(v)]
-    return out
-
-
 def sentinel_spikes(v: np.ndarray) -> list[float]:
     """Codes from SENTINELS that form a spike outside the bulk of ``v``.
 
@@ -99,6 +69,8 @@ def sentinel_spikes(v: np.ndarray) -> list[float]:
     """
     if v.size < 20:
         return []
+    if not any(np.count_nonzero(v == s) >= MIN_SPIKE for s in SENTINELS):
+        return []                                   # the common case, without sorting
     vals, counts = np.unique(v, return_counts=True)
     is_code = np.isin(vals, SENTINELS)
     bulk = np.repeat(vals[~is_code], counts[~is_code])
@@ -121,18 +93,33 @@ def sentinel_spikes(v: np.ndarray) -> list[float]:
 
 
 def plan(table, spec) -> list[dict]:
-    """Read the profile, decide what the pass does about codes and units, return pending findings.
+    """Arrange for the profile: the first PROFILE_ROWS rows of the scan's own pass.
 
-    Sets ``sentinels``, ``watch`` and ``keep_range`` of the table's cleaning; the findings are
-    turned into warnings with exact counts by :func:`findings_to_warnings` after the pass.
+    ``table`` is the output of :func:`scanner.io.cleaned`.  When the pass has read that many rows
+    (or all of them) the planner decides what the pass does about codes and units — it sets
+    ``sentinels``, ``watch`` and ``keep_range`` of the table's cleaning — before any row leaves
+    the cleaning step, so every row is treated alike.  Returns the list of findings, filled in
+    during the pass; :func:`findings_to_warnings` turns them into warnings with exact counts.
     """
     cl = table.cleaning
     running = {r.column: r for r in spec.running}
     cols = list(dict.fromkeys(list(running) + [c for c in spec.covariates if c not in running]))
-    prof = profile(table, cols)
+    found: list[dict] = []
+
+    def planner(profile: dict) -> None:
+        found.extend(plan_values({c: v[np.isfinite(v)] for c, v in profile.items()}, spec, cl))
+
+    cl.planner, cl.profile_columns, cl.profile_rows = planner, tuple(cols), PROFILE_ROWS
+    for c, uc in cl.units.items():
+        found.append({"kind": "mixed_units", "column": c, "unit_column": uc.column})
+    return found
+
+
+def plan_values(prof: dict, spec, cl) -> list[dict]:
+    """Findings from the profiled (finite) values of running variables and covariates."""
+    running = {r.column: r for r in spec.running}
     found = []
-    for c in cols:
-        v = prof[c]
+    for c, v in prof.items():
         r = running.get(c)
         for s in sentinel_spikes(v):
             outside = _implausible(s, r)
@@ -150,8 +137,6 @@ def plan(table, spec) -> list[dict]:
             if f["kind"] == "mixed_units":
                 cl.keep_range[c] = f["keep"]
             found.append(f)
-    for c, uc in cl.units.items():
-        found.append({"kind": "mixed_units", "column": c, "unit_column": uc.column})
     return found
 
 
@@ -356,12 +341,11 @@ def no_variation(spec, stats: dict) -> list[dict]:
         st = stats.get(r.column)
         if st is None:
             continue
-        p = st.pooled()
         for col in list(r.treatments or spec.treatments) + list(spec.covariates):
-            if col in seen or col not in p.columns:
+            if col in seen or col not in st.columns:
                 continue
             seen.add(col)
-            x, cnt, s1, s2 = p.column_sums(col)
+            x, cnt, s1, s2 = st.column_sums(col)     # totals need no pooling over periods
             k = cnt.sum()
             if k <= 0:
                 continue
