@@ -252,13 +252,13 @@ YES_NO = {**{t: 1.0 for t in TRUE_TOKENS}, **{t: 0.0 for t in FALSE_TOKENS}}
 
 
 def cleaning_for(table, spec: ScanSpec):
-    """The :class:`scanner.io.Cleaning` of a scan: codes, decimal mark, value maps and units.
+    """The :class:`scanner.cleaning.Cleaning` of a scan: codes, decimal mark, value maps and units.
 
     Value maps come from ``data.value_map``, and, for columns it does not name, from Stata value
     labels that read yes/no (1 = "yes", 2 = "no" → 1/0): those are the 0/1 flags of a .dta file.
     Returns the cleaning and, per mapped column, where its map came from (for the warning).
     """
-    from .io import Cleaning, UnitColumn
+    from .cleaning import Cleaning, UnitColumn
     maps, sources = dict(spec.value_map), {}
     scanned = roles(spec)
     for col, labels in (getattr(table, "value_labels", None) or {}).items():

@@ -18,7 +18,7 @@ counts), what cutscan did and the spec key that fixes or silences it.  Kinds (ne
 * ``no_variation`` — a treatment or covariate with one value only.
 
 Detection reads a profile of the first ``PROFILE_ROWS`` rows of the scan's own pass (no extra
-read); the counts in messages are exact, taken in that pass (``scanner.io.Cleaning``) or from
+read); the counts in messages are exact, taken in that pass (``scanner.cleaning.Cleaning``) or from
 the binned sums.
 """
 from __future__ import annotations
@@ -95,7 +95,7 @@ def sentinel_spikes(v: np.ndarray) -> list[float]:
 def plan(table, spec) -> list[dict]:
     """Arrange for the profile: the first PROFILE_ROWS rows of the scan's own pass.
 
-    ``table`` is the output of :func:`scanner.io.cleaned`.  When the pass has read that many rows
+    ``table`` is the output of :func:`scanner.cleaning.cleaned`.  When the pass has read that many rows
     (or all of them) the planner decides what the pass does about codes and units — it sets
     ``sentinels``, ``watch`` and ``keep_range`` of the table's cleaning — before any row leaves
     the cleaning step, so every row is treated alike.  Returns the list of findings, filled in

@@ -24,7 +24,8 @@ from .estimate.select import select_bandwidth
 from .guards import (add_cleaning_info, checked_rules, cleaning_for, evaluate_contained,
                      explain_nan, keep_first, roles, text_columns, unit_repeats)
 from . import quality
-from .io import cleaned, open_table
+from .cleaning import cleaned
+from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
@@ -71,6 +72,7 @@ class ScanResult:
 
     def summary(self, top: int = 10) -> str:
         lines = [f"{self.spec.title}: {len(self.rows)} candidates from {self.data['rows_read']:,} rows"]
+        lines += [f"warning [{w['kind']}]: {w['message']}" for w in self.warnings]
         for r in self.rows[:top]:
             lines.append(f"{r['rank']:>3}. {r['running']} × {r['treatment']} at {r['cutoff']:g} "
                          f"[{r['origin']}] jump {r['jump']:+.3f} q={r['q_value']:.2g} "
