@@ -15,6 +15,7 @@ import contextlib
 import io
 import json
 import random
+import re
 import shutil
 import sys
 import tempfile
@@ -175,10 +176,62 @@ def toml_bracket(b: bytes, r: random.Random) -> bytes:
     return "\n".join(lines).encode()
 
 
+def decimal_commas(b: bytes, r: random.Random) -> bytes:
+    """The export of a European desktop tool: ';' between cells, ',' as the decimal mark."""
+    text = b.decode("utf-8", "replace")
+    if r.random() < 0.8:
+        text = text.replace(",", ";")
+    return re.sub(r"(\d)\.(\d)", r"\1,\2", text).encode()
+
+
+def sentinel_spike(b: bytes, r: random.Random) -> bytes:
+    """A missing-value code (−99, 999, ...) in many rows of one column."""
+    lines = b.decode("utf-8", "replace").split("\n")
+    j, code = r.randrange(5), r.choice(["-99", "999", "-1", "9999", "99", "-9"])
+    for i in range(1, len(lines)):
+        cells = lines[i].split(",")
+        if j < len(cells) and r.random() < 0.1:
+            cells[j] = code
+            lines[i] = ",".join(cells)
+    return "\n".join(lines).encode()
+
+
+def recode_flag(b: bytes, r: random.Random) -> bytes:
+    """The 0/1 treatment written as 1/2, yes/no or M/F codes."""
+    lines = b.decode("utf-8", "replace").split("\n")
+    one, zero = r.choice([("1", "2"), ("yes", "no"), ("F", "M"), ("Y", "N")])
+    for i in range(1, len(lines)):
+        cells = lines[i].split(",")
+        if len(cells) > 2:
+            cells[2] = one if cells[2] == "1" else zero if cells[2] == "0" else cells[2]
+            lines[i] = ",".join(cells)
+    return "\n".join(lines).encode()
+
+
+NEW_KEYS = ['decimal = ","', 'decimal = "."', 'decimal = ";"', "decimal = 1",
+            "[data.value_map]\ntreated = { 1 = 1, 2 = 0 }",
+            "[data.value_map]\ntreated = { yes = 1, no = 0 }",
+            "[data.value_map]\ntreated = { F = 1 }", "[data.value_map]\ntreated = 3",
+            "[data.value_map]\nnowhere = { a = 1 }", "[data.value_map]\nage = { x = true }",
+            'unit_column = "pid"', 'unit_column = "age"\nunit = "%"\nquantity = "hba1c"',
+            'unit_map = { a = "%" }', 'unit_column = "pid"\nunit_map = { P0001 = "kg" }',
+            'quantity = "egfr"\nunit = "mL/min/1.73m2"', 'quantity = "hba1c"\nunit = "mmol/mol"']
+
+
+def new_keys(b: bytes, r: random.Random) -> bytes:
+    """Keys for decimals, value maps and unit columns, well or badly formed, in some table."""
+    lines = b.decode("utf-8", "replace").split("\n")
+    heads = [i for i, l in enumerate(lines) if l.startswith("[")] or [0]
+    i = r.choice(heads)
+    lines.insert(i + 1, r.choice(NEW_KEYS))
+    return "\n".join(lines).encode()
+
+
 CSV_MUTATIONS = [flip_bytes, truncate, delete_line, duplicate_line, junk_cell, junk_cell,
-                 junk_column, junk_column, header_change, delimiter, bom]
+                 junk_column, junk_column, header_change, delimiter, bom, decimal_commas,
+                 sentinel_spike, sentinel_spike, recode_flag]
 TOML_MUTATIONS = [flip_bytes, truncate, delete_line, duplicate_line, toml_value, toml_value,
-                  toml_key, toml_bracket, bom]
+                  toml_key, toml_bracket, bom, new_keys, new_keys]
 
 
 # ---------------------------------------------------------------------- one case
@@ -191,7 +244,7 @@ def run_case(case: int, seed: int, work: Path) -> dict:
     files = {"data.csv": make_data(rng).encode(), "spec.toml": SPEC.encode(), "rules.toml": RULES.encode()}
     applied = []
     for _ in range(r.randint(1, 3)):
-        target = r.choice(["data.csv", "data.csv", "spec.toml", "rules.toml"])
+        target = r.choice(["data.csv", "data.csv", "spec.toml", "spec.toml", "rules.toml"])
         fn = r.choice(CSV_MUTATIONS if target == "data.csv" else TOML_MUTATIONS)
         files[target] = fn(files[target], r)
         applied.append(f"{target}:{fn.__name__}")

@@ -90,7 +90,7 @@ def _progress(console):
 def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
     from dataclasses import replace
     from rich.console import Console
-    from .report.outputs import terminal_table, write_outputs
+    from .report.outputs import plain_lines, terminal_table, write_outputs
     from .scan import scan
     from .spec import load_spec
     from .report.outputs import check_out
@@ -107,7 +107,7 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
     console = Console(stderr=False)
     session = _spark_session(spec) if data is None else None
     try:
-        if quiet:
+        if quiet or not console.is_terminal:      # no progress bars into a pipe or a file
             result = scan(spec, data)
         else:
             bar, tick = _progress(console)
@@ -117,14 +117,25 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
         if session is not None:
             session.stop()
     write_outputs(result, out, force=force, protect=protect)
-    for note in result.notes:
-        if note.startswith("warning:"):
-            print(f"cutscan: {note}", file=sys.stderr)
     if not quiet:
-        console.print(terminal_table(result.to_dict(), spec.top, console.width))
+        results = result.to_dict()
+        if console.is_terminal:
+            console.print(terminal_table(results, spec.top, console.width))
+        else:
+            print(plain_lines(results, spec.top))
         console.print(f"[dim]{CAUTION}[/]")
         console.print(f"Wrote {out}/results.json, candidates.csv, report.html, results.md and bins.csv")
+    print_warnings(result.warnings, result.notes)
     return 0
+
+
+def print_warnings(warnings, notes=()) -> None:
+    """Every warning, after the table, on stderr (also with --quiet): one paragraph each."""
+    for w in warnings:
+        print(f"cutscan: warning [{w['kind']}]: {w['message']}", file=sys.stderr)
+    for n in notes:
+        text = n[len("warning: "):] if n.startswith("warning: ") else n
+        print(f"cutscan: note: {text}", file=sys.stderr)
 
 
 def _spark_session(spec):
@@ -248,6 +259,10 @@ def _check(args) -> int:
         stem = safe if len(results) == 1 else f"{safe}.{res.treatment}"
         write_figure(res, out / f"{stem}.timeline.png", min_cell)
     write_json({"version": 1, "checks": [to_dict(r, min_cell) for r in results]}, target)
+    if len(results) > 1 and args.treatment is None and not results[0].rule.treatments:
+        console.print(f"Rule '{results[0].rule.id}' lists no treatments, so all {len(results)} "
+                      "treatments of its running variable are shown; name its own with "
+                      "treatments = [...] in the catalogue, or pass --treatment T.")
     console.print(f"[dim]{CAUTION}[/]")
     console.print(f"Wrote {target} and the timeline figure(s) in {out}")
     return 0
@@ -304,6 +319,12 @@ def _guarded(args) -> int:
             raise
         print(f"cutscan: {exc}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # the reader of a pipe (head, less) stopped early: nothing is wrong with the scan
+        import os
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print("cutscan: interrupted; no partial output was written (an existing output folder "
               "is left as it was).", file=sys.stderr)

@@ -18,7 +18,7 @@ import pyarrow.dataset as ds
 
 from .errors import ColumnNotFoundError, InputError
 from .parsing import (DateParser, check_not_temporal, csv_conversion_message, drop_codes,
-                      split_codes, text_to_numbers, to_timestamps)
+                      text_to_numbers, to_timestamps)
 
 BATCH_ROWS = 1_000_000
 
@@ -105,12 +105,16 @@ def _arrow_reason(exc: Exception) -> str:
 
 
 def open_table(source, name: str | None = None, text_columns=()) -> Table:
-    """Open a file path, a folder of Parquet files, a pandas DataFrame or a pyarrow Table.
+    """Open a file path, a folder of Parquet files, a pandas DataFrame, a pyarrow Table or Dataset.
 
     ``text_columns`` are read as text from CSV files (see :func:`_csv_format`).
     """
     if isinstance(source, pa.Table):
         return _from_arrow(source, name or "<pyarrow Table>")
+    if isinstance(source, pa.RecordBatch):
+        return _from_arrow(pa.Table.from_batches([source]), name or "<pyarrow RecordBatch>")
+    if isinstance(source, ds.Dataset):
+        return _from_dataset(source, name or "<pyarrow Dataset>")
     if _is_pandas(source):
         return _from_pandas(source, name or "<pandas DataFrame>")
     path = Path(source)
@@ -154,12 +158,57 @@ def _from_arrow(table: pa.Table, name: str) -> Table:
     return Table(name, list(table.column_names), batches, table.num_rows)
 
 
-def _from_pandas(df, name: str) -> Table:
+def _from_dataset(dataset, name: str) -> Table:
     def batches(cols, rows):
+        yield from dataset.to_batches(columns=cols, batch_size=rows)
+    return Table(name, list(dataset.schema.names), batches)
+
+
+def _from_pandas(df, name: str) -> Table:
+    """A pandas DataFrame of any dtypes: NumPy, nullable (Int64, boolean, Float64), categorical,
+    pyarrow-backed (including text columns whose Arrow data are chunked) and object columns."""
+    names = [str(c) for c in df.columns]
+    dup = sorted({c for c in names if names.count(c) > 1})
+    if dup:
+        raise InputError(f"{name}: column name {dup[0]!r} appears more than once; rename the "
+                         "columns so that each name is unique.")
+    by_name = dict(zip(names, range(len(names))))
+
+    def batches(cols, rows):
+        idx = [by_name[c] for c in cols]
         for start in range(0, max(len(df), 1), rows):
-            part = df.iloc[start:start + rows][cols]
-            yield pa.RecordBatch.from_pandas(part, preserve_index=False)
-    return Table(name, [str(c) for c in df.columns], batches, len(df))
+            part = df.iloc[start:start + rows, idx]
+            part.columns = cols
+            yield _batch_from_pandas(part, name)
+    return Table(name, names, batches, len(df))
+
+
+def _batch_from_pandas(df, name: str) -> pa.RecordBatch:
+    """One RecordBatch from a DataFrame, column by column (one array each, never chunked)."""
+    cols = [str(c) for c in df.columns]
+    arrays = [_arrow_column(df.iloc[:, i], c, name) for i, c in enumerate(cols)]
+    return pa.RecordBatch.from_arrays(arrays, names=cols)
+
+
+def _arrow_column(series, column: str, name: str) -> pa.Array:
+    """A pandas Series as one Arrow array; object columns of mixed types are read as text."""
+    try:
+        arr = pa.array(series, from_pandas=True)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, TypeError, ValueError):
+        try:
+            text = [None if v is None or (isinstance(v, float) and v != v) else str(v)
+                    for v in series.tolist()]
+            arr = pa.array(text, type=pa.string())
+        except Exception as exc:
+            raise InputError(f"{name}: column '{column}' (dtype {series.dtype}) cannot be read: "
+                             f"{exc}; convert it to numbers or text first.") from None
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    if pa.types.is_string_view(arr.type):
+        arr = arr.cast(pa.large_string())
+    if pa.types.is_dictionary(arr.type) and pa.types.is_string_view(arr.type.value_type):
+        arr = arr.dictionary_decode().cast(pa.large_string())
+    return arr
 
 
 def _from_pandas_reader(path: Path, fmt: str) -> Table:
@@ -180,12 +229,29 @@ def _from_pandas_reader(path: Path, fmt: str) -> Table:
         with reader(rows) as r:
             for chunk in r:
                 chunk.columns = [str(c) for c in chunk.columns]
-                yield pa.RecordBatch.from_pandas(chunk[cols], preserve_index=False)
-    return Table(str(path), columns, batches)
+                yield _batch_from_pandas(chunk[cols], str(path))
+    table = Table(str(path), columns, batches)
+    table.value_labels = _stata_labels(path) if fmt == "stata" else {}
+    return table
+
+
+def _stata_labels(path: Path) -> dict:
+    """Value labels of a Stata file per column: {column: {code: label}} (empty when none)."""
+    import pandas as pd
+    try:
+        with pd.read_stata(path, iterator=True) as r:
+            labels = r.value_labels()
+            names = getattr(r, "_lbllist", None) or []
+            columns = getattr(r, "_varlist", None) or []
+    except Exception:       # labels are a convenience: a file pandas reads without them still scans
+        return {}
+    return {str(c): {float(k): str(v) for k, v in labels[n].items()}
+            for c, n in zip(columns, names) if n and n in labels}
 
 
 # ---------------------------------------------------------------------- conversion
-def numeric(batch: pa.RecordBatch, column: str, source: str, role: str, codes=()) -> np.ndarray:
+def numeric(batch: pa.RecordBatch, column: str, source: str, role: str, codes=(),
+            reader=None) -> np.ndarray:
     """A batch column as float64 (missing → NaN); booleans become 0/1.
 
     Text is parsed by :func:`scanner.parsing.text_to_numbers` (numbers, thousands separators,
@@ -202,8 +268,8 @@ def numeric(batch: pa.RecordBatch, column: str, source: str, role: str, codes=()
         arr = pc.cast(arr, pa.float64())
     elif pa.types.is_null(t):
         return np.full(len(arr), np.nan)
-    elif pa.types.is_string(t) or pa.types.is_large_string(t):
-        return text_to_numbers(arr, column, source, role, codes)
+    elif pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+        return text_to_numbers(arr, column, source, role, codes, reader)
     else:
         check_not_temporal(t, column, source, role)
         raise InputError(f"{source}: {role} column '{column}' has type {t}; it must be numeric "
@@ -234,56 +300,3 @@ def period_codes(batch: pa.RecordBatch, column: str, source: str,
     quarters = pc.quarter(arr).to_numpy(zero_copy_only=False).astype(float)
     code = years * 4 + quarters - 1
     return np.where(np.isnan(code), -1, code).astype(np.int32)
-
-
-# ---------------------------------------------------------------------- spec-driven cleaning
-def cleaned(table: Table, codes: dict, roles: dict, date: str | None = None,
-            date_format: str | None = None) -> Table:
-    """``table`` with declared missing codes applied and the date column parsed, batch by batch.
-
-    ``codes`` maps a column to its missing codes; ``roles`` maps it to its role (for messages).
-    Coded columns leave as float64, the date column as timestamps; one :class:`DateParser` serves
-    every batch, so the day/month order cannot change part-way through a file.  The number of
-    values set missing by a code is counted per column in the returned table's ``coded``.
-    """
-    if not codes and not date:
-        return table
-    parser = DateParser(date, table.name, date_format) if date else None
-    counts = dict.fromkeys(codes, 0)
-
-    def batches(cols, rows):
-        for b in table.batches(cols, rows):
-            names = b.schema.names
-            arrays = list(b.columns)
-            for c, cc in codes.items():
-                if c in names:
-                    i = names.index(c)
-                    with_codes = numeric(b, c, table.name, roles.get(c, "scanned"), cc)
-                    counts[c] += _code_hits(b.column(i), with_codes, cc, c, table.name, roles)
-                    arrays[i] = pa.array(with_codes, from_pandas=True)
-            if parser and date in names:
-                i = names.index(date)
-                arrays[i] = to_timestamps(arrays[i], date, table.name, parser)
-            yield pa.RecordBatch.from_arrays(arrays, names=names)
-    out = Table(table.name, table.columns, batches, table.num_rows)
-    out.coded = counts
-    return out
-
-
-def _code_hits(arr, with_codes, codes, column, source, roles) -> int:
-    """How many cells of one batch column a declared code turned into missing."""
-    text, _ = split_codes(codes)
-    t = arr.type.value_type if pa.types.is_dictionary(arr.type) else arr.type
-    if pa.types.is_string(t) or pa.types.is_large_string(t):
-        s = pc.utf8_trim_whitespace(arr.cast(pa.string()))
-        hits = int(pc.sum(pc.is_in(s, value_set=pa.array(sorted(text)))).as_py() or 0) if text else 0
-        base = text_to_numbers(arr, column, source, roles.get(column, "scanned"), sorted(text))
-        return hits + int(np.isnan(with_codes).sum() - np.isnan(base).sum())
-    return int(np.isnan(with_codes).sum() - np.isnan(numeric_plain(arr)).sum())
-
-
-def numeric_plain(arr) -> np.ndarray:
-    """A numeric or boolean array as float64 without any codes."""
-    if pa.types.is_dictionary(arr.type):
-        arr = arr.dictionary_decode()
-    return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(np.float64, copy=False)

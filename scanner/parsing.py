@@ -39,7 +39,7 @@ def _examples(values, k: int = 3) -> str:
 
 
 def _is_text(t) -> bool:
-    return pa.types.is_string(t) or pa.types.is_large_string(t)
+    return pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t)
 
 
 def split_codes(codes) -> tuple[set, set]:
@@ -56,7 +56,91 @@ def split_codes(codes) -> tuple[set, set]:
     return text, nums
 
 
-def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=()) -> np.ndarray:
+_DEC_COMMA = r"^[+-]?(\d{1,3}(\.\d{3})+|\d*),\d+$"      # 4,8  -0,25  1.234,5
+_DEC_DOT = r"^[+-]?\d*\.\d+$"                               # 4.8  .25
+_WORDLIKE_MISSING = ("unknown", "unk", "missing", "not known", "nk", "not recorded", "nr",
+                     "not done", "nd", "refused", "?", "-", "--", "n.a.", "not available")
+
+
+class NumberReader:
+    """How one table's text cells become numbers; remembers each column's decimal mark.
+
+    ``decimal`` is the spec's ``data.decimal``: ``","``, ``"."`` or None (detect per column).
+    Detection: a cell such as ``4,8`` or ``1.234,5`` (a comma that cannot be a thousands
+    separator) sets the column to decimal commas, unless the column also holds ``4.8``-style
+    decimals, which is refused.  A column read with thousands separators (``1,234``) in earlier
+    rows that shows a decimal comma later is refused too: the earlier rows were read the other
+    way.  ``comma_cells`` counts the cells read with a decimal comma, per column.
+    """
+
+    def __init__(self, decimal: str | None = None, source: str = ""):
+        self.decimal, self.source = decimal, source
+        self.mode: dict[str, str] = {}
+        self.thousands: dict[str, str] = {}          # column -> first cell read as thousands
+        self.comma_cells: dict[str, int] = {}
+        self.example: dict[str, str] = {}             # column -> one cell read with a comma
+
+    def decide(self, column: str, s: pa.Array, role: str) -> str:
+        """The decimal mark of ``column`` given one batch of trimmed present cells."""
+        if self.decimal:
+            return self.decimal
+        if column in self.mode:
+            return self.mode[column]
+        comma = pc.fill_null(pc.match_substring_regex(s, _DEC_COMMA), False)
+        thousands = pc.fill_null(pc.match_substring_regex(s, _THOUSANDS), False)
+        evidence = pc.and_(comma, pc.invert(thousands))
+        if not pc.any(evidence).as_py():
+            if pc.any(thousands).as_py() and column not in self.thousands:
+                self.thousands[column] = pc.filter(s, thousands)[0].as_py()
+            return "."
+        example = pc.filter(s, evidence)[0].as_py()
+        dots = pc.fill_null(pc.match_substring_regex(s, _DEC_DOT), False)
+        if pc.any(dots).as_py():
+            raise InputError(
+                f"{self.source}: {role} column '{column}' mixes decimal points and decimal commas "
+                f"({pc.filter(s, dots)[0].as_py()!r} and {example!r}); set [data] decimal = \",\" "
+                "or decimal = \".\" in the spec to say which one the file uses.")
+        if column in self.thousands:
+            raise InputError(
+                f"{self.source}: {role} column '{column}' was read with thousands separators "
+                f"({self.thousands[column]!r}) in earlier rows but holds {example!r}, a decimal "
+                "comma, further down; set [data] decimal = \",\" (or \".\") in the spec.")
+        self.mode[column] = ","
+        return ","
+
+
+def _bad_text_advice(bad: list, column: str, decimal: str) -> str:
+    """The fix for cells that are not numbers; real values are never offered as missing codes."""
+    uniq = list(dict.fromkeys(str(b) for b in bad))
+    comma = [b for b in uniq if re.match(_DEC_COMMA, b) or re.match(r"^[+-]?[\d.,]+$", b)]
+    missing_like = [b for b in uniq if b.strip().lower() in _WORDLIKE_MISSING]
+    numberish = [b for b in uniq if b not in comma and re.search(r"\d", b)]
+    words = [b for b in uniq if b not in comma and b not in missing_like and b not in numberish]
+    tips = []
+    if comma:
+        tips.append(f"{comma[0]!r} looks like a number with a decimal comma: set [data] decimal = "
+                    f"\",\" in the spec" if decimal != "," else
+                    f"{comma[0]!r} is not a number even with decimal commas: fix those cells")
+    if words:
+        pairs = ", ".join(f"{_toml_key(w)} = {1 - i}" for i, w in enumerate(words[:2]))
+        tips.append(f"text categories such as {words[0]!r} are values, not missing: map them to "
+                    f"numbers with [data.value_map] {column} = {{{pairs}}}")
+    if numberish:
+        tips.append(f"annotated numbers such as {numberish[0]!r} are values, not missing: fix "
+                    f"those cells, or map them with [data.value_map] {column} = "
+                    f"{{{_toml_key(numberish[0])} = <number>}}")
+    if missing_like:
+        tips.append(f"if {missing_like[0]!r} means 'not recorded', declare it missing: "
+                    f"[data.missing_by_column] {column} = [{missing_like[0]!r}]")
+    return "; ".join(tips)
+
+
+def _toml_key(text: str) -> str:
+    return text if re.match(r"^[A-Za-z0-9_-]+$", text) else '"' + text.replace('"', '\\"') + '"'
+
+
+def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=(),
+                    reader: NumberReader | None = None) -> np.ndarray:
     """Parse a text column as float64 or refuse it (see module docstring for the rules)."""
     text_codes, num_codes = split_codes(codes)
     s = pc.utf8_trim_whitespace(arr.cast(pa.string()))
@@ -74,32 +158,82 @@ def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=()
         one = pc.is_in(low, value_set=pa.array(TRUE_TOKENS + ("1",))).to_numpy(zero_copy_only=False)
         vals = one.astype(float)
     else:
-        commas = pc.fill_null(pc.match_substring_regex(s, _THOUSANDS), False)
-        cleaned = pc.if_else(commas, pc.replace_substring(s, ",", ""), s)
-        vals = np.full(len(arr), np.nan)
+        reader = reader or NumberReader(source=source)
+        shown = pc.filter(s, present)
+        mark = reader.decide(column, shown, role)
+        if mark == ",":
+            is_comma = pc.fill_null(pc.match_substring_regex(s, _DEC_COMMA), False)
+            hits = int(pc.sum(pc.and_(is_comma, present)).as_py() or 0)
+            reader.comma_cells[column] = reader.comma_cells.get(column, 0) + hits
+            if hits and column not in reader.example:
+                reader.example[column] = pc.filter(s, pc.and_(is_comma, present))[0].as_py()
+            cleaned = pc.if_else(is_comma, pc.replace_substring(
+                pc.replace_substring(s, ".", ""), ",", "."), s)
+        else:
+            commas = pc.fill_null(pc.match_substring_regex(s, _THOUSANDS), False)
+            cleaned = pc.if_else(commas, pc.replace_substring(s, ",", ""), s)
         ok_mask = present.to_numpy(zero_copy_only=False)
-        raw = cleaned.to_numpy(zero_copy_only=False)
-        bad = []
-        for i in np.flatnonzero(ok_mask):
-            try:
-                vals[i] = float(raw[i])
-            except (TypeError, ValueError):
-                bad.append(raw[i])
-                if len(bad) > 50:
-                    break
+        vals = np.full(len(arr), np.nan)
+        try:
+            got = pc.cast(pc.filter(cleaned, present), pa.float64())
+            vals[ok_mask] = got.to_numpy(zero_copy_only=False)
+            bad = []
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            raw = cleaned.to_numpy(zero_copy_only=False)
+            bad = []
+            for i in np.flatnonzero(ok_mask):
+                try:
+                    vals[i] = float(raw[i])
+                except (TypeError, ValueError):
+                    bad.append(raw[i])
+                    if len(bad) > 50:
+                        break
         if bad:
-            hint = (" A comma that is not a thousands separator (e.g. '1,5') may be a decimal "
-                    "comma: convert the file to use '.' for decimals." if any("," in b for b in bad) else "")
             raise InputError(
                 f"{source}: {role} column '{column}' holds text that is not a number "
-                f"({_examples(bad)}); {role} columns must be numeric — fix those cells, or declare "
-                f"the codes as missing in the spec: [data.missing_by_column] {column} = "
-                f"[{_examples(bad, 1).rstrip(', .')}].{hint}")
+                f"({_examples(bad)}); {role} columns must be numeric — "
+                f"{_bad_text_advice(bad, column, mark)}.")
     if num_codes:
         vals[np.isin(vals, list(num_codes))] = np.nan
     keep = present.to_numpy(zero_copy_only=False)
     out[keep] = vals[keep]
     return out
+
+
+def apply_value_map(arr: pa.Array, mapping: dict, column: str, source: str) -> tuple[np.ndarray, int]:
+    """Cells of ``arr`` replaced by the numbers of ``mapping`` (keys: cell text, any case).
+
+    Numeric cells are looked up by their shortest text (``1.0`` → ``"1"``).  Missing cells stay
+    missing; a present cell with no entry is refused with the fix.  Returns the values and the
+    number of cells mapped.
+    """
+    if pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_decode()
+    if _is_text(arr.type):
+        cells = pc.utf8_trim_whitespace(arr.cast(pa.string())).to_pylist()
+    elif pa.types.is_boolean(arr.type):
+        cells = [None if v is None else ("1" if v else "0") for v in arr.to_pylist()]
+    else:
+        cells = [None if v is None or v != v else (f"{v:g}" if isinstance(v, float) else str(v))
+                 for v in arr.to_pylist()]
+    table = {str(k).strip().lower(): float(v) for k, v in mapping.items()}
+    out = np.full(len(cells), np.nan)
+    unmapped, hits = [], 0
+    for i, c in enumerate(cells):
+        if c is None or c.lower() in NULL_TOKENS:
+            continue
+        v = table.get(c.lower())
+        if v is None:
+            unmapped.append(c)
+            continue
+        out[i] = v
+        hits += 1
+    if unmapped:
+        raise InputError(
+            f"{source}: column '{column}' holds {_examples(unmapped)}, which data.value_map "
+            f"does not list (it maps {', '.join(map(repr, mapping))}); add an entry for each "
+            f"value, e.g. [data.value_map] {column} = {{{_toml_key(unmapped[0])} = <number>, ...}}.")
+    return out, hits
 
 
 def drop_codes(values: np.ndarray, codes) -> np.ndarray:
@@ -263,6 +397,6 @@ def csv_conversion_message(exc: Exception, path, columns: list[str]) -> str | No
     i, row, typ, value = int(m.group(1)), m.group(2), m.group(3), m.group(4)
     name = columns[i] if i < len(columns) else f"#{i}"
     where = f"at line {row}" if row else "further down"
+    advice = _bad_text_advice([value], name, ".")
     return (f"{path}: column '{name}' holds {_KIND.get(typ, typ)} in the first rows but {value!r} "
-            f"{where}; fix that cell, or declare it missing in the spec: "
-            f"[data.missing_by_column] {name} = [{value!r}] (text codes are read from the text).")
+            f"{where}; fix that cell" + (f", or: {advice}." if advice else "."))

@@ -21,9 +21,11 @@ from .errors import InputError
 from .estimate import fit_jump, side_data
 from .estimate.inference import inference_fields
 from .estimate.select import select_bandwidth
-from .guards import (add_cleaning_info, checked_rules, evaluate_contained, explain_nan,
-                     keep_first, roles, text_columns, unit_repeats)
-from .io import cleaned, open_table
+from .guards import (add_cleaning_info, checked_rules, cleaning_for, evaluate_contained,
+                     explain_nan, keep_first, roles, text_columns, unit_repeats)
+from . import quality
+from .cleaning import cleaned
+from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
@@ -41,6 +43,7 @@ class ScanResult:
     notes: list = field(default_factory=list)
     created: str = ""
     search: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)     # {"kind", "column", "message"}, in order found
 
     @property
     def candidates(self):
@@ -69,6 +72,7 @@ class ScanResult:
 
     def summary(self, top: int = 10) -> str:
         lines = [f"{self.spec.title}: {len(self.rows)} candidates from {self.data['rows_read']:,} rows"]
+        lines += [f"warning [{w['kind']}]: {w['message']}" for w in self.warnings]
         for r in self.rows[:top]:
             lines.append(f"{r['rank']:>3}. {r['running']} × {r['treatment']} at {r['cutoff']:g} "
                          f"[{r['origin']}] jump {r['jump']:+.3f} q={r['q_value']:.2g} "
@@ -100,6 +104,11 @@ def _check_columns(table, spec: ScanSpec) -> None:
         table.require(spec.unit, "unit")
     for c in spec.missing_by_column:
         table.require(c, "data.missing_by_column")
+    for c in spec.value_map:
+        table.require(c, "data.value_map")
+    for r in spec.running:
+        if r.unit_column:
+            table.require(r.unit_column, "unit_column")
     for r in spec.running:
         for t in r.treatments or ():
             if t not in spec.treatments:
@@ -111,6 +120,8 @@ def open_for_scan(spec: ScanSpec, data=None):
     """Open the table a spec names (or ``data``), check its columns and wrap it for cleaning.
 
     Returns ``(table, engine, notes)``; a Spark DataFrame passes through to the Spark engine.
+    The cleaned table carries ``quality``: the warnings found so far and the profile's findings
+    (see :mod:`scanner.quality`), completed with exact counts after the pass.
     """
     notes = []
     engine = spec.engine
@@ -120,14 +131,10 @@ def open_for_scan(spec: ScanSpec, data=None):
         from .events import open_spark_registry
         frame = open_spark_registry(spec, data)
         return frame, "spark", notes
-    if spec.layout is not None:
+    if spec.layout is not None:     # measurements and events: rows built by DuckDB
         from .events import open_registry
         table = open_registry(spec, data)
-        _check_columns(table, spec)
-        out = cleaned(table, spec.codes(), roles(spec), spec.date, None)
-        out.registry = table.registry
-        return out, engine, notes
-    if data is None:
+    elif data is None:
         if not spec.source:
             raise InputError(f"{spec.path or '<spec>'}: no data: set data.source in the spec "
                              "or pass data= to scan().")
@@ -135,10 +142,13 @@ def open_for_scan(spec: ScanSpec, data=None):
     else:
         table = open_table(data)
     _check_columns(table, spec)
-    warn = unit_repeats(table, spec)
-    if warn:
-        notes.append(warn)
-    return cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format), engine, notes
+    # Index rows of one person repeat by design with index = "each"; "first" has one per person.
+    repeated = unit_repeats(table, spec) if spec.layout is None else []
+    cleaning, sources = cleaning_for(table, spec)
+    out = cleaned(table, spec.codes(), roles(spec), spec.date, spec.date_format, cleaning)
+    out.quality = {"repeated": repeated, "sources": sources, "found": quality.plan(out, spec)}
+    out.registry = getattr(table, "registry", None)
+    return out, engine, notes
 
 
 def scan(spec_or_path, data=None, progress=None) -> ScanResult:
@@ -179,6 +189,8 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if spec.keep == "first" and engine == "spark":
         raise InputError(f"{spec.path or '<spec>'}: keep = 'first' is not available with the Spark "
                          "engine; deduplicate the DataFrame first (e.g. a window over data.unit).")
+    cleaning = getattr(table, "cleaning", None)
+    checks = getattr(table, "quality", None)
     if spec.keep == "first" and engine == "local":
         table, deduped, no_unit = keep_first(table, spec, plan.needed)
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
@@ -226,7 +238,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rows = finalize(rows, spec.alpha, list(extra_p) + screen_p)
     if screen is not None:
         search["screen"] = screen
-    data_info = _data_info(binned, spec, deduped)
+    data_info = _data_info(binned, spec, deduped, getattr(table, "blanked", {}), cleaning)
     registry = getattr(table, "registry", None)
     if registry is not None:
         from .events import layout_dropped
@@ -235,20 +247,49 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                                   for k, v in registry.index_rows().items()]
         registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
+    warnings = collect_warnings(spec, checks, cleaning, binned.stats, rules)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
-                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)
+                      dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search,
+                      warnings)
 
 
-def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:
+def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> list[dict]:
+    """Every data-quality warning of the scan, in the order found (scanner.quality)."""
+    from .candidates import rule_cutoff
+    out = []
+    if cleaning is not None and checks is not None:
+        out += quality.parse_warnings(cleaning, spec, checks["sources"])
+        out += quality.findings_to_warnings(checks["found"], cleaning, stats, spec)
+        out += checks["repeated"]
+    out += quality.rule_warnings(spec, rules, stats, rule_cutoff)
+    out += quality.no_variation(spec, stats)
+    return out
+
+
+def _data_info(binned, spec: ScanSpec, deduped: int, blanked=None, cleaning=None) -> dict:
+    blanked = blanked or {}
     dropped = []
     if deduped:
         dropped.append({"column": spec.unit, "treatment": None,
                         "reason": "repeat rows of a unit (keep = first)", "rows": deduped})
     for r in spec.running:
         col = r.column
-        if binned.missing[col]:
+        # Values a cleaning step set missing are counted under their own reason, not twice.
+        own = []
+        if blanked.get(col):
+            own.append(("not the unit's first value (keep = first)", blanked[col]))
+        if cleaning is not None and spec.keep != "first":
+            hits = sum(cleaning.sentinel_hits.get(col, {}).values())
+            if hits:
+                own.append(("missing-value code outside the plausible range", hits))
+            if cleaning.out_of_range.get(col):
+                own.append(("value fits only another unit", cleaning.out_of_range[col]))
+        plain = binned.missing[col] - sum(k for _, k in own)
+        if plain:
             dropped.append({"column": col, "treatment": None, "reason": "running variable missing",
-                            "rows": binned.missing[col]})
+                            "rows": plain})
+        for why, k in own:
+            dropped.append({"column": col, "treatment": None, "reason": why, "rows": k})
         if binned.nonfinite[col]:
             dropped.append({"column": col, "treatment": None,
                             "reason": "running variable not finite", "rows": binned.nonfinite[col]})

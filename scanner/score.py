@@ -61,6 +61,7 @@ import math
 import numpy as np
 
 from .diagnostics.heaping import HEAP_P, HEAP_RATIO
+from .textfmt import format_p, format_p_eq  # noqa: F401  (one formatter for every output)
 
 WEIGHTS = {"strength": 0.30, "density": 0.15, "balance": 0.15, "support": 0.10, "placebo": 0.10,
            "heaping": 0.10, "stability": 0.10}
@@ -222,20 +223,6 @@ def _fmt_f(f):
     if f is None or not np.isfinite(f):
         return "n/a"
     return "> 9,999" if f > 9999 else f"{f:.1f}"
-
-
-def format_p(p, missing: str = "n/a") -> str:
-    """A p- or q-value for people: two significant digits, '< 0.0001' below that floor
-    (so an underflowed 0 never reads as certainty), ``missing`` for None or NaN."""
-    if p is None or not np.isfinite(p):
-        return missing
-    return f"{p:.2g}" if p >= 1e-4 else "< 0.0001"
-
-
-def format_p_eq(name: str, p, missing: str = "n/a") -> str:
-    """'p = 0.012', or 'p < 0.0001' for a tiny p (never 'p = < 0.0001')."""
-    text = format_p(p, missing)
-    return f"{name} {text}" if text.startswith("<") else f"{name} = {text}"
 
 
 def reasons(c: dict, alpha: float) -> list[str]:

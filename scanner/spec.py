@@ -10,22 +10,10 @@ from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
 from .errors import SpecError, closest, parse_toml, read_text
-from .events.layout import DATA_KEYS, RUNNING_KEYS, parse_layout
+from .events.layout import RUNNING_KEYS, parse_layout
+from .spec_schema import known
 
-KNOWN = {
-    "": {"title", "data", "running", "treatments", "covariates", "outcomes", "rules", "search",
-         "output", "events", "screen"},
-    "data": {"source", "date", "unit", "keep", "engine", "batch_rows", "missing",
-             "missing_by_column", "date_format"} | DATA_KEYS,
-    "running": {"column", "quantity", "unit", "bin_width", "treatments"} | RUNNING_KEYS,
-    "treatments": {"columns"},
-    "covariates": {"columns"},
-    "outcomes": {"columns", "effects"},
-    "rules": {"catalogues"},
-    "search": {"round_numbers", "discover", "confirm", "alpha", "kernel", "degree", "bandwidth",
-               "seed", "min_rows", "per_side"},
-    "output": {"min_cell", "top"},
-}
+KNOWN = known()          # section -> valid keys (scanner.spec_schema, also docs/spec.md)
 
 
 @dataclass(frozen=True)
@@ -35,6 +23,8 @@ class RunningSpec:
     unit: str | None = None
     bin_width: float | None = None
     treatments: tuple[str, ...] | None = None
+    unit_column: str | None = None      # a column holding each row's unit
+    unit_map: dict = field(default_factory=dict)   # spelling in unit_column -> unit
 
 
 @dataclass(frozen=True)
@@ -71,6 +61,8 @@ class ScanSpec:
     missing_by_column: dict = field(default_factory=dict)   # column -> extra missing codes
     date_format: str | None = None      # strptime format of data.date when it is ambiguous text
     layout: object = None               # scanner.events.Layout for long-format registries
+    decimal: str | None = None          # "," or "." for numbers stored as text; None = detect
+    value_map: dict = field(default_factory=dict)   # column -> {cell text: number}
 
     def codes(self) -> dict:
         """Declared missing codes per scanned column (global codes plus the column's own)."""
@@ -196,6 +188,58 @@ def _missing(data: dict, where: str, text: str):
     return codes, by_col, fmt
 
 
+def _unit_column(r: dict, where: str, text: str):
+    """running.unit_column and unit_map, checked against the units known for the quantity."""
+    from .units import lookup, units_for
+    uc, umap = r.get("unit_column"), r.get("unit_map", {})
+    if uc is None:
+        if umap:
+            raise _err(f"{where}:{_line_of(text, 'unit_map')}",
+                       "unit_map needs unit_column = \"<column holding each row's unit>\".")
+        return None, {}
+    if not isinstance(uc, str):
+        raise _err(f"{where}:{_line_of(text, 'unit_column')}", "unit_column must be a column name.")
+    if not (r.get("quantity") and r.get("unit")):
+        raise _err(f"{where}:{_line_of(text, 'unit_column')}",
+                   f"unit_column = {uc!r} needs quantity and unit in the same [[running]] table: "
+                   "rows are converted to unit, using the quantity's conversions.")
+    if not isinstance(umap, dict) or not all(isinstance(v, str) for v in umap.values()):
+        raise _err(f"{where}:{_line_of(text, 'unit_map')}",
+                   "unit_map must be a table of spelling = unit, e.g. unit_map = { pct = \"%\" }.")
+    q = r["quantity"]
+    for spelling, unit in umap.items():
+        if lookup(unit, q) is None:
+            known_units = ", ".join(units_for(q)) or "none known"
+            raise _err(f"{where}:{_line_of(text, 'unit_map')}",
+                       f"unit_map maps {spelling!r} to {unit!r}, which is not a unit of {q} "
+                       f"(units of {q}: {known_units}).")
+    return uc, {str(k).strip().lower(): v for k, v in umap.items()}
+
+
+def _decimal(data: dict, where: str, text: str):
+    dec = data.get("decimal")
+    if dec is not None and dec not in (",", "."):
+        raise _err(f"{where}:{_line_of(text, 'decimal')}",
+                   f"decimal = {dec!r} must be \",\" (decimal commas) or \".\" (points).")
+    return dec
+
+
+def _value_map(data: dict, where: str, text: str) -> dict:
+    vm = data.get("value_map", {})
+    line = f"{where}:{_line_of(text, 'value_map')}"
+    example = "value_map = { statin = { yes = 1, no = 0 } }"
+    if not isinstance(vm, dict):
+        raise _err(line, f"data.value_map must be a table of column = {{ text = number }}, e.g. {example}.")
+    out = {}
+    for col, m in vm.items():
+        ok = isinstance(m, dict) and m and all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in m.values())
+        if not ok:
+            raise _err(line, f"value_map.{col} = {m!r} must map cell text to numbers, e.g. {example}.")
+        out[str(col)] = {str(k): float(v) for k, v in m.items()}
+    return out
+
+
 def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | None = None) -> ScanSpec:
     """Validate a spec already parsed from TOML (or built as a dict)."""
     _check_keys(raw, "", where, text)
@@ -233,8 +277,9 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         if tr is not None and not (isinstance(tr, list) and all(isinstance(t, str) for t in tr)):
             raise _err(f"{where}:{_line_of(text, 'treatments')}",
                        "running.treatments must be a list of treatment column names.")
+        uc, umap = _unit_column(r, where, text)
         running.append(RunningSpec(r["column"], r.get("quantity"), r.get("unit"),
-                                   float(bw) if bw else None, tuple(tr) if tr else None))
+                                   float(bw) if bw else None, tuple(tr) if tr else None, uc, umap))
     treatments = _columns(raw.get("treatments"), "treatments", where)
     if layout is not None:
         treatments = layout.treatments + treatments
@@ -301,7 +346,8 @@ def parse_spec(raw: dict, where: str = "<spec>", text: str = "", path: str | Non
         degree=int(degree), bandwidth=bw if isinstance(bw, str) else float(bw), per_side=per_side,
         seed=int(search.get("seed", 20261201)), min_rows=int(search.get("min_rows", 50)),
         min_cell=int(min_cell), top=int(output.get("top", 20)), path=path,
-        missing=codes, missing_by_column=by_col, date_format=date_format)
+        missing=codes, missing_by_column=by_col, date_format=date_format,
+        decimal=_decimal(data, where, text), value_map=_value_map(data, where, text))
 
 
 def load_spec(path) -> ScanSpec:

@@ -182,3 +182,76 @@ def convert(value: float, from_unit: str, to_unit: str, quantity: str | None = N
                         f"different things ({a.dimension} vs {b.dimension}).")
     base = a.scale * float(value) + a.offset
     return (base - b.offset) / b.scale
+
+
+# ---------------------------------------------------------------------- plausible ranges
+# Generous limits of values that can be recorded for a living person, in one unit per quantity;
+# the other units of the quantity get the same limits converted through ``convert`` (so HbA1c
+# in mmol/mol inherits the % limits through the IFCC–NGSP master equation).  They serve two
+# checks only: a missing code such as 999 lies outside them, and a value that fits only another
+# unit of the quantity reveals a column holding two units.  Limits are wide on purpose: a value
+# inside them is never changed.
+#   quantity: (low, high, unit, source)
+PLAUSIBLE: dict[str, tuple[float, float, str, str]] = {
+    "hba1c": (3.0, 20.0, "%", "reportable range of NGSP-certified HbA1c methods, about 3–20 % "
+              "(from memory); mmol/mol limits by the IFCC–NGSP master equation"),
+    "egfr": (1.0, 200.0, "mL/min/1.73m2", "CKD-EPI eGFR of adults rarely exceeds 150 (from "
+             "memory); 1–200 is a generous bound (common practice)"),
+    "fasting_glucose": (20.0, 1000.0, "mg/dL", "glucose above 1000 mg/dL or below 20 mg/dL is "
+                        "incompatible with an outpatient visit (from memory)"),
+    "glucose_2h": (20.0, 1000.0, "mg/dL", "as fasting glucose (from memory)"),
+    "glucose": (20.0, 1000.0, "mg/dL", "as fasting glucose (from memory)"),
+    "acr": (0.0, 10000.0, "mg/g", "nephrotic-range albuminuria stays below 10,000 mg/g (from memory)"),
+    "haemoglobin": (2.0, 25.0, "g/dL", "survivable haemoglobin concentrations (from memory)"),
+    "sbp": (40.0, 300.0, "mmHg", "measurable systolic pressures (common practice)"),
+    "dbp": (20.0, 200.0, "mmHg", "measurable diastolic pressures (common practice)"),
+    "ldl": (10.0, 1000.0, "mg/dL", "LDL cholesterol including familial hypercholesterolaemia "
+            "(from memory)"),
+    "total_cholesterol": (30.0, 1500.0, "mg/dL", "total cholesterol (from memory)"),
+    "bmi": (8.0, 100.0, "kg/m2", "body-mass index of living adults (from memory)"),
+    "age": (0.0, 125.0, "years", "oldest verified human age is about 122 years (from memory)"),
+    "gestational_age": (16.0, 47.0, "weeks", "gestational age at birth or visit (common practice)"),
+    "birth_weight": (0.2, 7.5, "kg", "recorded birth weights (from memory)"),
+    "weight": (0.2, 400.0, "kg", "recorded body weights (from memory)"),
+    "t_score": (-8.0, 6.0, "SD", "bone densitometry T-scores (from memory)"),
+    "ascvd_risk": (0.0, 100.0, "% 10-yr risk", "a risk in per cent (definition)"),
+    "income_fpl": (0.0, 10000.0, "% FPL", "income as a percentage of a poverty line (common practice)"),
+    "pack_years": (0.0, 300.0, "pack-years", "smoking history (common practice)"),
+}
+
+
+def plausible_range(quantity: str | None, unit: str | None) -> tuple[float, float] | None:
+    """Plausible (low, high) of ``quantity`` expressed in ``unit``; None when unknown.
+
+    With no ``unit`` the range is given in the quantity's reference unit (the table above).
+    """
+    if not quantity or quantity not in PLAUSIBLE:
+        return None
+    lo, hi, ref, _ = PLAUSIBLE[quantity]
+    if not unit or same_unit(unit, ref):
+        return lo, hi
+    try:
+        a, b = convert(lo, ref, unit, quantity), convert(hi, ref, unit, quantity)
+    except UnitError:
+        return None
+    return (min(a, b), max(a, b))
+
+
+def other_units(quantity: str | None, unit: str | None) -> list[str]:
+    """Units of ``quantity`` other than ``unit`` whose plausible range is known."""
+    if not quantity or quantity not in PLAUSIBLE:
+        return []
+    mine = lookup(unit, quantity) if unit else lookup(PLAUSIBLE[quantity][2], quantity)
+    return [u for u in units_for(quantity) if lookup(u, quantity) != mine]
+
+
+def convert_array(values, from_unit: str, to_unit: str, quantity: str | None = None):
+    """``convert`` for a numpy array (same affine map, applied element by element)."""
+    import numpy as np
+    v = np.asarray(values, dtype=float)
+    if _norm(from_unit) == _norm(to_unit):
+        return v.copy()
+    a, b = lookup(from_unit, quantity), lookup(to_unit, quantity)
+    if a is None or b is None or a.dimension != b.dimension:
+        convert(1.0, from_unit, to_unit, quantity)        # raises the UnitError with its message
+    return ((a.scale * v + a.offset) - b.offset) / b.scale

@@ -288,15 +288,35 @@ def test_T1_text_in_numeric_column(tmp_path, capsys):
     df["age"] = df["age"].astype(str)
     df.loc[[3, 9], "age"] = ["72+", "<5"]
     spec = setup(tmp_path, df=df)
-    refused(capsys, spec, r"(covariate|tracked) column 'age' holds text that is not a number \('72\+', '<5'\); "
-                          r"(covariate|tracked) columns must be numeric .*missing_by_column\] age = \['72\+'\]")
+    err = refused(capsys, spec, r"(covariate|tracked) column 'age' holds text that is not a number "
+                                r"\('72\+', '<5'\); (covariate|tracked) columns must be numeric .*"
+                                r"are values, not missing.*value_map\] age = \{\"72\+\" = <number>\}")
+    assert "missing_by_column" not in err       # a real value is never offered as a missing code
+
+
+def test_T1b_letters_are_mapped_not_declared_missing(tmp_path, capsys):
+    df = frame()
+    df["age"] = np.where(np.arange(len(df)) % 2, "F", "M")
+    spec = setup(tmp_path, df=df)
+    err = refused(capsys, spec, r"column 'age' holds text that is not a number \('M', 'F'\).*"
+                                r"text categories such as 'M' are values, not missing: map them to "
+                                r"numbers with \[data.value_map\] age = \{M = 1, F = 0\}")
+    assert "missing_by_column" not in err
 
 
 def test_T2_decimal_comma(tmp_path, capsys):
+    """Decimal commas are read, with a warning; with decimal = "." they are refused with the
+    key that reads them — never with advice to declare them missing."""
     df = frame()
     df["age"] = df["age"].map(lambda v: f"{v:.1f}".replace(".", ","))
     spec = setup(tmp_path, df=df)
-    refused(capsys, spec, r"holds text that is not a number.*may be a decimal comma")
+    rc = main(["scan", str(spec), "--out", str(tmp_path / "o"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 0 and "warning [decimal_comma]: column 'age'" in err
+    spec = setup(tmp_path, df=df, data='decimal = "."')
+    err = refused(capsys, spec, r"holds text that is not a number.*looks like a number with a "
+                                r"decimal comma: set \[data\] decimal = \",\"")
+    assert "missing_by_column" not in err
 
 
 def test_T3_dates_as_running_variable(tmp_path, capsys):

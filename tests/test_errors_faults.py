@@ -204,7 +204,8 @@ def test_force_is_needed_and_replaces_whole_folder(tmp_path, capsys):
     assert main(["scan", str(spec), "--out", str(out), "--quiet"]) == 2
     assert "add --force" in capsys.readouterr().err
     assert main(["scan", str(spec), "--out", str(out), "--quiet", "--force"]) == 0
-    assert sorted(p.name for p in out.iterdir()) == ["bins.csv", "candidates.csv", "report.html", "results.json", "results.md"]
+    assert sorted(p.name for p in out.iterdir()) == [".figures", "bins.csv", "candidates.csv",
+                                                     "report.html", "results.json", "results.md"]
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
 
 
@@ -254,20 +255,33 @@ def test_repeated_units_warn_without_keep_first(tmp_path):
     spec = write(tmp_path, frame(units=500))
     p = run_cli("scan", spec, "--out", tmp_path / "o", "--quiet")
     assert p.returncode == 0
-    assert "cutscan: warning: column 'person_id' looks like a unit identifier and repeats" in p.stderr
-    notes = json.loads((tmp_path / "o" / "results.json").read_text())["notes"]
-    assert any("data.keep = 'first'" in n for n in notes)
+    assert ("cutscan: warning [repeated_units]: column 'person_id' is named like a unit "
+            "identifier" in p.stderr)
+    warnings = json.loads((tmp_path / "o" / "results.json").read_text())["warnings"]
+    rep = [w for w in warnings if w["kind"] == "repeated_units"]
+    assert rep[0]["column"] == "person_id" and 'data.keep = "first"' in rep[0]["message"]
     declared = write(tmp_path, frame(units=500), data='unit = "person_id"')
     res = scan(declared)
-    assert any("declared as data.unit and repeats" in n for n in res.notes)
+    msg = [w["message"] for w in res.warnings if w["kind"] == "repeated_units"]
+    # the advice never repeats what the spec already says
+    assert len(msg) == 1 and "is data.unit and repeats" in msg[0] and "data.unit =" not in msg[0]
+    first = write(tmp_path, frame(units=500), data='unit = "person_id"\nkeep = "first"')
+    assert [w for w in scan(first).warnings if w["kind"] == "repeated_units"] == []
 
 
-def test_no_warning_for_columns_that_repeat_by_design(tmp_path):
+def test_repeated_units_found_by_repetition_not_name(tmp_path):
+    """An identifier named like nothing in particular is found by its repetition pattern; a
+    clinic code (few values, many rows each) is not an identifier."""
     df = frame(n=800)
     df.insert(0, "clinic_id", [f"C{i % 5}" for i in range(len(df))])
-    df.insert(0, "visit_id", [f"V{i % 400}" for i in range(len(df))])
+    df.insert(0, "ref", [f"R{i % 400:04d}" for i in range(len(df))])
     res = scan(write(tmp_path, df))
-    assert not any(n.startswith("warning:") for n in res.notes)
+    rep = [w for w in res.warnings if w["kind"] == "repeated_units"]
+    assert [w["column"] for w in rep] == ["ref"] and rep[0]["count"] == 400
+    assert "if it identifies persons" in rep[0]["message"]
+    df = frame(n=800)
+    df.insert(0, "clinic_id", [f"C{i % 5}" for i in range(len(df))])
+    assert [w for w in scan(write(tmp_path, df)).warnings if w["kind"] == "repeated_units"] == []
 
 
 def test_no_warning_when_units_are_unique(tmp_path):
@@ -275,3 +289,4 @@ def test_no_warning_when_units_are_unique(tmp_path):
     df.insert(0, "person_id", [f"VM-{i}" for i in range(len(df))])
     res = scan(write(tmp_path, df))
     assert not any(n.startswith("warning:") for n in res.notes)
+    assert not [w for w in res.warnings if w["kind"] == "repeated_units"]

@@ -42,7 +42,8 @@ def inputs(tmp):
 
 
 def snapshot(folder: Path) -> dict:
-    return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*"))
+            if p.is_file()}
 
 
 def leftovers(parent: Path, name: str) -> list:

@@ -166,14 +166,25 @@ def test_other_delimiters(tmp_path, base, delim, ext):
     same_stats(ref, run(tmp_path, f"d.{ext}", lambda p: messy.to_csv(p, index=False, sep=delim)))
 
 
-def test_refusals_instead_of_misreads(tmp_path, base):
-    df, _ = base
+def test_decimal_commas_read_or_refused_never_misread(tmp_path, base):
+    df, ref = base
     comma = df.assign(age=df.age.map(lambda v: f"{v:.1f}".replace(".", ",")))
+    got = run(tmp_path, "c.parquet", lambda p: comma.to_parquet(p, index=False))
+    same_stats(ref, got)                                  # read as the decimals they are
+    w = [x for x in got.warnings if x["kind"] == "decimal_comma"]
+    assert [(x["column"], x["count"]) for x in w] == [("age", len(df))]
     with pytest.raises(InputError, match="decimal comma"):
-        run(tmp_path, "c.parquet", lambda p: comma.to_parquet(p, index=False))
-    bad_group = df.assign(score=[f"{v:.0f}"[:1] + "," + f"{v:.0f}"[1:3] for v in df.score])  # '1,25'
+        run(tmp_path, "c2.parquet", lambda p: comma.to_parquet(p, index=False), data='decimal = "."')
+    # '1,25' cannot be a thousands group: with decimal = "." it is refused, not read as 125
+    bad_group = df.assign(score=[f"{v:.0f}"[:1] + "," + f"{v:.0f}"[1:3] for v in df.score])
     with pytest.raises(InputError, match="holds text that is not a number"):
-        run(tmp_path, "g.parquet", lambda p: bad_group.to_parquet(p, index=False))
+        run(tmp_path, "g.parquet", lambda p: bad_group.to_parquet(p, index=False), data='decimal = "."')
+    # a column read with thousands separators cannot turn to decimal commas part-way
+    flip = df.assign(score=[f"{v:,.0f}" for v in df.score]).astype({"score": object})
+    flip.loc[len(flip) - 1, "score"] = "2,5"
+    with pytest.raises(InputError, match="mixes decimal points and decimal commas|set \\[data\\] decimal"):
+        run(tmp_path, "f.csv", lambda p: flip.assign(visit=flip.visit.dt.strftime("%Y-%m-%d"))
+            .to_csv(p, index=False), data="batch_rows = 100")
     mixed = df.assign(treated=np.where(df.treated == 1, "Y", "maybe"))
     with pytest.raises(InputError, match=r"'maybe'"):
         run(tmp_path, "y.parquet", lambda p: mixed.to_parquet(p, index=False))

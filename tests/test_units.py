@@ -1,4 +1,5 @@
 """Unit conversions against published equations and their worked values, plus round trips."""
+import numpy as np
 import pytest
 from hypothesis import given, strategies as st
 from numpy.testing import assert_allclose
@@ -124,3 +125,40 @@ def test_scan_matches_a_percent_rule_to_an_ifcc_column(tmp_path):
     assert row["rule_id"] == "dx"
     assert_allclose(row["cutoff"], (6.5 - 2.15) / 0.0915, rtol=1e-12)   # IFCC–NGSP master equation
     assert row["jump"] > 0.4 and any("47.5" in n for n in res.notes)
+
+
+# ---------------------------------------------------------------------- plausible ranges, codes
+def test_plausible_hba1c_range_in_mmol_mol_follows_the_master_equation():
+    # IFCC–NGSP master equation, NGSP % = 0.0915 · IFCC mmol/mol + 2.15 (Hoelzel et al., Clin
+    # Chem 2004): the % limits 3 and 20 are (3 − 2.15)/0.0915 and (20 − 2.15)/0.0915 mmol/mol.
+    from scanner.units import plausible_range
+    lo, hi = plausible_range("hba1c", "mmol/mol")
+    assert_allclose([lo, hi], [(3 - 2.15) / 0.0915, (20 - 2.15) / 0.0915], rtol=1e-12)
+    assert plausible_range("hba1c", "%") == (3.0, 20.0)
+    assert plausible_range("phq9", "points") is None          # no range: codes are kept
+    # the mg/dL limits move to mmol/L by the glucose factor 18.016 (molar mass 180.156 g/mol)
+    assert_allclose(plausible_range("fasting_glucose", "mmol/L")[0], 20 / 18.016, rtol=1e-12)
+
+
+def test_convert_array_is_convert_elementwise():
+    from scanner.units import convert, convert_array
+    v = np.array([31.0, 48.0, 53.0, 64.0])
+    assert_allclose(convert_array(v, "mmol/mol", "%", "hba1c"),
+                    [convert(x, "mmol/mol", "%", "hba1c") for x in v], rtol=0, atol=0)
+    # 48 mmol/mol is 6.5 % to one decimal (the diagnostic threshold in both units, from memory)
+    assert round(float(convert_array([48.0], "mmol/mol", "%", "hba1c")[0]), 1) == 6.5
+
+
+@pytest.mark.parametrize("values,codes", [
+    (lambda r: r.integers(0, 100, 3000), []),                          # 99 is the scale's end
+    (lambda r: np.r_[r.integers(1, 6, 3000), [9] * 40], [9.0]),        # grade 1–5, 9 = unknown
+    (lambda r: r.poisson(1.5, 200_000), []),                           # smooth tail up to 8, 9
+    (lambda r: np.r_[np.clip(np.round(r.normal(62, 22, 3000)), 5, 140), [999] * 40, [-99] * 30],
+     [-99.0, 999.0]),
+    (lambda r: np.r_[r.integers(18, 91, 3000), [99] * 40], [99.0]),    # age 99 = unknown
+    (lambda r: np.r_[r.integers(18, 91, 3000), [99] * 3], []),         # too few to be a spike
+])
+def test_sentinel_spikes(values, codes):
+    from scanner.quality import sentinel_spikes
+    got = sentinel_spikes(np.asarray(values(np.random.default_rng(1)), dtype=float))
+    assert got == codes

@@ -28,12 +28,13 @@ from dataclasses import dataclass, replace
 
 from ..errors import SpecError
 
-DATA_KEYS = {"person", "periods", "period_start", "period_end", "omop"}
-SCREEN_KEYS = {"test", "value", "min_persons", "min_event_persons", "days", "prior_days", "index",
-               "top_pairs"}
-RUNNING_KEYS = {"name", "where", "index", "concept"}
-EVENTS_KEYS = {"source", "person", "date", "code", "uptake"}
-UPTAKE_KEYS = {"name", "codes", "concepts", "days", "prior_days"}
+from ..spec_schema import known
+
+_KNOWN = known()            # the spec schema (also docs/spec.md) holds every key
+RUNNING_KEYS = {"name", "where", "index", "concept"}      # [[running]] keys of the long format
+EVENTS_KEYS = _KNOWN["events"]
+UPTAKE_KEYS = _KNOWN["events.uptake"]
+SCREEN_KEYS = _KNOWN["screen"]
 OMOP_COVARIATES = ("age", "female")
 
 

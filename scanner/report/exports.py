@@ -8,7 +8,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-from ..score import format_p
+from ..textfmt import format_p, format_p_eq  # noqa: F401  (html and outputs import them here)
 
 BIN_FIELDS = ("rank", "running", "treatment", "cutoff", "figure", "side", "x_low", "x_high",
               "x_mean", "n", "value", "value_kind")
@@ -22,6 +22,19 @@ CAUTION_LINES = [
     "Counts from 1 to {m1} are suppressed (minimum cell size {m}); sparse display bins are merged "
     "with their neighbours.",
 ]
+
+
+DENSITY_TESTS = {"local_polynomial": "local-polynomial test", "mccrary": "McCrary test",
+                 "binomial_window": "binomial window test", "frandsen": "Frandsen discrete test"}
+
+
+def density_label(method) -> str:
+    """Which density test ``density_p`` comes from, in words (scanner.diagnostics.sorting)."""
+    if not method:
+        return "density test"
+    base = method.removesuffix("_without_heaps")
+    words = DENSITY_TESTS.get(base, base.replace("_", " "))
+    return words + (", heaps removed" if method.endswith("_without_heaps") else "")
 
 
 def cautions(min_cell: int) -> list[str]:
@@ -67,6 +80,9 @@ def markdown(results: dict, top: int = 5) -> str:
              f"{_num(d.get('rows_used'), ',', 'a suppressed number of')} rows "
              f"({results['n_candidates']} cutoffs examined, {results['n_tested']} tested; "
              "q-values are Benjamini–Hochberg adjusted over all tests).", ""]
+    if results.get("warnings"):
+        lines += [f"**Data warnings ({len(results['warnings'])})** — read before the table:", ""]
+        lines += [f"- `{w['kind']}`: {w['message']}" for w in results["warnings"]] + [""]
     shown = [c for c in results["candidates"] if c["verdict"] not in ("no jump", "not estimable")]
     shown = shown[:top]
     if not shown:
@@ -81,7 +97,8 @@ def markdown(results: dict, top: int = 5) -> str:
             lines.append(
                 f"| {c['rank']} | {c['running']} | {c['treatment']} | {c['cutoff']:g} | {origin} | "
                 f"{_num(c['jump'], '+.3f')}{ci} | {_num(c['n_left'], ',', 'suppressed')} / "
-                f"{_num(c['n_right'], ',', 'suppressed')} | {_p(c.get('density_p'))} | "
+                f"{_num(c['n_right'], ',', 'suppressed')} | {_p(c.get('density_p'))} "
+                f"({density_label(c.get('density_method'))}) | "
                 f"{_p(c.get('balance_p'))} | {c['verdict']}"
                 f"{' (' + ', '.join(c['flags']) + ')' if c['flags'] else ''} |")
         lines.append("")

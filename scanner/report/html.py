@@ -6,12 +6,14 @@ placebo, compliance shares, power, timeline) appear only when those fields are p
 """
 from __future__ import annotations
 
+import hashlib
+import json
+
 import html
 from pathlib import Path
 
-from ..score import format_p, format_p_eq
 from . import figures
-from .exports import cautions
+from .exports import cautions, density_label, format_p, format_p_eq
 from .screen import screen_section
 
 esc = html.escape
@@ -54,8 +56,63 @@ def _img(png: str | None, alt: str, caption: str) -> str:
             f"<figcaption>{esc(caption)}</figcaption></figure>")
 
 
-def _draw(fig, alt, caption):
-    return _img(figures.to_png(fig), alt, caption) if fig is not None else ""
+def _draw(call, alt, caption):
+    """A figure as an <img>: ``call`` is (figure function, its arguments...).
+
+    Drawing is the slow part of a report (about 0.3 s a figure), so each PNG is kept in the
+    output folder's figure cache under a hash of the function, its inputs and the figure code;
+    ``cutscan report`` redraws only figures whose inputs changed (e.g. after --min-cell).
+    """
+    png = FIGURE_CACHE.get(call)
+    return _img(png, alt, caption) if png else ""
+
+
+class FigureCache:
+    """PNG (base64) per figure input, kept in ``folder`` (None: no cache, always draw).
+
+    The figure module (and matplotlib, a second of imports) is loaded only when a figure has
+    to be drawn, so a rebuild whose figures are all cached never imports it.
+    """
+
+    def __init__(self):
+        self.folder, self.used = None, set()
+        code = (Path(__file__).parent / "figures.py").read_bytes()
+        self.code = hashlib.sha256(code).hexdigest()[:16]
+
+    def key(self, call) -> str:
+        fn, *args = call
+        blob = json.dumps([fn, args], sort_keys=True, default=str)
+        return hashlib.sha256((self.code + blob).encode()).hexdigest()[:32]
+
+    def get(self, call) -> str:
+        key = self.key(call)
+        path = self.folder / f"{key}.b64" if self.folder else None
+        self.used.add(key)
+        if path is not None and path.exists():
+            return path.read_text(encoding="ascii")
+        from . import figures
+        fn, *args = call
+        fig = getattr(figures, fn)(*args)
+        png = figures.to_png(fig) if fig is not None else ""
+        if path is not None:
+            path.write_text(png, encoding="ascii")
+        return png
+
+    def start(self, folder) -> None:
+        self.folder, self.used = folder, set()
+        if folder is not None:
+            folder.mkdir(exist_ok=True)
+
+    def prune(self) -> None:
+        """Forget figures this report no longer shows."""
+        if self.folder is not None:
+            for p in self.folder.glob("*.b64"):
+                if p.stem not in self.used:
+                    p.unlink()
+
+
+FIGURE_CACHE = FigureCache()
+FIGURE_DIR = ".figures"
 
 
 def _units(results: dict) -> dict:
@@ -74,7 +131,10 @@ def _overview(results: dict) -> list[str]:
              f"<tr><th class='l'>covariates</th><td class='l'>{esc(', '.join(spec.get('covariates', [])) or 'none')}</td></tr>",
              f"<tr><th class='l'>date column</th><td class='l'>{esc(spec.get('date') or 'none')}</td></tr>",
              f"<tr><th class='l'>cutoffs examined</th><td>{results['n_candidates']:,} "
-             f"({results['n_tested']:,} estimable and tested; q-values adjust for all of them)</td></tr>",
+             f"({results['n_tested']:,} tests in the q-value family: "
+             f"{(results.get('tests') or {}).get('candidates', results['n_tested']):,} candidates "
+             f"with a p-value and {(results.get('tests') or {}).get('searches', 0):,} search scans "
+             "that added no candidate)</td></tr>",
              f"<tr><th class='l'>estimator</th><td class='l'>local polynomial of degree "
              f"{spec.get('degree', 1)}, {esc(str(spec.get('kernel', '')))} kernel, bandwidth "
              f"{esc(str(spec.get('bandwidth', '')))}</td></tr></table>"]
@@ -104,7 +164,10 @@ RANK_HEADS = (("#", ""), ("running", "l"), ("treatment", "l"), ("cutoff", ""), (
 def _ranking(results: dict, limit: int) -> list[str]:
     parts = ["<section id='ranking'><h2>Ranked candidates</h2>",
              f"<p class='muted'>Best {min(limit, results['n_candidates'])} of "
-             f"{results['n_candidates']}; rows left/right count the rows within the bandwidth. "
+             f"{results['n_candidates']}; rows left/right count the rows within the bandwidth "
+             "('suppressed' where the count, or its difference from a figure's bins, would be "
+             f"below {results['disclosure']['min_cell']}, so one side can be hidden while the "
+             "other shows thousands). "
              "The full list is in candidates.csv.</p><table><tr>"]
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
@@ -119,7 +182,8 @@ def _ranking(results: dict, limit: int) -> list[str]:
             f"<td>{_fmt(c['jump'], '+.3f')}{ci}</td>"
             f"<td>{'—' if f is None else ('>9999' if f > 9999 else f'{f:.0f}')}</td>"
             f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}</td>"
-            f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}</td>"
+            f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}"
+            f"<br><span class='ci'>{esc(density_label(c.get('density_method')))}</span></td>"
             f"<td>{_p(c.get('balance_p'))}</td><td>{_fmt(c.get('score'), '.0f')}</td>"
             f"<td class='l v-{c['verdict'].replace(' ', '-')}'>{esc(c['verdict'])}</td>"
             f"<td class='l'>{esc(', '.join(c.get('flags') or []))}</td></tr>")
@@ -238,18 +302,18 @@ def card(c: dict, unit: str | None) -> str:
                      + "".join(f"<tr><th class='l'>{esc(n)}</th><td>[{lo:+.3f}, {hi:+.3f}]</td></tr>"
                                for n, lo, hi in ivs) + "</table></div>")
     parts.append("<div class='grid'>")
-    parts.append(_draw(figures.uptake_figure(c, unit), "uptake around the cutoff",
+    parts.append(_draw(("uptake_figure", c, unit), "uptake around the cutoff",
                        "Uptake: binned shares (IMSE-optimal evenly spaced bins) and the local fits "
                        f"within the bandwidth {_fmt(c.get('bandwidth'), '.4g')} with 95% bands."))
-    parts.append(_draw(figures.density_figure(c, unit), "density around the cutoff",
+    parts.append(_draw(("density_figure", c, unit), "density around the cutoff",
                        f"Density of {c['running']}: histogram and fitted one-sided densities "
-                       f"({_p_eq('density test p', c.get('density_p'))})."))
-    parts.append(_draw(figures.balance_figure(c), "covariate balance",
+                       f"({_p_eq(density_label(c.get('density_method')) + ' p', c.get('density_p'))})."))
+    parts.append(_draw(("balance_figure", c), "covariate balance",
                        f"Covariate balance: standardised jumps ({_p_eq('joint p', c.get('balance_p'))})."))
-    parts.append(_draw(figures.sensitivity_figure(c, _sensitivity_points(c), unit),
+    parts.append(_draw(("sensitivity_figure", c, _sensitivity_points(c), unit),
                        "bandwidth sensitivity", "Bandwidth sensitivity: the jump re-estimated at "
                        "other bandwidths."))
-    parts.append(_draw(figures.timeline_figure(c, _timeline_points(c)), "timeline of the jump",
+    parts.append(_draw(("timeline_figure", c, _timeline_points(c)), "timeline of the jump",
                        "Timeline: the jump estimated period by period."))
     parts.append("</div>")
     parts.append(_compliance(c))
@@ -271,6 +335,21 @@ def card(c: dict, unit: str | None) -> str:
     return "".join(parts)
 
 
+def warnings_block(results: dict) -> list[str]:
+    """The data-quality warnings, at the top of the report (before the overview and ranking)."""
+    ws = results.get("warnings") or []
+    if not ws:
+        return []
+    parts = [f"<section id='warnings' class='caution'><h2>Data warnings ({len(ws)})</h2>"
+             "<p class='muted'>What cutscan found in the data, what it did and the spec key that "
+             "fixes it. Read these before the ranking: each one can change it.</p><ul>"]
+    parts += [f"<li><b>{esc(w['kind'])}</b>"
+              + (f" <code>{esc(str(w['column']))}</code>" if w.get("column") else "")
+              + f": {esc(w['message'])}</li>" for w in ws]
+    parts.append("</ul></section>")
+    return parts
+
+
 def render(results: dict) -> str:
     """The whole report as one HTML string."""
     m = results["disclosure"]["min_cell"]
@@ -284,6 +363,7 @@ def render(results: dict) -> str:
              "<section id='cautions' class='caution'><h2>Read this first</h2><ul>"]
     parts += [f"<li>{esc(t)}</li>" for t in cautions(m)]
     parts.append("</ul></section>")
+    parts += warnings_block(results)
     parts += _overview(results)
     parts += screen_section(results)
     parts += _ranking(results, max(top, 20))
@@ -296,6 +376,15 @@ def render(results: dict) -> str:
     return "\n".join(parts)
 
 
-def write_report(results: dict, path: Path, stats=None) -> None:
-    """Write report.html (``stats`` is unused: everything comes from the results dict)."""
-    Path(path).write_text(render(results), encoding="utf-8")
+def write_report(results: dict, path: Path, stats=None, cache: bool = False) -> None:
+    """Write report.html (``stats`` is unused: everything comes from the results dict).
+
+    With ``cache`` the figures are kept in ``.figures/`` beside the report (see :func:`_draw`).
+    """
+    path = Path(path)
+    FIGURE_CACHE.start(path.parent / FIGURE_DIR if cache else None)
+    try:
+        path.write_text(render(results), encoding="utf-8")
+        FIGURE_CACHE.prune()
+    finally:
+        FIGURE_CACHE.start(None)

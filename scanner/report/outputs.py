@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import OutputError
-from ..score import format_p
+from .exports import format_p
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}   # held back while folders are created or moved
@@ -28,7 +28,10 @@ COUNT_FIELDS = ("n_left", "n_right")
 CSV_FIELDS = ("rank", "running", "treatment", "cutoff", "origin", "rule_id", "eligible_side",
               "jump", "se", "ci_low", "ci_high", "p_value", "q_value", "first_stage_f", "design",
               "bandwidth", "n_left", "n_right", "distinct_left", "distinct_right", "density_p",
-              "balance_p", "placebo_p", "score", "verdict", "flags")
+              "balance_p", "placebo_p", "score", "verdict", "flags",
+              # added after the contract fields: which interval ci_low/ci_high are, which test
+              # density_p comes from, and the verdict's reasons (joined by " | ")
+              "interval", "density_method", "reasons")
 
 
 def clean(value):
@@ -120,7 +123,9 @@ def results_dict(result) -> dict:
         "data": data,
         "n_candidates": len(rows),
         "n_tested": rows[0]["n_tested"] if rows else 0,
+        "tests": test_family(rows, getattr(result, "search", None) or {}),
         "disclosure": {},
+        "warnings": [dict(w) for w in getattr(result, "warnings", [])],
         "notes": list(result.notes),
         "candidates": rows,
     })
@@ -139,6 +144,16 @@ def results_dict(result) -> dict:
     return out
 
 
+def test_family(rows: list, search: dict) -> dict:
+    """What ``n_tested`` counts (scanner.score): candidates with a finite p-value, plus each
+    discovery scan of a running variable × treatment that added no row of its own."""
+    finite = sum(1 for r in rows if r.get("p_value") is not None
+                 and math.isfinite(float(r["p_value"])))
+    found = {(r["running"], r["treatment"]) for r in rows if r.get("origin") == "discovered"}
+    scans = int(search.get("n_scans", 0) or 0)
+    return {"candidates": finite, "searches": max(scans - len(found), 0) if scans else 0}
+
+
 def _pkg_version():
     from .. import __version__
     return __version__
@@ -149,6 +164,7 @@ def tidy_rows(candidates: list[dict]) -> list[dict]:
     for c in candidates:
         row = {k: c.get(k) for k in CSV_FIELDS}
         row["flags"] = ";".join(c.get("flags") or [])
+        row["reasons"] = " | ".join(c.get("reasons") or [])
         out.append(row)
     return out
 
@@ -299,7 +315,7 @@ def write_derived(results: dict, folder: Path) -> None:
     """report.html, results.md and bins.csv: everything rebuilt from results.json alone."""
     from .exports import write_bins_csv, write_markdown
     from .html import write_report
-    write_report(results, folder / "report.html")
+    write_report(results, folder / "report.html", cache=True)
     write_markdown(results, folder / "results.md")
     write_bins_csv(results, folder / "bins.csv")
 
@@ -316,7 +332,8 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
     grid = results.get("n_grid_points") or 0
     scanned = f" (search: {grid} grid cutoffs examined)" if grid else ""
     t = Table(title=f"{results['title']} — {results['n_candidates']} candidates, "
-                    f"{results['n_tested']} tested{scanned}, best {min(top, results['n_candidates'])} shown",
+                    f"{results['n_tested']} tests{_family(results)}{scanned}, best "
+                    f"{min(top, results['n_candidates'])} shown",
               header_style="bold", show_lines=False)
     for col, just in (("#", "right"), ("running", "left"), ("treatment", "left"),
                       ("cutoff", "right"), ("origin", "left"), ("jump [95% CI]", "right"),
@@ -334,6 +351,35 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
     return t
 
 
+def plain_lines(results: dict, top: int = 20) -> str:
+    """The table for a pipe or a file: a title line, then one line per candidate.
+
+    Each line holds rank, candidate, jump with its reported interval (and the interval's kind),
+    F, q, score, verdict and flags, so ``grep`` and ``cut`` work on it and nothing wraps.
+    """
+    n = results["n_candidates"]
+    lines = [f"{results['title']}: {n} candidates, {results['n_tested']} tests in the q-value "
+             f"family{_family(results)}, best {min(top, n)} shown"]
+    for c in results["candidates"][:top]:
+        ci = ("" if c.get("ci_low") is None else
+              f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
+        f = c.get("first_stage_f")
+        fs = "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}")
+        flags = " ".join(c.get("flags") or []) or "-"
+        lines.append(f"{c['rank']:>3}  {c['running']} → {c['treatment']} at {c['cutoff']:g} "
+                     f"({c.get('rule_id') or c['origin']})  jump {_num(c['jump'], '+.3f')}{ci}  "
+                     f"F {fs}  q {format_p(c['q_value'], '—')}  score {_num(c['score'], '.0f')}  "
+                     f"{c['verdict']}  flags: {flags}")
+    return "\n".join(lines)
+
+
+def _family(results: dict) -> str:
+    t = results.get("tests") or {}
+    if not t.get("searches"):
+        return ""
+    return f" ({t['candidates']} candidates with a p-value + {t['searches']} search scans)"
+
+
 STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta", "no jump": "dim",
          "not estimable": "dim red"}
 
@@ -342,7 +388,7 @@ def _compact_table(results: dict, top: int):
     """Narrow terminals: one text column for the candidate, the interval left to the outputs."""
     from rich.table import Table
     t = Table(title=f"{results['title']}: {results['n_candidates']} candidates, "
-                    f"{results['n_tested']} tested (intervals in candidates.csv)",
+                    f"{results['n_tested']} tests{_family(results)} (intervals in candidates.csv)",
               header_style="bold")
     for col, just in (("#", "right"), ("candidate", "left"), ("jump", "right"), ("q", "right"),
                       ("score", "right"), ("verdict", "left"), ("flags", "left")):
