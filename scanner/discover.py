@@ -46,6 +46,7 @@ from scipy import sparse
 from scipy import stats as sps
 
 from .bins import BinnedStats
+from .engines.grid import edges, grid_of_width
 from .engines.plan import weighted_quantile
 from .estimate.kernels import kernel as kernel_fn
 
@@ -140,8 +141,21 @@ def scan_grid_points(stats: BinnedStats, column: str, max_grid: int = MAX_GRID):
     pts = x[np.minimum(np.searchsorted(cw, q), x.size - 1)]
     if st.kind == "width":
         # Snap to the lower edge of the bin holding the quantile: the cutoff then splits bins cleanly.
-        pts = st.origin + np.floor((pts - st.origin) / st.width + 1e-9) * st.width
+        pts = bin_edges(st, np.floor((pts - st.origin) / st.width + 1e-9))
     return np.unique(pts), "quantile"
+
+
+def bin_edges(st: BinnedStats, k) -> np.ndarray:
+    """Left edges of fixed-width bins ``k``: the engines' exact decimals (origin + (k·p)/10^d).
+
+    Notes
+    -----
+    ``origin + k·width`` gives 33.300000000000004 for the edge 33.3, which then differs from the
+    edge the engines binned on and from a cutoff typed as 33.3 (scanner/engines/grid.py).
+    """
+    p, d = grid_of_width(st.width)
+    e = edges(np.asarray(k, float), p, d)
+    return e if not st.origin else st.origin + e
 
 
 def _local_variance(n, s1, s2):
@@ -383,7 +397,8 @@ def location_set(scan: GridScan, i: int, alpha: float) -> tuple[float, float]:
     """Connected grid set around peak ``i`` with t²(peak) − t²(g) ≤ c_α and the same sign."""
     t2 = np.where(scan.valid, scan.t ** 2, -np.inf)
     with np.errstate(invalid="ignore"):
-        inside = (t2[i] - t2 <= lr_critical(alpha)) | (np.isinf(t2[i]) & np.isinf(t2)) & (np.sign(scan.t) == np.sign(scan.t[i]))
+        close = (t2[i] - t2 <= lr_critical(alpha)) | (np.isinf(t2[i]) & np.isinf(t2))
+        inside = close & (np.sign(scan.t) == np.sign(scan.t[i]))
     a = b = i
     while a > 0 and inside[a - 1]:
         a -= 1
