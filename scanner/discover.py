@@ -21,7 +21,11 @@ For one running variable × treatment the scan works on BinnedStats only:
    over consecutive bins holding at least ``VAR_ROWS`` rows).  The critical value and p-values
    come from a Gaussian multiplier simulation of that correlation (eigen-decomposition of the
    grid × grid matrix, ``draws`` draws); no row is resampled.  Beyond the reach of the draws the
-   p-value is the Bonferroni bound over the grid, which is always valid.
+   p-value is the Bonferroni bound over the grid, which is always valid.  Each t divides by
+   se_t = sqrt(max(HC1, pooled)), the pooled variance being the two sides' kernel-weighted mean
+   squared residual times Σℓ² (the homoskedastic variance of the same fit): where uptake is
+   constant on one side, the HC1 variance loses that side and |t| would peak at a biased
+   window; a larger SE only makes the test conservative.
 4. **Location and further breaks** live in :mod:`scanner.breaks`: the largest jump among the
    points that pass the critical value, refined by a one-break least-squares fit with a
    likelihood-ratio location set (:mod:`scanner.locate`), then a sequential search for more.
