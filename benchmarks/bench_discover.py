@@ -19,7 +19,8 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import numpy as np
 
 from scanner.bins import BinnedStats
-from scanner.discover import find_peaks, null_sup, scan_grid
+from scanner.breaks import search_pair
+from scanner.discover import null_sup, scan_grid
 
 
 def make_bins(B=10_000, seed=0):
@@ -45,7 +46,7 @@ def main():
         t1 = time.perf_counter()
         null = null_sup(sc, seed=r)
         t2 = time.perf_counter()
-        peaks = find_peaks(sc, null, 0.05)
+        peaks = search_pair(st, "uptake", seed=r).peaks      # the whole sequential search
         t3 = time.perf_counter()
         times.append(t3 - t0)
         cpu.append(time.process_time() - c0)

@@ -11,7 +11,7 @@ def write_markdown() -> Path:
     parts = ["# Discovery benchmarks (issue 5)\n",
              "Simulated registries (invented data). Regenerate with the commands shown; each "
              "section is rewritten by its script.\n"]
-    for name in ("speed", "null", "planted"):
+    for name in ("speed", "null", "planted", "locate"):
         p = RESULTS / f"discovery_{name}.json"
         if p.exists():
             parts.append(json.loads(p.read_text())["markdown"])

@@ -4,11 +4,29 @@ Round numbers follow a 1-2-5 series at the running variable's own scale: the ste
 1, 2 or 5 × 10^k not above 1/8 of the central 90% range, and candidates are the multiples of that
 step (and of any coarser 5 × 10^k step) inside the 5th–95th percentile range, kept only where at
 least ``min_rows`` rows lie within one step on each side.
+
+Recorded values form a lattice when the running variable has exact-support bins (half-integer
+birth quarters, a lab value recorded to 0.1).  A cutoff between two recorded values a < c < b
+divides the rows as any value in (a, b] does:
+
+* a **round** value between recorded values is examined as that split and reported at the round
+  value (0 on a half-integer lattice is the split between −0.5 and 0.5); of several round values
+  in one split the roundest is kept;
+* a **declared** value between recorded values (typically a rule converted from another unit,
+  190 mg/dL = 4.91337 mmol/L) is applied to the recorded values the way a protocol written in
+  the recording unit states it: the value is rounded to the nearest recorded value v (halves
+  upwards), and the rule's inequality is applied at v — x ≥ v eligible for ``at_or_above`` /
+  ``below`` rules (right-closed), x > v for ``above`` / ``at_or_below``.  The candidate's cutoff
+  is v.
+
+Either way the row records ``cutoff_declared`` (the value before placement) and ``split_low`` /
+``split_high``, the recorded values on either side of the split used, so a cutoff off the
+lattice can be reported with both values.
 """
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -28,6 +46,14 @@ class Candidate:
     origin: str                       # "declared" | "round" | "discovered"
     rule: Rule | None = None
     right_closed: bool = True
+    cutoff_declared: float | None = None      # the value before placement on the lattice
+    split_low: float | None = None            # recorded values either side of the split
+    split_high: float | None = None
+
+    def lattice_fields(self) -> dict:
+        """Row fields saying where the cutoff sits against the recorded values (None: no lattice)."""
+        return {"cutoff_declared": self.cutoff_declared, "split_low": self.split_low,
+                "split_high": self.split_high}
 
     @property
     def rule_id(self):
@@ -99,16 +125,73 @@ def round_cutoffs(stats: BinnedStats, min_rows: int = 50) -> list[float]:
         for k in range(k0, k1 + 1):
             values.add(round(k * s, 12))
     support = np.unique(x) if st.kind == "exact" else None
-    out = []
     spacing = float(np.median(np.diff(support))) if support is not None and support.size > 1 else 0.0
     reach = max(step, spacing) * (1 + 1e-9)
+    by_split = {}
     for c in sorted(values):
-        # On an exact support a cutoff between support points repeats the split at the next
-        # support point, so only support values are kept.
-        if support is not None and not np.isclose(support, c, rtol=0, atol=1e-9 * max(1, abs(c))).any():
-            continue
         left = n[(x >= c - reach) & (x < c)].sum()
         right = n[(x >= c) & (x < c + reach)].sum()
-        if left >= min_rows and right >= min_rows:
-            out.append(float(c))
-    return out
+        if not (left >= min_rows and right >= min_rows):
+            continue
+        # On an exact support, values in one gap (a, b] split the rows alike: keep the roundest.
+        key = int(np.searchsorted(support, c - 1e-9 * max(1, abs(c)))) if support is not None else c
+        best = by_split.get(key)
+        if best is None or _roundness(c, steps) > _roundness(best, steps):
+            by_split[key] = c
+    return [float(c) for c in sorted(by_split.values())]
+
+
+def _roundness(c: float, steps) -> float:
+    """The coarsest step (of the series, or a power of ten above it) that ``c`` is a multiple of."""
+    best = 0.0
+    top = max(steps)
+    cands = list(steps) + [10.0 ** k for k in range(math.floor(math.log10(top)) + 1,
+                                                     math.floor(math.log10(top)) + 4)]
+    for s in cands:
+        if abs(c / s - round(c / s)) < 1e-9:
+            best = max(best, s)
+    return best if c != 0 else math.inf
+
+
+def split_of(stats: BinnedStats, c: float, right_closed: bool = True):
+    """Recorded values (a, b) on either side of the split cutoff ``c`` makes on an exact support.
+
+    None for fixed-width bins or a cutoff outside the recorded range.
+    """
+    st = stats.pooled()
+    if st.kind != "exact":
+        return None
+    sup = np.unique(st.key[st.n > 0])
+    j = int(np.searchsorted(sup, c, side="left" if right_closed else "right"))
+    if j == 0 or j >= sup.size:
+        return None
+    return float(sup[j - 1]), float(sup[j])
+
+
+def on_lattice(cand: Candidate, stats: BinnedStats) -> Candidate:
+    """The candidate placed on the recorded values, with the lattice fields filled (module docstring).
+
+    Declared cutoffs between two recorded values move to the nearest recorded value (halves
+    upwards), where the rule's inequality is applied; round cutoffs keep their value.  A cutoff
+    on a recorded value, off an exact support, or outside the recorded range is left as it is
+    (lattice fields filled where a split exists).
+    """
+    st = stats.pooled()
+    if st.kind != "exact":
+        return cand
+    sup = np.unique(st.key[st.n > 0])
+    c = cand.cutoff
+    tol = 1e-9 * max(1.0, abs(c))
+    placed = c
+    on_support = bool(np.isclose(sup, c, rtol=0, atol=tol).any())
+    if cand.origin == "declared" and not on_support and sup[0] < c < sup[-1]:
+        j = int(np.searchsorted(sup, c))
+        a, b = float(sup[j - 1]), float(sup[j])
+        placed = b if (c - a) >= (b - c) - tol else a
+    elif on_support:
+        placed = float(sup[np.argmin(np.abs(sup - c))])
+    split = split_of(st, placed, cand.right_closed)
+    if split is None:
+        return cand
+    return replace(cand, cutoff=float(placed), cutoff_declared=float(c),
+                   split_low=split[0], split_high=split[1])

@@ -6,8 +6,9 @@ running variable whose ``quantity`` matches:
 1. the pooled jump at the rule's cutoff (the same evaluation ``scan`` makes), whose bandwidth is
    then held fixed for everything below;
 2. the jump at each of the group's cutoffs in every calendar period (quarter or year, see
-   :func:`scanner.timeline.choose_granularity`), and the cutoff where uptake jumps most in that
-   period (:func:`scanner.locate.locate`), so a moved line can be followed;
+   :func:`scanner.timeline.choose_granularity`), and the best one-break fit near the cutoffs in
+   that period (:func:`scanner.locate.locate`: least squares, Hansen 2000 — the estimator the
+   discovery search uses), so a moved line can be followed;
 3. before versus after each effective date: the difference-in-discontinuities;
 4. the location estimate on the pooled data.
 
@@ -20,7 +21,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from .candidates import Candidate, rule_cutoff
+from .candidates import Candidate, on_lattice, rule_cutoff
 from .engines import BinPlan, bin_table
 from .errors import InputError, SpecError, closest
 from .locate import Location, locate
@@ -113,7 +114,6 @@ def check(spec_or_path, rule_id: str, data=None, treatment: str | None = None,
         raise InputError(f"{where}: rule '{rule.id}' lists treatments {', '.join(rule.treatments)}, "
                          f"none of which is a treatment of '{running.column}' in the spec.")
     group = group_of(rule, rules)
-    cutoffs = {r.id: rule_cutoff(r, running) for r in group}
     table, _, _ = open_for_scan(spec, data)
     spec = replace(spec, running=(running,), outcomes=())
     plan = BinPlan(running=(running.column,), columns=tuple(dict.fromkeys(trs + list(spec.covariates))),
@@ -125,10 +125,17 @@ def check(spec_or_path, rule_id: str, data=None, treatment: str | None = None,
     stats = bin_table(table, plan, engine=spec.engine).stats[running.column]
     if not (stats.period >= 0).any():
         raise InputError(f"{table.name}: date column '{spec.date}' holds no usable dates.")
+    # Rules placed on the recorded values as the scan places them (scanner.candidates).
+    placed = {r.id: on_lattice(Candidate(running.column, trs[0], rule_cutoff(r, running),
+                                         "declared", r, r.right_closed), stats) for r in group}
+    cutoffs = {rid: c.cutoff for rid, c in placed.items()}
+    decl = {rid: c.cutoff if c.cutoff_declared is None else c.cutoff_declared
+            for rid, c in placed.items()}
     out = []
     for t in trs:
-        cand = Candidate(running.column, t, cutoffs[rule.id], "declared", rule, rule.right_closed)
+        cand = replace(placed[rule.id], treatment=t)
         row = evaluate(stats.pooled(), cand, spec, {})
+        row.update(cand.lattice_fields())
         h = row["bandwidth"]
         gran = (choose_granularity(stats, t, cand.cutoff, h, rule.right_closed)
                 if granularity == "auto" else granularity)
@@ -148,7 +155,9 @@ def check(spec_or_path, rule_id: str, data=None, treatment: str | None = None,
                                                    spec.degree, r.right_closed)))
         loc = locate(stats, t, values, h, kernel=spec.kernel, degree=spec.degree,
                      right_closed=rule.right_closed)
-        notes = [f"rule '{r.id}': {r.cutoff:g} {r.unit} is {cutoffs[r.id]:.6g} {running.unit}"
+        notes = [f"rule '{r.id}': {r.cutoff:g} {r.unit} is {decl[r.id]:.6g} {running.unit}"
+                 + (f", applied at the recorded value {cutoffs[r.id]:g}"
+                    if cutoffs[r.id] != decl[r.id] else "")
                  for r in group if cutoffs[r.id] != r.cutoff]
         out.append(CheckResult(rule, running.column, t, group, cutoffs, row, h, gran, per,
                                moving, changes, loc, notes))
@@ -177,7 +186,8 @@ def to_dict(res: CheckResult, min_cell: int = 11) -> dict:
 
     pooled = {k: res.pooled.get(k) for k in ("cutoff", "jump", "se", "ci_low", "ci_high",
                                              "p_value", "bandwidth", "n_left", "n_right",
-                                             "density_p", "balance_p", "reason")}
+                                             "density_p", "balance_p", "reason",
+                                             "cutoff_declared", "split_low", "split_high")}
     for k in ("n_left", "n_right"):
         pooled[k] = _hide(pooled[k], min_cell)
     changes = []
@@ -248,10 +258,13 @@ def render(res: CheckResult, min_cell: int = 11):
                      "comparison; the period table shows whether the jump is stable.")
     loc = res.location
     if np.isfinite(loc.cutoff):
-        lines.append(f"Uptake jumps most at {loc.cutoff:g} (|t| {abs(loc.t):.1f}; declared "
-                     f"{', '.join(f'{v:g}' for v in loc.declared)}; grid of {loc.grid_points} points "
-                     f"from {loc.grid_low:g} to {loc.grid_high:g}). A grid search, not a test; "
-                     "the scan's discovery step does the search-adjusted version.")
+        where = (f"({loc.ci_low:g}, {loc.ci_high:g}]" if loc.ci_low_open
+                 else f"[{loc.ci_low:g}, {loc.ci_high:g}]")
+        lines.append(f"Best one-break fit at {loc.cutoff:g}: jump {loc.jump:+.3f} (|t| "
+                     f"{abs(loc.t):.1f}); 95% location set {where}; declared "
+                     f"{', '.join(f'{v:g}' for v in loc.declared)}; {loc.grid_points} splits "
+                     f"from {loc.grid_low:g} to {loc.grid_high:g} ({loc.method}). A search, not "
+                     "a test; the scan's discovery step does the search-adjusted version.")
     lines.extend(res.notes)
     return tab, Text("\n".join(lines))
 

@@ -21,11 +21,14 @@ For one running variable × treatment the scan works on BinnedStats only:
    over consecutive bins holding at least ``VAR_ROWS`` rows).  The critical value and p-values
    come from a Gaussian multiplier simulation of that correlation (eigen-decomposition of the
    grid × grid matrix, ``draws`` draws); no row is resampled.  Beyond the reach of the draws the
-   p-value is the Bonferroni bound over the grid, which is always valid.
-4. **Location.** γ̂ = argmax_g |t_g| (Porter & Yu 2015).  Confidence set: the connected set of
-   grid points around γ̂ with t²(γ̂) − t²(g) ≤ c_α, the likelihood-ratio inversion for an
-   unknown threshold with c_α = −2 ln(1 − √(1 − α)) (7.35 at α = 0.05; Hansen 2000,
-   Econometrica 68(3), from memory); t² differences stand in for the local LR statistic.
+   p-value is the Bonferroni bound over the grid, which is always valid.  Each t divides by
+   se_t = sqrt(max(HC1, pooled)), the pooled variance being the two sides' kernel-weighted mean
+   squared residual times Σℓ² (the homoskedastic variance of the same fit): where uptake is
+   constant on one side, the HC1 variance loses that side and |t| would peak at a biased
+   window; a larger SE only makes the test conservative.
+4. **Location and further breaks** live in :mod:`scanner.breaks`: the largest jump among the
+   points that pass the critical value, refined by a one-break least-squares fit with a
+   likelihood-ratio location set (:mod:`scanner.locate`), then a sequential search for more.
 
 Held-out confirmation (Card, Mas & Rothstein 2008, QJE 123(1)) is orchestrated in
 :mod:`scanner.scan`: the scan runs on half 0, the estimate and test on half 1.  The half is a
@@ -46,27 +49,18 @@ from scipy import sparse
 from scipy import stats as sps
 
 from .bins import BinnedStats
+from .engines.grid import edges, grid_of_width
 from .engines.plan import weighted_quantile
 from .estimate.kernels import kernel as kernel_fn
+from .locate import lr_critical  # noqa: F401  (re-exported: the search's LR constant)
 
 MAX_GRID = 500          # grid points per running variable × treatment
 DRAWS = 1000            # multiplier draws for the sup-|t| null distribution
 VAR_ROWS = 50           # rows pooled for each local conditional-variance estimate
 PILOT_C = 4.0           # pilot bandwidth h = PILOT_C · s · N^(-1/5)
-MAX_PEAKS = 3           # discovered cutoffs kept per running variable × treatment
 POOL_BINS = 2000        # above this many bins, pool bins into noise cells for the covariance
 BULK = 0.02             # grid inside the 2nd–98th percentiles
 CHUNK = 2_000_000       # gathered entries per block (memory bound)
-
-
-def lr_critical(alpha: float) -> float:
-    """Critical value of the LR statistic for an unknown threshold: −2 ln(1 − √(1 − α)).
-
-    Notes
-    -----
-    Hansen (2000, Econometrica 68(3)), from memory; 7.35 at α = 0.05 (derived from the formula).
-    """
-    return float(-2.0 * math.log(1.0 - math.sqrt(1.0 - alpha)))
 
 
 @dataclass(frozen=True)
@@ -92,6 +86,7 @@ class GridScan:
     noise: np.ndarray = field(default=None, repr=False)
     cut_index: np.ndarray = field(default=None, repr=False)
     bin_x: np.ndarray = field(default=None, repr=False)
+    se_t: np.ndarray = field(default=None, repr=False)   # the SE behind ``t`` (never collapses)
 
     @property
     def valid(self) -> np.ndarray:
@@ -140,8 +135,21 @@ def scan_grid_points(stats: BinnedStats, column: str, max_grid: int = MAX_GRID):
     pts = x[np.minimum(np.searchsorted(cw, q), x.size - 1)]
     if st.kind == "width":
         # Snap to the lower edge of the bin holding the quantile: the cutoff then splits bins cleanly.
-        pts = st.origin + np.floor((pts - st.origin) / st.width + 1e-9) * st.width
+        pts = bin_edges(st, np.floor((pts - st.origin) / st.width + 1e-9))
     return np.unique(pts), "quantile"
+
+
+def bin_edges(st: BinnedStats, k) -> np.ndarray:
+    """Left edges of fixed-width bins ``k``: the engines' exact decimals (origin + (k·p)/10^d).
+
+    Notes
+    -----
+    ``origin + k·width`` gives 33.300000000000004 for the edge 33.3, which then differs from the
+    edge the engines binned on and from a cutoff typed as 33.3 (scanner/engines/grid.py).
+    """
+    p, d = grid_of_width(st.width)
+    e = edges(np.asarray(k, float), p, d)
+    return e if not st.origin else st.origin + e
 
 
 def _local_variance(n, s1, s2):
@@ -155,7 +163,7 @@ def _local_variance(n, s1, s2):
 
 def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | None = None,
               kernel: str = "triangular", right_closed: bool = True, min_rows: int = 50,
-              loadings: bool = True, max_grid: int = MAX_GRID) -> GridScan:
+              loadings: bool = True, max_grid: int = MAX_GRID, walls=()) -> GridScan:
     """Local linear jumps of ``column`` at every grid point with one bandwidth.
 
     Parameters
@@ -167,15 +175,21 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
     kernel : kernel name; right_closed : rows at x == cutoff go right when True.
     min_rows : rows needed on each side inside the window for a grid point to count.
     loadings : also build the sparse loading matrix for the null simulation.
+    walls : locations of breaks already found; windows stop at them and grid points on them
+        are not estimable (sequential search, Bai & Perron 1998).
 
     Returns
     -------
-    GridScan; ``jump``/``se`` equal :func:`scanner.estimate.fit_jump` (degree 1, HC1) at each point.
+    GridScan; ``jump``/``se`` equal :func:`scanner.estimate.fit_jump` (degree 1, HC1) at each
+    point.  ``t = jump / se_t`` with se_t² = max(HC1, pooled): the pooled variance is the
+    kernel-weighted mean squared residual of both sides times Σℓ², the homoskedastic variance
+    of the same fit, so t cannot collapse where uptake is constant on one side of the window.
 
     Notes
     -----
     Local linear jump (Hahn, Todd & van der Klaauw 2001) with the HC1 sandwich of
-    scanner.estimate.local; grid and statistic after Porter & Yu (2015).
+    scanner.estimate.local; grid and statistic after Porter & Yu (2015).  A larger SE only
+    makes |t| smaller, so the sup-|t| test stays valid (conservative) with se_t.
     """
     st, x, n, s1, s2 = _bins(stats, column)
     kind = "support"
@@ -190,11 +204,21 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
     K = kernel_fn(kernel)
     G = grid.size
     nan = np.full(G, np.nan)
-    jump, se = nan.copy(), nan.copy()
+    jump, se, se_t = nan.copy(), nan.copy(), nan.copy()
     nl, nr = np.zeros(G, np.int64), np.zeros(G, np.int64)
     lo = np.searchsorted(x, grid - h, side="right")
     hi = np.searchsorted(x, grid + h, side="left")
-    width = int((hi - lo).max()) if G else 0
+    walls = np.sort(np.asarray(walls, float))
+    on_wall = np.isin(grid, walls)
+    if walls.size:
+        # Breaks already found (Bai & Perron 1998): no window reaches across one.  A wall w
+        # sends x ≥ w to its right, so a later grid point's left side starts at w.
+        j = np.searchsorted(walls, grid, side="left")           # walls[j-1] < g ≤ walls[j]
+        wl = np.where(j > 0, walls[np.maximum(j - 1, 0)], -np.inf)
+        wr = np.where(j < walls.size, walls[np.minimum(j, walls.size - 1)], np.inf)
+        lo = np.maximum(lo, np.searchsorted(x, wl, side="left"))
+        hi = np.minimum(hi, np.searchsorted(x, wr, side="left"))
+    width = max(int((hi - lo).max()), 0) if G else 0
     rows, cols, vals = [], [], []
     sig = n * _local_variance(n, s1, s2) if loadings and x.size else None
     mean = s1 / n
@@ -212,8 +236,11 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
         nb, sb, mb, wb = n[idx], s1[idx], mean[idx], within[idx]
         lw = np.zeros_like(u)
         var = np.zeros(u.shape[0])
+        l2 = np.zeros(u.shape[0])            # Σ_rows ℓ² (pooled variance)
+        wr2 = np.zeros(u.shape[0])           # Σ_rows w·e²
+        wsum = np.zeros(u.shape[0])          # Σ_rows w
+        enough = ~on_wall[g]
         alpha = []
-        enough = np.ones(u.shape[0], bool)
         for side, sign in ((~right, -1.0), (right, 1.0)):
             ws = w * side
             wn = ws * nb
@@ -224,13 +251,17 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
             rows_side = (side & ok & (w > 0)) * nb
             nside = rows_side.sum(1)
             enough &= (cnt >= 2) & (nside >= min_rows) & (det > 1e-12 * np.maximum(S0, 1) ** 2 * h * h)
-            with np.errstate(invalid="ignore", divide="ignore"):
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                # A side with no rows (next to a wall) gives NaN here; ``enough`` drops it.
                 al = (S2 * T0 - S1 * T1) / det
                 be = (S0 * T1 - S1 * T0) / det
                 ell = ws * (S2[:, None] - S1[:, None] * u) / det[:, None]
-            fit = al[:, None] + be[:, None] * u
-            rss = wb + nb * (mb - fit) ** 2
-            var += np.where(ws > 0, ell * ell * rss, 0.0).sum(1)
+                fit = al[:, None] + be[:, None] * u
+                rss = wb + nb * (mb - fit) ** 2
+                var += np.where(ws > 0, ell * ell * rss, 0.0).sum(1)
+                l2 += np.where(ws > 0, nb * ell * ell, 0.0).sum(1)
+                wr2 += np.where(ws > 0, ws * rss, 0.0).sum(1)
+            wsum += wn.sum(1)
             lw += sign * np.where(ws > 0, ell, 0.0)
             alpha.append(al)
             (nl if sign < 0 else nr)[g] = nside
@@ -239,15 +270,17 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
             scale = np.where(n_h > 4, n_h / (n_h - 4.0), np.nan)
             jump[g] = np.where(enough, alpha[1] - alpha[0], np.nan)
             se[g] = np.where(enough, np.sqrt(var * scale), np.nan)
+            pooled = wr2 / wsum * scale * l2
+            se_t[g] = np.where(enough, np.sqrt(np.maximum(var * scale, pooled)), np.nan)
         if sig is not None:
             r, k = np.nonzero((lw != 0) & enough[:, None])
             rows.append(r + a)
             cols.append(idx[r, k])
             vals.append(lw[r, k])
     with np.errstate(invalid="ignore", divide="ignore"):
-        # se = 0 with a jump: both sides constant in the window (a sharp rule), |t| = ∞.
-        t = np.where(se > 0, jump / se, np.where(np.abs(np.nan_to_num(jump)) > 1e-12,
-                                                 np.sign(jump) * np.inf, np.nan))
+        # se_t = 0 with a jump: both sides constant in the window (a sharp rule), |t| = ∞.
+        t = np.where(se_t > 0, jump / se_t, np.where(np.abs(np.nan_to_num(jump)) > 1e-12,
+                                                     np.sign(jump) * np.inf, np.nan))
     L = None
     if sig is not None:
         cat = (lambda parts, dt: np.concatenate(parts) if parts else np.zeros(0, dt))
@@ -255,7 +288,7 @@ def scan_grid(stats: BinnedStats, column: str, grid=None, bandwidth: float | Non
                               shape=(G, x.size))
     cut = np.searchsorted(x, grid, side="left" if right_closed else "right")
     return GridScan(stats.running, column, grid, h, kind, jump, se, t, nl, nr, int(n.sum()), L,
-                    sig, cut, x)
+                    sig, cut, x, se_t)
 
 
 @dataclass(frozen=True)
@@ -355,143 +388,6 @@ def null_sup(scan: GridScan, draws: int = DRAWS, seed: int = 0) -> NullSup:
         xi = rng.standard_normal((min(500, draws - a), B.shape[1]), dtype=np.float32)
         sup[a:a + xi.shape[0]] = np.abs(xi @ Bt).max(axis=1)
     return NullSup(np.sort(sup), n_points)
-
-
-@dataclass(frozen=True)
-class Peak:
-    """A discovered break: location, its confidence set and the search-adjusted test."""
-
-    location: float
-    ci_low: float
-    ci_high: float
-    jump: float
-    se: float
-    t: float
-    search_p: float
-    critical: float
-    bandwidth: float
-    n_grid_points: int
-    grid_kind: str
-    n_rows: int
-    resolution: float = 0.0          # median grid spacing
-
-    def to_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
-
-
-def location_set(scan: GridScan, i: int, alpha: float) -> tuple[float, float]:
-    """Connected grid set around peak ``i`` with t²(peak) − t²(g) ≤ c_α and the same sign."""
-    t2 = np.where(scan.valid, scan.t ** 2, -np.inf)
-    with np.errstate(invalid="ignore"):
-        inside = (t2[i] - t2 <= lr_critical(alpha)) | (np.isinf(t2[i]) & np.isinf(t2)) & (np.sign(scan.t) == np.sign(scan.t[i]))
-    a = b = i
-    while a > 0 and inside[a - 1]:
-        a -= 1
-    while b < scan.grid.size - 1 and inside[b + 1]:
-        b += 1
-    return float(scan.grid[a]), float(scan.grid[b])
-
-
-def find_peaks(scan: GridScan, null: NullSup, alpha: float, max_peaks: int = MAX_PEAKS) -> list[Peak]:
-    """Grid points whose |t| beats the search-adjusted critical value, strongest first.
-
-    After each peak the grid points within 2h are set aside (their windows overlap it), so
-    every peak is a separate break.  Later peaks keep the full-grid critical value, which is
-    conservative.
-    """
-    out = []
-    t = np.where(scan.valid, np.abs(scan.t), -1.0)
-    crit = null.critical(alpha)
-    spacing = float(np.median(np.diff(scan.grid))) if scan.grid.size > 1 else 0.0
-    for _ in range(max_peaks):
-        i = int(np.argmax(t))
-        if t[i] < 0:
-            break
-        p = null.p_value(scan.t[i])
-        if not p < alpha:
-            break
-        lo, hi = location_set(scan, i, alpha)
-        out.append(Peak(float(scan.grid[i]), lo, hi, float(scan.jump[i]), float(scan.se[i]),
-                        float(scan.t[i]), p, crit, scan.bandwidth, null.n_points, scan.kind,
-                        scan.n_rows, spacing))
-        t[np.abs(scan.grid - scan.grid[i]) < 2 * scan.bandwidth] = -1.0
-    return out
-
-
-@dataclass
-class PairSearch:
-    """The discovery search of one running variable × treatment."""
-
-    running: str
-    treatment: str
-    bandwidth: float
-    n_grid_points: int
-    sup_t: float
-    search_p: float
-    critical: float
-    peaks: list
-
-    def to_dict(self) -> dict:
-        return {"running": self.running, "treatment": self.treatment, "bandwidth": self.bandwidth,
-                "n_grid_points": self.n_grid_points, "sup_t": self.sup_t,
-                "search_p": self.search_p, "critical": self.critical,
-                "locations": [p.location for p in self.peaks]}
-
-
-def search_pair(stats: BinnedStats, treatment: str, alpha: float = 0.05, kernel: str = "triangular",
-                min_rows: int = 50, seed: int = 0, draws: int = DRAWS,
-                max_grid: int = MAX_GRID, screen: bool = False) -> PairSearch:
-    """Grid scan, null simulation and peaks for one running variable × treatment.
-
-    ``screen`` (simulation studies only) skips the multiplier simulation when even the
-    exact sup-|t| p-value over a subset of mutually independent grid points (windows 2h apart,
-    Šidák) is at least alpha; that p-value is a lower bound of the search-adjusted one, so the
-    decision is unchanged and the q-values can only get smaller (conservative for a false
-    discovery rate measured with it).
-    """
-    sc = scan_grid(stats, treatment, kernel=kernel, min_rows=min_rows, max_grid=max_grid)
-    valid = sc.valid
-    sup = float(np.abs(sc.t[valid]).max()) if valid.any() else float("nan")  # may be inf
-    if screen and valid.any():
-        p_low = _independent_p(sc, sup)
-        if p_low >= alpha:
-            return PairSearch(stats.running, treatment, sc.bandwidth, int(valid.sum()), sup,
-                              p_low, float("nan"), [])
-    null = null_sup(sc, draws, seed)
-    peaks = find_peaks(sc, null, alpha) if valid.any() else []
-    return PairSearch(stats.running, treatment, sc.bandwidth, null.n_points, sup,
-                      null.p_value(sup), null.critical(alpha), peaks)
-
-
-def _independent_p(scan: GridScan, sup: float) -> float:
-    """P(max |Z| ≥ sup) over k independent points, k = grid points spaced more than 2h apart."""
-    g = scan.grid[scan.valid]
-    k, last = 0, -np.inf
-    for c in g:
-        if c - last >= 2 * scan.bandwidth:
-            k, last = k + 1, c
-    if not np.isfinite(sup):
-        return 0.0
-    return float(1 - (1 - 2 * sps.norm.sf(sup)) ** max(k, 1))
-
-
-def near_candidate(peak: Peak, cutoffs: list[float], origins: list[str] | None = None) -> int | None:
-    """Index of the declared/round cutoff a peak belongs to, or None.
-
-    A round cutoff belongs to the peak when it lies in the location confidence set (widened by
-    one grid spacing, the search's resolution).  A declared cutoff also belongs to it when it is
-    within half the pilot bandwidth of that set: a rule's value is a specific claim, and "care
-    follows a value near the declared one" is the finding to report on it.  The nearest wins.
-    """
-    if not cutoffs:
-        return None
-    origins = origins or ["round"] * len(cutoffs)
-    best, dist = None, np.inf
-    for i, (c, o) in enumerate(zip(cutoffs, origins)):
-        reach = peak.resolution + (peak.bandwidth / 2 if o == "declared" else 0.0)
-        if peak.ci_low - reach <= c <= peak.ci_high + reach and abs(c - peak.location) < dist:
-            best, dist = i, abs(c - peak.location)
-    return best
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,7 @@ import numpy as np
 
 from . import __version__
 from .bins import BinnedStats
-from .candidates import Candidate, declared, round_cutoffs
+from .candidates import Candidate, declared, on_lattice, round_cutoffs
 from .diagnostics import covariate_balance
 from .diagnostics.design import design_checks
 from .engines import BinPlan, bin_table
@@ -207,13 +207,15 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         trs = list(r.treatments or spec.treatments)
         dec, why = declared(r, trs, rules)
         notes.extend(why)
+        lattice = binned.stats[r.column].pooled()
+        dec = [on_lattice(c, lattice) for c in dec]       # recorded values: see scanner.candidates
         cands.extend(dec)
         if spec.round_numbers:
             taken = {(c.treatment, c.cutoff) for c in dec}
-            for c in round_cutoffs(binned.stats[r.column].pooled(), spec.min_rows):
+            for c in round_cutoffs(lattice, spec.min_rows):
                 for t in trs:
                     if (t, c) not in taken:
-                        cands.append(Candidate(r.column, t, c, "round"))
+                        cands.append(on_lattice(Candidate(r.column, t, c, "round"), lattice))
     rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     screen_p = []
@@ -222,6 +224,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         cands, screen_p, screen["pairs"] = first_stage(cands, pooled, spec)
     for i, c in enumerate(cands):
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+        row.update(c.lattice_fields())
         # Declared rules with an effective date: jumps before/after it from the period keys.
         row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
         if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
@@ -351,23 +354,31 @@ def _design(fit) -> str:
 
 
 # ---------------------------------------------------------------------------------- discovery
-_CONFIRM_KEYS = ("jump", "se", "ci_low", "ci_high", "p_value", "z", "bandwidth", "n_left",
-                 "n_right", "distinct_left", "distinct_right", "left", "right", "reason")
+_CONFIRM_KEYS = ("jump", "se", "ci_low", "ci_high", "interval", "p_value", "conventional_p",
+                 "bias_bound", "z", "bandwidth", "n_left", "n_right", "distinct_left",
+                 "distinct_right", "left", "right", "reason")
 
 
 def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
                    screen: bool = False) -> tuple[list, dict]:
-    """Search every running variable × treatment for undeclared cutoffs (scanner.discover).
+    """Search every running variable × treatment for undeclared cutoffs (scanner.breaks).
 
     With ``spec.confirm`` (default) the search runs on half 0 of the seeded split and every
-    discovered cutoff is estimated and tested on half 1 (Card, Mas & Rothstein 2008); the row's
-    ``p_value`` is the held-out p-value.  A break found next to a declared or round candidate of
-    the same pair is reported on that candidate (``best_fit_cutoff``) instead of a new row.
-    ``screen`` is for simulation studies (see scanner.discover.search_pair).
-    Appends discovered rows to ``rows``; returns the p-values of scans that produced no row (each
-    such scan is one test in the q-value family, see scanner.score) and a summary dict.
+    break it finds is estimated and tested on half 1 (Card, Mas & Rothstein 2008), each break on
+    its own.  A break next to a declared or round candidate of the same pair is reported on that
+    candidate (``best_fit_cutoff``) instead of a new row.  ``screen`` is for simulation studies
+    (see scanner.breaks.search_pair).
+
+    A discovered row's ``jump``, ``se``, ``ci_low``/``ci_high`` and ``p_value`` all come from
+    the held-out half: the p-value and interval allow for the worst-case smoothing bias
+    (``interval`` = "search bias-aware"), and ``confirm_half`` repeats exactly those fields.
+    Appends discovered rows to ``rows``; returns the p-values of the search tests that produced
+    no row — every step of the sequential search is one test in the q-value family (see
+    scanner.score): a step whose break became a row is counted by that row's held-out p-value;
+    a step whose break was attached to a declared/round candidate, and the last step that found
+    nothing more, by their search-adjusted p-values.
     """
-    from .discover import bias_bound, near_candidate, search_pair
+    from .breaks import near_candidate, search_pair
     split = spec.confirm and any((st.half >= 0).any() for st in stats.values())
     extra_p, pairs, n_grid, cache1 = [], [], 0, {}
     k = 0
@@ -383,40 +394,48 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
             pairs.append(ps.to_dict())
             own = [x for x in rows if x["running"] == r.column and x["treatment"] == t
                    and x["origin"] in ("declared", "round")]
-            new = 0
             for pk in ps.peaks:
                 j = near_candidate(pk, [x["cutoff"] for x in own], [x["origin"] for x in own])
-                disc = pk.to_dict()
+                loc = dict(location=pk.location, location_ci_low=pk.ci_low,
+                           location_ci_high=pk.ci_high, location_ci_low_open=pk.ci_low_open,
+                           search_p=pk.search_p, search_step=pk.step, discovery_half=pk.to_dict())
                 if j is not None:
-                    x = own[j]
-                    x.update(best_fit_cutoff=pk.location, location=pk.location,
-                             location_ci_low=pk.ci_low, location_ci_high=pk.ci_high,
-                             search_p=pk.search_p, discovery_half=disc)
+                    own[j].update(best_fit_cutoff=pk.location, **loc)
+                    extra_p.append(pk.search_p)
                     continue
-                cand = Candidate(r.column, t, pk.location, "discovered")
-                row = evaluate(test, cand, spec, cache1)
-                row.update(location=pk.location, location_ci_low=pk.ci_low,
-                           location_ci_high=pk.ci_high, search_p=pk.search_p,
-                           discovery_half=disc, split=bool(split),
-                           confirm_half={key: row.get(key) for key in _CONFIRM_KEYS} if split else None)
-                # A search seeks out curvature that looks like a jump: the discovered cutoff is
-                # tested allowing for the worst-case smoothing bias (scanner.discover.bias_bound).
-                bb = bias_bound(test, t, pk.location, row["bandwidth"], spec.kernel)
-                row.update(conventional_p=row["p_value"], bias_bound=bb.bound,
-                           curvature_bound=bb.curvature)
-                pb = bb.p_value(row["jump"], row["se"])
-                row["p_value"] = pb if np.isfinite(pb) else row["p_value"]
-                if split:
-                    row["confirm_half"]["p_value"] = row["p_value"]
-                else:
-                    # Same rows for search and estimate: only the search-adjusted p is honest.
-                    row["p_value"] = max(row["p_value"], pk.search_p)
-                rows.append(row)
-                new += 1
-            if new == 0:
-                extra_p.append(ps.search_p)
+                rows.append(_confirmed_row(test, Candidate(r.column, t, pk.location, "discovered"),
+                                           pk, spec, cache1, split, loc))
+            extra_p.extend(x["search_p"] for x in ps.tests[len(ps.peaks):])
             if progress:
                 progress("discover", 1, None)
     return extra_p, {"n_grid_points": n_grid, "n_scans": len(pairs), "split": bool(split),
                      "split_by": (spec.unit or "row position") if split else None,
-                     "seed": spec.seed, "pairs": pairs}
+                     "seed": spec.seed, "pairs": pairs,
+                     "n_search_tests": sum(len(p["steps"]) for p in pairs)}
+
+
+def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split: bool,
+                   loc: dict) -> dict:
+    """Estimate and test one discovered break on the held-out half.
+
+    A search seeks out curvature that looks like a jump, so the test allows for the worst-case
+    smoothing bias B̄ (scanner.discover.bias_bound): p = P(|N(b, 1)| ≥ |t|) and the interval
+    jump ± cv·se with cv the 95% quantile of |N(b, 1)|, b = B̄/se (Armstrong & Kolesár 2020,
+    the fixed-length interval; Kolesár & Rothe 2018), so the interval and p tell one story.
+    """
+    from scipy import stats as sps
+    from .discover import bias_bound
+    row = evaluate(test, cand, spec, cache)
+    row.update(loc, split=bool(split))
+    bb = bias_bound(test, cand.treatment, cand.cutoff, row["bandwidth"], spec.kernel)
+    row.update(conventional_p=row["p_value"], bias_bound=bb.bound, curvature_bound=bb.curvature)
+    pb = bb.p_value(row["jump"], row["se"])
+    if np.isfinite(pb):
+        cv = float(sps.foldnorm.ppf(0.95, bb.bound / row["se"]))
+        row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],
+                   ci_high=row["jump"] + cv * row["se"], interval="search bias-aware")
+    if not split:
+        # Same rows for search and estimate: only the search-adjusted p is honest.
+        row["p_value"] = max(row["p_value"], pk.search_p)
+    row["confirm_half"] = {key: row.get(key) for key in _CONFIRM_KEYS} if split else None
+    return row

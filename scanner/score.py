@@ -341,7 +341,9 @@ def search_reasons(c: dict) -> list[str]:
     d = c.get("discovery_half")
     if not d:
         return []
-    where = (f"best fit at {d['location']:g} (95% set {d['ci_low']:g} to {d['ci_high']:g})")
+    where = (f"best fit at {d['location']:g} (95% set ({d['ci_low']:g}, {d['ci_high']:g}], "
+             "a gap between recorded values)" if d.get("ci_low_open") else
+             f"best fit at {d['location']:g} (95% set {d['ci_low']:g} to {d['ci_high']:g})")
     found = (f"|t| = {abs(d['t']):.1f} over {d['n_grid_points']} grid points, search-adjusted "
              f"{format_p_eq('p', d['search_p'])}")
     if c["origin"] != "discovered":

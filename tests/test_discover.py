@@ -8,8 +8,10 @@ from scipy import stats as sps
 from statsmodels.stats.multitest import multipletests
 
 from scanner.bins import BinnedStats
-from scanner.discover import (BiasBound, bias_bound, lr_critical, null_sup, scan_grid,
-                              scan_grid_points, search_pair, _covariance)
+from scanner.breaks import search_pair
+from scanner.discover import (BiasBound, bias_bound, null_sup, scan_grid, scan_grid_points,
+                              _covariance)
+from scanner.locate import lr_critical
 from scanner.engines import BinPlan, bin_table
 from scanner.io import open_table
 from scanner.score import finalize
@@ -210,4 +212,37 @@ def test_break_next_to_a_declared_cutoff_is_reported_on_it(tmp_path):
     c = d["candidates"][0]
     assert c["cutoff"] == 7.5 and abs(c["best_fit_cutoff"] - 8.0) < 0.05
     assert any("declared at 7.5, best fit at 8" in r for r in c["reasons"])
-    assert d["n_grid_points"] > 100 and d["n_tested"] == 2
+    # Tests run: the declared cutoff, the search step whose break was attached to it, and the
+    # step that found no further break (each search step is one test in the q-value family).
+    assert d["n_grid_points"] > 100 and d["n_tested"] == 3
+    assert [s["step"] for s in d["search"]["pairs"][0]["steps"]] == [1, 2]
+
+
+# ------------------------------------------------------------------ location-set regressions
+def test_location_set_stops_at_a_change_of_sign():
+    # Regression: the same-sign condition bound only to the infinite-t case (A | B & C), so a
+    # neighbour with a jump of the opposite sign joined the set.  Hansen (2000)'s set is for
+    # one break of one direction; a sign change is another break.
+    from scanner.breaks import location_set
+    from scanner.discover import GridScan
+    t = np.array([1.5, 3.0, -2.5, 0.4])
+    g = np.array([10.0, 11.0, 12.0, 13.0])
+    sc = GridScan("x", "d", g, 2.0, "support", t * 0.01, np.full(4, 0.01), t,
+                  np.full(4, 100), np.full(4, 100), 800)
+    assert location_set(sc, 1, 0.05) == (10.0, 11.0)
+
+
+def test_grid_points_are_exact_decimal_bin_edges():
+    # Regression: grid points built as origin + k·width gave 33.300000000000004 for the edge
+    # 33.3, so a location set sitting on the right edge "missed" 33.3.  The edges must be the
+    # engines' exact decimals (scanner/engines/grid.py: edge k is (k·p)/10^d).
+    rng = np.random.default_rng(0)
+    x = rng.lognormal(3.4, 0.35, 40000)
+    df = pd.DataFrame({"x": x, "d": (rng.random(x.size) < 0.3).astype(float)})
+    st = binned(df, "x", ["d"], ["d"])
+    assert st.kind == "width"
+    grid, kind = scan_grid_points(st, "d")
+    assert kind == "quantile"
+    dec = -int(np.floor(np.log10(st.width))) + 1
+    off = [float(g) for g in grid if round(float(g), dec) != float(g)]
+    assert not off, off[:5]

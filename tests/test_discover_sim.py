@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 
 from benchmarks.discover_sim import SHAPES, binned, null_rep, smooth_uptakes
-from scanner.discover import search_pair
+from scanner.breaks import search_pair
 
 
 def _search_rate(shape, treatment, reps, n=20_000):

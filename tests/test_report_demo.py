@@ -140,5 +140,6 @@ def test_report_wording_of_tiny_p_values_and_the_reported_interval(demo):
     assert not re.search(r"=\s*<\s*0\.0001", text)
     assert "q < 0.0001" in text
     first_card = html.split("Jump in uptake: intervals", 1)[1].split("</table>", 1)[0]
-    assert "reported (robust)" in first_card and first_card.count(">conventional<") == 1
+    kind = json.loads((demo / "results.json").read_text())["candidates"][0]["interval"]
+    assert f"reported ({kind})" in first_card and first_card.count(">conventional<") == 1
     assert ">None<" not in html              # a missing value shows as a dash

@@ -36,6 +36,8 @@ META_INT_KEYS = frozenset({
     "year", "period", "n_cutoffs", "n_periods", "n_covariates", "hidden_sides",
     # numbers of cutoffs examined, not of persons
     "placebo_exceed", "placebo_n", "n_grid_points", "grid_points", "n_scans",
+    # steps of the sequential break search and how many tests it ran
+    "step", "search_step", "n_search_tests",
 })
 
 
