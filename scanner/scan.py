@@ -150,13 +150,20 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
     columns = tuple(dict.fromkeys(spec.treatments + spec.covariates + spec.outcomes))
     pairs = tuple((t, y) for t in spec.treatments for y in spec.outcomes if y != t)
+    # Declared cutoffs are known before the pass: they become bin edges (no bin straddles one).
+    decl = {}
+    for r in spec.running:
+        decl[r.column] = declared(r, list(r.treatments or spec.treatments), rules)
     plan = BinPlan(running=tuple(r.column for r in spec.running), columns=columns,
                    treatments=spec.treatments, pairs=pairs,
                    bin_width={r.column: r.bin_width for r in spec.running if r.bin_width},
                    date=spec.date,
                    split_seed=(spec.seed if spec.discover and spec.confirm and engine != "spark"
                                else None),
-                   split_unit=spec.unit, batch_rows=spec.batch_rows)
+                   split_unit=spec.unit, batch_rows=spec.batch_rows,
+                   edges={col: tuple((c.cutoff, c.right_closed) for c in dec)
+                          for col, (dec, _) in decl.items()},
+                   round_edges=spec.round_numbers)
     deduped = no_unit = 0
     if spec.discover and spec.confirm and engine == "spark":
         notes.append("warning: the Spark engine has no row positions for the held-out half, so "
@@ -178,7 +185,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     cands = []
     for r in spec.running:
         trs = list(r.treatments or spec.treatments)
-        dec, why = declared(r, trs, rules)
+        dec, why = decl[r.column]
         notes.extend(why)
         cands.extend(dec)
         if spec.round_numbers:
@@ -191,6 +198,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     for i, c in enumerate(cands):
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+        add_binning_error(row, pooled[c.running], c, spec)
         # Declared rules with an effective date: jumps before/after it from the period keys.
         row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
         if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
@@ -209,6 +217,26 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)
+
+
+def add_binning_error(row: dict, stats: BinnedStats, cand: Candidate, spec: ScanSpec) -> None:
+    """Bound on how far the jump from bins can be from the row-level jump (scanner.binerror);
+    flag ``binning`` where it exceeds a quarter of the SE (our rule)."""
+    from .binerror import NEGLIGIBLE, binning_error
+    h = row.get("bandwidth", np.nan)
+    if stats.kind == "exact" or not np.isfinite(row.get("jump", np.nan)) or not np.isfinite(h):
+        bound, why = (0.0 if stats.kind == "exact" else float("nan")), None
+    else:
+        bound, why = binning_error(stats, cand.treatment, cand.cutoff, row.get("bandwidth_left", h),
+                                   row.get("bandwidth_right", h), spec.kernel, spec.degree,
+                                   cand.right_closed)
+    se = row.get("se", np.nan)
+    row["binning_error"] = bound
+    row["binning_error_se"] = bound / se if np.isfinite(se) and se > 0 else float("nan")
+    row["binning_note"] = why
+    if not (row["binning_error_se"] <= NEGLIGIBLE) and np.isfinite(row.get("jump", np.nan)) \
+            and stats.kind != "exact" and not (np.isnan(bound) and why is None):
+        row.setdefault("extra_flags", []).append("binning")
 
 
 def _data_info(binned, spec: ScanSpec, deduped: int) -> dict:

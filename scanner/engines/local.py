@@ -218,10 +218,28 @@ def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Colum
 
 
 # ---------------------------------------------------------------------- grid state
-def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int) -> BinnedStats:
-    """``stats`` with bins re-keyed by ``key`` on the grid (p, d); sums add up exactly."""
-    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0)
-    return base._grouped(key.astype(float), stats.period, stats.half, stats._arrays())
+def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int, forced=()) -> BinnedStats:
+    """``stats`` with bins re-keyed by grid bin ``key`` on the grid (p, d); sums add up exactly.
+
+    Bins of the new grid that hold a forced edge are split there.  Each source bin lies wholly
+    on one side of every forced edge (an exact value, or a bin already split at it or ending on
+    it), so its midpoint tells the side.
+    """
+    forced = tuple(sorted(set(forced)))
+    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0, edges=forced)
+    key = np.asarray(key, np.int64)
+    lo, hi = stats.bounds()
+    j = grid.sub_index(key, (lo + hi) / 2, grid.inner(forced, p, d))
+    fkey = key.astype(float) if j is None else key + j / grid.SUB
+    return base._grouped(fkey, stats.period, stats.half, stats._arrays())
+
+
+def _splittable(stats: BinnedStats, value: float) -> bool:
+    """True when no bin of ``stats`` holds rows on both sides of ``value`` (it can become an edge)."""
+    if stats.kind == "exact":
+        return True
+    lo, hi = stats.bounds()
+    return not ((lo < value) & (value < hi)).any()
 
 
 class Accumulator:
@@ -230,20 +248,28 @@ class Accumulator:
     def __init__(self, running: str, plan: BinPlan):
         self.plan = plan
         w = plan.bin_width.get(running)
+        self.forced = tuple(sorted(set((float(v), bool(rc)) for v, rc in plan.edges.get(running, ()))))
         if w:
             self.state, self.grid = "user", grid.grid_of_width(float(w))
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs, "width",
-                                           grid.width_of(*self.grid), 0.0)
+                                           grid.width_of(*self.grid), 0.0, self.forced)
         else:
             self.state, self.grid = "exact", None
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
 
     def key(self, x: np.ndarray, ok: np.ndarray):
-        """Row keys for the current state, and whether they are integers (dense codes)."""
+        """Row keys for the current state, whether they are integers (dense codes), and the
+        number of parts per bin (keys are ``k*parts + j`` for part j of grid bin k)."""
         if self.state == "exact":
-            return x, False
-        return np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0), True
+            return x, False, 1
+        xs = np.where(ok, x, 0.0)
+        k = np.where(ok, grid.keys(xs, *self.grid), 0)
+        j = grid.sub_index(k, xs, grid.inner(self.forced, *self.grid))
+        if j is None:
+            return k, True, 1
+        parts = int(j.max()) + 1
+        return k * parts + j, True, parts
 
     def _distinct(self, st: BinnedStats) -> int:
         # Bins are unique per key unless period/half keys split them.
@@ -255,7 +281,7 @@ class Accumulator:
         Checked before folding, so a batch of continuous values never becomes a batch-sized
         set of exact bins.
         """
-        key, dense = self.key(x, ok)
+        key, dense, parts = self.key(x, ok)
         out = _codes(key, ok, dense)
         f = self.plan.fine_keys
         if self.state == "exact" and out[2] + self._distinct(self.stats) > f:
@@ -268,10 +294,14 @@ class Accumulator:
                 self.level = grid.start_level(vals, f)
                 self.grid = grid.power_grid(self.level)
                 # Exact keys are the raw values, so keying them is keying the rows.
-                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
+                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid,
+                                     self.forced)
                 self.state = "fine"
-                key, dense = self.key(x, ok)
+                key, dense, parts = self.key(x, ok)
                 out = _codes(key, ok, dense)
+        if parts > 1:       # part j of grid bin k has key k + j/SUB
+            g, u, nb = out
+            out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
         return out
 
     def add(self, part: BinnedStats) -> None:
@@ -280,8 +310,8 @@ class Accumulator:
         while self.state == "fine" and self._distinct(self.stats) > self.plan.fine_keys:
             self.level += 1
             self.grid = grid.power_grid(self.level)
-            self.stats = regroup(self.stats, np.floor_divide(self.stats.key.astype(np.int64), 10),
-                                 *self.grid)
+            self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
+                                 *self.grid, self.forced)
 
     def finish(self) -> BinnedStats:
         st = self.stats
@@ -292,10 +322,34 @@ class Accumulator:
                 return st
             m, e = grid.final_grid(np.unique(st.key), None, self.plan.max_bins)
             g = grid.series_grid(m, e)
-            return regroup(st, grid.keys(st.key, *g), *g)
-        m, e = grid.final_grid(np.unique(st.key), self.level, self.plan.max_bins)
+            return self._settle(st, grid.keys(st.key, *g), g)
+        m, e = grid.final_grid(np.unique(_base(st.key)), self.level, self.plan.max_bins)
         r = m * 10 ** (e - self.level)
-        return regroup(st, np.floor_divide(st.key.astype(np.int64), r), *grid.series_grid(m, e))
+        return self._settle(st, np.floor_divide(_base(st.key), r), grid.series_grid(m, e))
+
+    def _settle(self, st: BinnedStats, key, g) -> BinnedStats:
+        """The final grid, split at the forced edges and (``plan.round_edges``) at every round
+        value :func:`scanner.candidates.round_cutoffs` can propose on it, where the bins held
+        so far allow that exactly.  Splitting moves bin means, which can move the round values,
+        so this repeats until they settle."""
+        forced = set(self.forced)
+        out = regroup(st, key, *g, forced)
+        if not self.plan.round_edges:
+            return out
+        from ..candidates import round_cutoffs
+        for _ in range(5):
+            new = {(v, True) for v in round_cutoffs(out, 0)} - forced
+            new = {e for e in new if _splittable(st, e[0])}
+            if not new:
+                break
+            forced |= new
+            out = regroup(st, key, *g, forced)
+        return out
+
+
+def _base(key: np.ndarray) -> np.ndarray:
+    """Grid bin index of fixed-width keys (dropping the part of a split bin)."""
+    return np.floor(key).astype(np.int64)
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:

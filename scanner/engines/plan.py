@@ -28,6 +28,11 @@ class BinPlan:
     kernel : "sparse" (one scipy product per running variable) or "bincount" (plain numpy).
     split_unit : unit-id column; when set, the half is a seeded hash of the unit id (all rows of
         a unit fall in the same half, whatever the row order), else of the row position.
+    edges : per running variable, forced edges ``(cutoff, right_closed)`` known before the pass
+        (declared rules, converted to the column's unit): a fixed-width bin holding one is split
+        there, so no bin straddles a declared cutoff.
+    round_edges : also split the final grid at the round values the candidate rule can propose
+        (where the bins held during the pass allow it exactly).
     """
 
     running: tuple[str, ...]
@@ -43,6 +48,8 @@ class BinPlan:
     fine_keys: int = FINE_KEYS
     batch_rows: int = BATCH_ROWS
     kernel: str = "sparse"
+    edges: dict = field(default_factory=dict)
+    round_edges: bool = False
 
     @property
     def needed(self) -> list[str]:
