@@ -27,7 +27,7 @@ from .io import cleaned, open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
-from .timeline import BEFORE_AFTER_FIELDS, before_after
+from .timeline import BEFORE_AFTER_FIELDS, before_after, change_date
 
 
 @dataclass
@@ -163,7 +163,8 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                    split_unit=spec.unit, batch_rows=spec.batch_rows,
                    edges={col: tuple((c.cutoff, c.right_closed) for c in dec)
                           for col, (dec, _) in decl.items()},
-                   round_edges=spec.round_numbers)
+                   round_edges=spec.round_numbers,
+                   periods={col: _period_detail(dec, spec) for col, (dec, _) in decl.items()})
     deduped = no_unit = 0
     if spec.discover and spec.confirm and engine == "spark":
         notes.append("warning: the Spark engine has no row positions for the held-out half, so "
@@ -194,19 +195,9 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                 for t in trs:
                     if (t, c) not in taken:
                         cands.append(Candidate(r.column, t, c, "round"))
-    rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
-    for i, c in enumerate(cands):
-        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
-        add_binning_error(row, pooled[c.running], c, spec)
-        # Declared rules with an effective date: jumps before/after it from the period keys.
-        row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
-        if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
-            row.update(before_after(binned.stats[c.running], c, row["bandwidth"], spec.kernel,
-                                    spec.degree))
-        rows.append(row)
-        if progress:
-            progress("estimate", 1, len(cands))
+    rows = evaluate_all(cands, pooled, binned.stats, spec, progress,
+                        workers=1 if engine == "spark" else None)
     for row in rows:
         explain_nan(row)
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
@@ -217,6 +208,105 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     add_cleaning_info(data_info, coded, spec, no_unit)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search)
+
+
+def _evaluate_group(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
+                    total: int | None = None) -> list:
+    """Rows of a list of candidates, in order (one density cache for the group)."""
+    rows, density_cache = [], {}
+    for c in cands:
+        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+        add_binning_error(row, pooled[c.running], c, spec)
+        # Declared rules with an effective date: jumps before/after it from the period keys.
+        row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
+        if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
+            row.update(before_after(stats[c.running], c, row["bandwidth"], spec.kernel,
+                                    spec.degree))
+        rows.append(row)
+        if progress:
+            progress("estimate", 1, total)
+    return rows
+
+
+MIN_PARALLEL = 40    # fewer candidates than this are not worth a second process (measured: ~0.1 s fork)
+
+
+def workers_default() -> int:
+    """Processes for the candidate loop: ``CUTSCAN_WORKERS`` if set, else up to 2 (the cores)."""
+    import os
+    env = os.environ.get("CUTSCAN_WORKERS")
+    if env and env.strip().isdigit():
+        return max(1, int(env))
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+def split_by_running(cands, k: int) -> list[list[int]]:
+    """Candidate positions in ``k`` groups of whole running variables, balanced by count."""
+    by = {}
+    for i, c in enumerate(cands):
+        by.setdefault(c.running, []).append(i)
+    groups = [[] for _ in range(k)]
+    for idx in sorted(by.values(), key=len, reverse=True):
+        min(groups, key=len).extend(idx)
+    return [sorted(g) for g in groups if g]
+
+
+def evaluate_all(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
+                 workers: int | None = None) -> list:
+    """Evaluate every candidate; running variables are shared among ``workers`` processes.
+
+    Every candidate's row depends only on its own running variable's bins, so the rows are the
+    same whatever the split (tested).  The other processes are forked (they read the bins without
+    copying them) and send their rows back through a pipe; with one worker, too few candidates
+    or no ``fork`` on the platform, everything runs here.
+    """
+    import multiprocessing as mp
+    workers = workers_default() if workers is None else workers
+    groups = split_by_running(cands, workers) if len(cands) >= MIN_PARALLEL else [list(range(len(cands)))]
+    if len(groups) < 2 or "fork" not in mp.get_all_start_methods():
+        return _evaluate_group(cands, pooled, stats, spec, progress, len(cands))
+    ctx = mp.get_context("fork")
+    pipes, procs = [], []
+    for g in groups[1:]:
+        recv, send = ctx.Pipe(duplex=False)
+        proc = ctx.Process(target=_child, args=(send, [cands[i] for i in g], pooled, stats, spec),
+                           daemon=True)
+        proc.start()
+        send.close()
+        pipes.append(recv)
+        procs.append(proc)
+    rows: list = [None] * len(cands)
+    for i, row in zip(groups[0], _evaluate_group([cands[i] for i in groups[0]], pooled, stats,
+                                                 spec, progress, len(cands))):
+        rows[i] = row
+    for g, recv, proc in zip(groups[1:], pipes, procs):
+        ok, got = recv.recv()
+        proc.join()
+        if not ok:
+            raise got
+        for i, row in zip(g, got):
+            rows[i] = row
+        if progress:
+            progress("estimate", len(g), len(cands))
+    return rows
+
+
+def _child(send, cands, pooled, stats, spec) -> None:
+    try:
+        send.send((True, _evaluate_group(cands, pooled, stats, spec)))
+    except BaseException as exc:  # noqa: BLE001 - handed to the parent, which raises it
+        send.send((False, exc))
+    finally:
+        send.close()
+
+
+def _period_detail(dec: list, spec: ScanSpec) -> str:
+    """Period keys a running variable's bins need: quarters where a declared rule has an
+    effective date (before/after jumps), years otherwise (the report's timeline of the jump).
+    Each period multiplies the bins held during the pass, so none is kept that is not used."""
+    if any(change_date(c.rule) is not None for c in dec):
+        return "quarter"
+    return "year"
 
 
 def add_binning_error(row: dict, stats: BinnedStats, cand: Candidate, spec: ScanSpec) -> None:

@@ -37,6 +37,7 @@ from ..bins import BinnedStats
 from ..io import check_binary, numeric, period_codes
 from . import grid
 from .plan import BinPlan, BinResult
+from .sums import SlotSums
 
 
 def half_split(index: np.ndarray, seed: int) -> np.ndarray:
@@ -258,6 +259,19 @@ class Accumulator:
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
 
+    @property
+    def stats(self) -> BinnedStats:
+        return self.sums.stats()
+
+    @stats.setter
+    def stats(self, value: BinnedStats) -> None:
+        self.sums = SlotSums.of(value)
+
+    @property
+    def template(self) -> BinnedStats:
+        """An empty BinnedStats with the current layout (kind, grid, forced edges)."""
+        return self.sums.template
+
     def key(self, x: np.ndarray, ok: np.ndarray):
         """Row keys for the current state, whether they are integers (dense codes), and the
         number of parts per bin (keys are ``k*parts + j`` for part j of grid bin k)."""
@@ -271,10 +285,6 @@ class Accumulator:
         parts = int(j.max()) + 1
         return k * parts + j, True, parts
 
-    def _distinct(self, st: BinnedStats) -> int:
-        # Bins are unique per key unless period/half keys split them.
-        return st.distinct_values() if st.keyed else st.n_bins
-
     def codes(self, x: np.ndarray, ok: np.ndarray):
         """Group codes of a batch's rows, leaving exact bins first if the batch would overflow.
 
@@ -284,8 +294,8 @@ class Accumulator:
         key, dense, parts = self.key(x, ok)
         out = _codes(key, ok, dense)
         f = self.plan.fine_keys
-        if self.state == "exact" and out[2] + self._distinct(self.stats) > f:
-            vals = np.union1d(out[1], self.stats.key)
+        if self.state == "exact" and out[2] + self.sums.n_keys > f:
+            vals = np.union1d(out[1], self.sums.bin_keys)
             if vals.size > f:
                 # Any set of more than fine_keys of the table's values certifies the start
                 # level (grid.start_level), so a spread subset of them is enough.
@@ -306,8 +316,8 @@ class Accumulator:
 
     def add(self, part: BinnedStats) -> None:
         """Add one batch's bins; coarsen the power-of-ten grid while it holds too many."""
-        self.stats = self.stats.merge(part)
-        while self.state == "fine" and self._distinct(self.stats) > self.plan.fine_keys:
+        self.sums.add(part)
+        while self.state == "fine" and self.sums.n_keys > self.plan.fine_keys:
             self.level += 1
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
@@ -366,18 +376,19 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         for t in plan.treatments:
             check_binary(cols[t], t, table.name)
         packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
-        extra = None
-        if plan.date or plan.split_seed is not None:
-            period = (period_codes(batch, plan.date, table.name) if plan.date
-                      else np.full(m, -1, np.int32))
-            if plan.split_seed is None:
-                half = np.full(m, -1, np.int8)
-            elif plan.split_unit:
+        dated = plan.date in plan.needed if plan.date else False
+        quarter = period_codes(batch, plan.date, table.name) if dated else None
+        half = None
+        if plan.split_seed is not None:
+            if plan.split_unit:
                 half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
             else:
                 half = half_split(np.arange(rows, rows + m), plan.split_seed)
-            extra = (period, half)
+        extras = {}
         for r in plan.running:
+            extras[r] = _extra(plan.period_of(r), quarter, half, m)
+        for r in plan.running:
+            extra = extras[r]
             x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
             ok = np.isfinite(x)
             isn = np.isnan(x)
@@ -385,12 +396,21 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             nonfinite[r] += int(m - ok.sum() - isn.sum())
             a = acc[r]
             codes = a.codes(x, ok)
-            empty = a.stats.restrict(np.zeros(a.stats.n_bins, bool))
-            a.add(fold(r, codes, x, ok, extra, packed, empty, plan.kernel))
+            a.add(fold(r, codes, x, ok, extra, packed, a.template, plan.kernel))
         rows += m
         if progress:
             progress(m)
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
+
+
+def _extra(detail: str, quarter, half, m: int):
+    """(period, half) keys of a batch's rows for one running variable, or None for neither."""
+    if detail == "none" or quarter is None:
+        if half is None:
+            return None
+        return np.full(m, -1, np.int32), half
+    period = quarter if detail == "quarter" else np.where(quarter >= 0, quarter // 4 * 4, -1)
+    return period.astype(np.int32), (np.full(m, -1, np.int8) if half is None else half)
 
 
 def _role(column: str, plan: BinPlan) -> str:

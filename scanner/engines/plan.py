@@ -31,6 +31,10 @@ class BinPlan:
     edges : per running variable, forced edges ``(cutoff, right_closed)`` known before the pass
         (declared rules, converted to the column's unit): a fixed-width bin holding one is split
         there, so no bin straddles a declared cutoff.
+    periods : per running variable, the period detail its bins keep when ``date`` is set:
+        ``"quarter"`` (the default), ``"year"`` (keys year*4, the year's first quarter) or
+        ``"none"``.  Memory and time grow with the bins × periods kept, so a scan asks for
+        quarters only where a dated rule needs them.
     round_edges : also split the final grid at the round values the candidate rule can propose
         (where the bins held during the pass allow it exactly).
     """
@@ -50,11 +54,16 @@ class BinPlan:
     kernel: str = "sparse"
     edges: dict = field(default_factory=dict)
     round_edges: bool = False
+    periods: dict = field(default_factory=dict)
+
+    def period_of(self, running: str) -> str:
+        """Period detail kept for ``running``: "quarter", "year" or "none"."""
+        return self.periods.get(running, "quarter") if self.date else "none"
 
     @property
     def needed(self) -> list[str]:
         cols = list(dict.fromkeys(list(self.running) + list(self.columns)))
-        if self.date:
+        if self.date and any(self.period_of(r) != "none" for r in self.running):
             cols.append(self.date)
         if self.split_seed is not None and self.split_unit and self.split_unit not in cols:
             cols.append(self.split_unit)
