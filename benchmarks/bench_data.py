@@ -86,10 +86,22 @@ def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
+def child_peak_rss_mb() -> float:
+    """Peak RSS of the largest joined child (the scan's forked worker; it shares the parent's
+    pages copy-on-write, so parent + child overstates their joint use)."""
+    return resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+
+
+def load() -> str:
+    """The 1-, 5- and 15-minute load averages now (other developers share the 2 cores)."""
+    return "/".join(f"{v:.1f}" for v in os.getloadavg())
+
+
 def cpu_seconds() -> float:
     """User + system CPU time of this process so far (less distorted than wall time on a shared machine)."""
     u = resource.getrusage(resource.RUSAGE_SELF)
-    return u.ru_utime + u.ru_stime
+    c = resource.getrusage(resource.RUSAGE_CHILDREN)      # the scan's forked worker, once joined
+    return u.ru_utime + u.ru_stime + c.ru_utime + c.ru_stime
 
 
 def child(script: Path, *args) -> dict:

@@ -37,7 +37,7 @@ from ..bins import BinnedStats
 from ..io import check_binary, numeric, period_codes
 from . import grid
 from .plan import BinPlan, BinResult
-from .sums import SlotSums
+from .sums import SlotSums, unpack
 
 
 def half_split(index: np.ndarray, seed: int) -> np.ndarray:
@@ -105,6 +105,31 @@ class Columns:
         self.mat = np.column_stack(parts) if parts else np.zeros((m, 0))
         self.names, self.pairs, self.binary = tuple(names), tuple(pairs), set(binary)
 
+    def gather(self, template: BinnedStats) -> np.ndarray:
+        """Column of ``[per-bin sums of mat | row count]`` for each sum after (n, Σx, Σx²) in
+        the layout of :mod:`scanner.engines.sums`; -1 is the row count."""
+        idx = self.index
+        s1 = [idx[("s1", c)] for c in template.columns]
+        s2 = [idx.get(("s2", c), idx[("s1", c)]) for c in template.columns]   # 0/1: Σy² = Σy
+        cnt = [idx.get(("cnt", c), -1) for c in template.columns]
+        out = cnt + s1 + s2
+        pairs = {f: [] for f in ("pn", "pa", "pb", "paa", "pbb", "pab")}
+        for a, b in template.pairs:
+            ja, jb = template.col(a), template.col(b)
+            pairs["pab"].append(idx[("pab", a, b)])
+            if ("pn", a, b) in idx:
+                for f in ("pn", "pa", "pb", "paa", "pbb"):
+                    pairs[f].append(idx[(f, a, b)])
+            else:
+                pairs["pn"].append(-1)
+                pairs["pa"].append(s1[ja])
+                pairs["pb"].append(s1[jb])
+                pairs["paa"].append(s2[ja])
+                pairs["pbb"].append(s2[jb])
+        for f in ("pn", "pa", "pb", "paa", "pbb", "pab"):
+            out += pairs[f]
+        return np.array(out, np.int64)
+
 
 def _segment_sums(g: np.ndarray, nb: int, mat: np.ndarray, kernel: str) -> np.ndarray:
     """Column sums of ``mat`` per group ``g`` (0..nb-1); rows with g == nb are dropped."""
@@ -164,58 +189,59 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
     return g, np.asarray(uniq), nb
 
 
-def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
-         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
+def keyed(period: np.ndarray, half: np.ndarray):
+    """One small integer per row for its (period, half) keys: (code, number of codes, first period).
+
+    Periods are counted from the batch's first one (0 = missing), so composite codes with the
+    bin stay a dense range and need no hashing.
+    """
+    period = period.astype(np.int64)
+    dated = period >= 0
+    p0 = int(period[dated].min()) if dated.any() else 0
+    ext = np.where(dated, period - p0 + 1, 0) * 3 + (half.astype(np.int64) + 1)
+    return ext, int(ext.max()) + 1, p0
+
+
+def fold_raw(codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns, template: BinnedStats,
+             kernel: str = "sparse"):
     """Per-bin sums of one batch for rows with ``ok`` (finite running variable).
 
-    ``codes`` is ``_codes(key, ok, ...)``; ``extra`` is None or (period, half) per row;
-    ``template`` gives layout, kind and grid.
+    ``codes`` is ``_codes(key, ok, ...)`` with at least one group; ``extra`` is None, (period,
+    half) per row, or :func:`keyed` of them; ``template`` gives the layout.  Returns (key, period, half, M)
+    with the sums as one matrix in the layout of :mod:`scanner.engines.sums`.
     """
     g, ukey, nb = codes
-    if nb == 0:
-        return template
     if extra is None:
         bkey = ukey.astype(float)
         bper = np.full(nb, -1, np.int32)
         bhalf = np.full(nb, -1, np.int8)
     else:
-        period, half = extra
-        ext = (period.astype(np.int64) + 1) * 3 + (half.astype(np.int64) + 1)
-        comp = np.where(g < nb, g * (int(ext.max()) + 1) + ext, -1)
+        ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
+        comp = np.where(g < nb, g * span + ext, -1)
         g, ucomp, nb = _codes(comp, g < nb, True)
-        span = int(ext.max()) + 1
         bkey = ukey[ucomp // span].astype(float)
-        bper = ((ucomp % span) // 3 - 1).astype(np.int32)
+        r = (ucomp % span) // 3
+        bper = np.where(r > 0, r - 1 + p0, -1).astype(np.int32)
         bhalf = ((ucomp % span) % 3 - 1).astype(np.int8)
     xs = np.where(ok, x, 0.0)
-    n = np.bincount(g, minlength=nb + 1)[:nb].astype(np.int64)
-    sx = np.bincount(g, weights=xs, minlength=nb + 1)[:nb]
-    sxx = np.bincount(g, weights=xs * xs, minlength=nb + 1)[:nb]
+    gather = batch.gather(template)
+    M = np.empty((nb, 3 + gather.size))
+    M[:, 0] = np.bincount(g, minlength=nb + 1)[:nb]
+    M[:, 1] = np.bincount(g, weights=xs, minlength=nb + 1)[:nb]
+    M[:, 2] = np.bincount(g, weights=xs * xs, minlength=nb + 1)[:nb]
     S = _segment_sums(g, nb, batch.mat, kernel)
-    idx = batch.index
-    k, p = len(template.columns), len(template.pairs)
-    cnt = np.empty((nb, k), np.int64)
-    s1 = np.empty((nb, k))
-    s2 = np.empty((nb, k))
-    for j, name in enumerate(template.columns):
-        s1[:, j] = S[:, idx[("s1", name)]]
-        s2[:, j] = S[:, idx[("s2", name)]] if ("s2", name) in idx else s1[:, j]
-        cnt[:, j] = np.rint(S[:, idx[("cnt", name)]]) if ("cnt", name) in idx else n
-    pf = {f: np.empty((nb, p)) for f in ("pa", "pb", "paa", "pbb", "pab")}
-    pn = np.empty((nb, p), np.int64)
-    for q, (a, b) in enumerate(template.pairs):
-        pf["pab"][:, q] = S[:, idx[("pab", a, b)]]
-        if ("pn", a, b) in idx:
-            pn[:, q] = np.rint(S[:, idx[("pn", a, b)]])
-            for f in ("pa", "pb", "paa", "pbb"):
-                pf[f][:, q] = S[:, idx[(f, a, b)]]
-        else:
-            ja, jb = template.col(a), template.col(b)
-            pn[:, q] = n
-            pf["pa"][:, q], pf["pb"][:, q] = s1[:, ja], s1[:, jb]
-            pf["paa"][:, q], pf["pbb"][:, q] = s2[:, ja], s2[:, jb]
-    return replace(template, key=bkey, period=bper, half=bhalf, n=n, sx=sx, sxx=sxx,
-                   cnt=cnt, s1=s1, s2=s2, pn=pn, **pf)
+    # every other sum is a column of S, or the row count (index -1 of [S | n])
+    M[:, 3:] = np.concatenate([S, M[:, :1]], axis=1)[:, gather]
+    return bkey, bper, bhalf, M
+
+
+def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
+         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
+    """:func:`fold_raw` as a BinnedStats."""
+    g, ukey, nb = codes
+    if nb == 0:
+        return template
+    return unpack(template, *fold_raw(codes, x, ok, extra, batch, template, kernel))
 
 
 # ---------------------------------------------------------------------- grid state
@@ -314,9 +340,11 @@ class Accumulator:
             out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
         return out
 
-    def add(self, part: BinnedStats) -> None:
-        """Add one batch's bins; coarsen the power-of-ten grid while it holds too many."""
-        self.sums.add(part)
+    def add(self, raw) -> None:
+        """Add one batch's sums (:func:`fold_raw`); coarsen the power-of-ten grid while it
+        holds too many bins."""
+        if raw is not None:
+            self.sums.add_raw(*raw)
         while self.state == "fine" and self.sums.n_keys > self.plan.fine_keys:
             self.level += 1
             self.grid = grid.power_grid(self.level)
@@ -384,9 +412,8 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
             else:
                 half = half_split(np.arange(rows, rows + m), plan.split_seed)
-        extras = {}
-        for r in plan.running:
-            extras[r] = _extra(plan.period_of(r), quarter, half, m)
+        by_detail = {d: _extra(d, quarter, half, m) for d in {plan.period_of(r) for r in plan.running}}
+        extras = {r: by_detail[plan.period_of(r)] for r in plan.running}
         for r in plan.running:
             extra = extras[r]
             x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
@@ -396,7 +423,8 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             nonfinite[r] += int(m - ok.sum() - isn.sum())
             a = acc[r]
             codes = a.codes(x, ok)
-            a.add(fold(r, codes, x, ok, extra, packed, a.template, plan.kernel))
+            a.add(fold_raw(codes, x, ok, extra, packed, a.template, plan.kernel)
+                  if codes[2] else None)
         rows += m
         if progress:
             progress(m)
@@ -408,9 +436,9 @@ def _extra(detail: str, quarter, half, m: int):
     if detail == "none" or quarter is None:
         if half is None:
             return None
-        return np.full(m, -1, np.int32), half
+        return keyed(np.full(m, -1, np.int32), half)
     period = quarter if detail == "quarter" else np.where(quarter >= 0, quarter // 4 * 4, -1)
-    return period.astype(np.int32), (np.full(m, -1, np.int8) if half is None else half)
+    return keyed(period, np.full(m, -1, np.int8) if half is None else half)
 
 
 def _role(column: str, plan: BinPlan) -> str:

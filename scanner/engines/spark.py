@@ -134,7 +134,7 @@ def bin_spark(table, plan: BinPlan, progress=None) -> BinResult:
     sel = [num(c).alias(f"c{j}") for j, c in enumerate(plan.columns)]
     for i, r in enumerate(plan.running):
         sel.append(F.col(r).cast("double").alias(f"x{i}"))
-    if plan.date:
+    if plan.date and plan.date in plan.needed:
         d = F.col(plan.date)
         if dict(df.dtypes)[plan.date] == "string":
             d = F.to_date(d)
@@ -192,6 +192,10 @@ def _row_aggs(F, x, cols, plan):
 def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
     x = F.col(xcol)
     rows = base.where(x.isNotNull() & ~F.isnan(x) & (F.abs(x) != float("inf")))
+    detail, p = plan.period_of(running), F.col("period")
+    if detail != "quarter":        # the period detail this running variable keeps (BinPlan.periods)
+        per = F.lit(-1) if detail == "none" else F.when(p >= 0, F.floor(p / 4) * 4).otherwise(-1)
+        rows = rows.withColumn("period", per.cast("int"))
     acc = Accumulator(running, plan)
     if acc.state == "user":
         binned = rows.groupBy(spark_split_keys(F, x, *acc.grid, acc.forced).alias("key"),

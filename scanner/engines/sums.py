@@ -22,9 +22,10 @@ _STRIDE = 3 * 2 ** 16          # period slots per bin: up to 65,536 periods × 3
 
 def _matrix(st: BinnedStats) -> np.ndarray:
     """All sums of ``st`` as one float64 matrix, one row per bin."""
-    cols = [st.n[:, None], st.sx[:, None], st.sxx[:, None], st.cnt, st.s1, st.s2]
-    cols += [getattr(st, f) for f in _PAIR_FIELDS]
-    return np.concatenate([np.asarray(c, float).reshape(st.n_bins, -1) for c in cols], axis=1)
+    k, p = len(st.columns), len(st.pairs)
+    cols = [(st.n, 1), (st.sx, 1), (st.sxx, 1), (st.cnt, k), (st.s1, k), (st.s2, k)]
+    cols += [(getattr(st, f), p) for f in _PAIR_FIELDS]
+    return np.concatenate([np.asarray(c, float).reshape(st.n_bins, w) for c, w in cols], axis=1)
 
 
 class SlotSums:
@@ -77,7 +78,7 @@ class SlotSums:
     def _grow(self, need: int) -> None:
         if need <= self.M.shape[0]:
             return
-        cap = max(need, 2 * self.M.shape[0], 1024)
+        cap = max(need + need // 2, 2 * self.M.shape[0], 1024)
         self.M = np.concatenate([self.M, np.zeros((cap - self.M.shape[0], self.width))])
         for name, dtype in (("key", float), ("period", np.int32), ("half", np.int8),
                             ("code", np.int64)):
@@ -88,11 +89,15 @@ class SlotSums:
 
     def add(self, part: BinnedStats) -> None:
         """Add a batch's bins (each (key, period, half) at most once, as a fold returns them)."""
-        if part.n_bins == 0:
+        self.add_raw(part.key, part.period, part.half, _matrix(part))
+
+    def add_raw(self, key, period, half, M) -> None:
+        """Add sums given as keys and one matrix in this module's layout (see :func:`_matrix`)."""
+        if key.size == 0:
             return
         self._cache = None
-        code = (self._bin_index(part.key) * _STRIDE + self._period_index(part.period) * 3
-                + (part.half.astype(np.int64) + 1))
+        code = (self._bin_index(key) * _STRIDE + self._period_index(period) * 3
+                + (half.astype(np.int64) + 1))
         slot = self._codes.get_indexer(code)
         new = slot < 0
         if new.any():
@@ -100,11 +105,11 @@ class SlotSums:
             self._grow(self.size + m)
             at = np.arange(self.size, self.size + m)
             slot[new] = at
-            self.key[at], self.period[at], self.half[at] = part.key[new], part.period[new], part.half[new]
+            self.key[at], self.period[at], self.half[at] = key[new], period[new], half[new]
             self.code[at] = code[new]
             self.size += m
             self._codes = self._pd.Index(self.code[:self.size])
-        self.M[slot] += _matrix(part)
+        self.M[slot] += M
 
     def stats(self) -> BinnedStats:
         """The totals as BinnedStats, bins sorted by (key, period, half)."""
@@ -112,16 +117,22 @@ class SlotSums:
             return self._cache
         n = self.size
         order = np.lexsort((self.half[:n], self.period[:n], self.key[:n]))
-        M = self.M[:n][order]
-        t = self.template
-        k, p = len(t.columns), len(t.pairs)
-        cut = np.cumsum([1, 1, 1, k, k, k] + [p] * 6)[:-1]
-        parts = np.split(M, cut, axis=1)
-        whole = lambda a: np.rint(a).astype(np.int64)          # noqa: E731  (counts)
-        out = dict(n=whole(parts[0][:, 0]), sx=parts[1][:, 0], sxx=parts[2][:, 0],
-                   cnt=whole(parts[3]), s1=parts[4], s2=parts[5], pn=whole(parts[6]))
-        for f, a in zip(_PAIR_FIELDS[1:], parts[7:]):
-            out[f] = a
-        self._cache = replace(t, key=self.key[:n][order], period=self.period[:n][order],
-                              half=self.half[:n][order], **out)
+        self._cache = unpack(self.template, self.key[:n][order], self.period[:n][order],
+                             self.half[:n][order], self.M[:n][order])
         return self._cache
+
+
+def unpack(template: BinnedStats, key, period, half, M) -> BinnedStats:
+    """BinnedStats with the layout of ``template`` from keys and a matrix of sums (:func:`_matrix`)."""
+    k, p = len(template.columns), len(template.pairs)
+    cut = np.cumsum([1, 1, 1, k, k, k] + [p] * 6)[:-1]
+    parts = np.split(M, cut, axis=1)
+
+    def whole(a):                                            # counts, held as float64
+        return np.rint(a).astype(np.int64)
+    out = dict(n=whole(parts[0][:, 0]), sx=parts[1][:, 0], sxx=parts[2][:, 0],
+               cnt=whole(parts[3]), s1=parts[4], s2=parts[5], pn=whole(parts[6]))
+    for f, a in zip(_PAIR_FIELDS[1:], parts[7:]):
+        out[f] = a
+    return replace(template, key=np.asarray(key, float), period=np.asarray(period, np.int32),
+                   half=np.asarray(half, np.int8), **out)
