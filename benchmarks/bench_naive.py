@@ -249,7 +249,7 @@ class Rows:
     def __init__(self, frame, stats, half_seed):
         from scanner.engines import grid
         from scanner.engines.local import half_split
-        self.cols = {c: frame[c].to_numpy(dtype=float) for c in frame.columns}
+        self.cols = {c: frame[c].to_numpy(dtype=float) for c in frame.columns if c != "visit"}
         self.bin = {}
         for r, st in stats.items():
             st = st.pooled()

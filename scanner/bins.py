@@ -223,7 +223,10 @@ class BinnedStats:
         st = self.pooled()
         lo, hi = st.bounds()
         occ = st.n > 0
-        if ((lo < cutoff) & (cutoff < hi) & occ).any():
+        # A cutoff within rounding of a bin edge is that edge (a grid point computed as
+        # origin + k·width can differ from the exact decimal edge in the last bits).
+        tol = 1e-9 * max(self.width, abs(cutoff) * 1e-7)
+        if ((lo < cutoff - tol) & (cutoff + tol < hi) & occ).any():
             return True
         # A left-closed cutoff on a bin's lower edge: rows at the cutoff share the bin with rows
         # above it, unless the cutoff was a forced (left-closed) edge.

@@ -203,6 +203,12 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
     if spec.discover:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
+        for row in rows:           # discovered rows: the bound on the half the jump came from
+            if row["origin"] == "discovered" and "binning_error" not in row:
+                st = binned.stats[row["running"]]
+                st = st.restrict(half=1) if row.get("split") else st
+                add_binning_error(row, st.pooled(), Candidate(row["running"], row["treatment"],
+                                                              row["cutoff"], "discovered"), spec)
     rows = finalize(rows, spec.alpha, extra_p)
     data_info = _data_info(binned, spec, deduped)
     add_cleaning_info(data_info, coded, spec, no_unit)
