@@ -23,6 +23,8 @@ ROOT = HERE.parent
 DATA = HERE / "data"
 RESULTS = HERE / "results"
 CUTOFFS = (60.0, 6.5, 0.0)          # per running-variable type: integer, decimal, continuous
+DATE_START = 16436                  # 2015-01-01 as days since 1970-01-01
+DATE_DAYS = 3653                    # ten years of visit dates
 
 
 def running_values(rng, kind: int, n: int) -> np.ndarray:
@@ -34,8 +36,12 @@ def running_values(rng, kind: int, n: int) -> np.ndarray:
 
 
 def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, seed: int = 1,
-             rows_per_file: int = 2_000_000) -> Path:
-    """Write the folder unless it already holds a complete copy (marker file)."""
+             rows_per_file: int = 2_000_000, dated: bool = False) -> Path:
+    """Write the folder unless it already holds a complete copy (marker file).
+
+    ``dated`` adds a ``visit`` date column spread evenly over ten years (2015-01-01 to
+    2024-12-31), as a registry extract nearly always has one.
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
     marker = folder / "_complete"
@@ -57,13 +63,20 @@ def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, 
             if c == 0:
                 v[rng.random(m) < 0.05] = np.nan
             cols[f"c{c}"] = v
+        if dated:
+            days = rng.integers(0, DATE_DAYS, m).astype("int32")
+            cols["visit"] = pa.array(days + DATE_START, pa.date32())
         pq.write_table(pa.table(cols), folder / f"part-{i:04d}.parquet", row_group_size=500_000)
     marker.write_text(f"{rows}\n")
     return folder
 
 
-def spec_for(folder: Path, n_running: int, n_treat: int, n_cov: int, batch_rows: int = 1_000_000):
-    return {"title": "scale benchmark", "data": {"source": str(folder), "batch_rows": batch_rows},
+def spec_for(folder: Path, n_running: int, n_treat: int, n_cov: int, batch_rows: int = 1_000_000,
+             dated: bool = False):
+    data = {"source": str(folder), "batch_rows": batch_rows}
+    if dated:
+        data["date"] = "visit"
+    return {"title": "scale benchmark", "data": data,
             "running": [{"column": f"r{j}"} for j in range(n_running)],
             "treatments": {"columns": [f"t{t}" for t in range(n_treat)]},
             "covariates": {"columns": [f"c{c}" for c in range(n_cov)]}}
@@ -73,10 +86,22 @@ def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
+def child_peak_rss_mb() -> float:
+    """Peak RSS of the largest joined child (the scan's forked worker; it shares the parent's
+    pages copy-on-write, so parent + child overstates their joint use)."""
+    return resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+
+
+def load() -> str:
+    """The 1-, 5- and 15-minute load averages now (other developers share the 2 cores)."""
+    return "/".join(f"{v:.1f}" for v in os.getloadavg())
+
+
 def cpu_seconds() -> float:
     """User + system CPU time of this process so far (less distorted than wall time on a shared machine)."""
     u = resource.getrusage(resource.RUSAGE_SELF)
-    return u.ru_utime + u.ru_stime
+    c = resource.getrusage(resource.RUSAGE_CHILDREN)      # the scan's forked worker, once joined
+    return u.ru_utime + u.ru_stime + c.ru_utime + c.ru_stime
 
 
 def child(script: Path, *args) -> dict:

@@ -41,6 +41,7 @@ of them; the results then say so.  Without it every fit is timed.
 from __future__ import annotations
 
 import argparse
+import os
 import contextlib
 import sys
 import time
@@ -248,7 +249,7 @@ class Rows:
     def __init__(self, frame, stats, half_seed):
         from scanner.engines import grid
         from scanner.engines.local import half_split
-        self.cols = {c: frame[c].to_numpy(dtype=float) for c in frame.columns}
+        self.cols = {c: frame[c].to_numpy(dtype=float) for c in frame.columns if c != "visit"}
         self.bin = {}
         for r, st in stats.items():
             st = st.pooled()
@@ -303,6 +304,8 @@ def row_fit(sm, rows: Rows, f: Fit, kernels):
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=float, default=1e6)
+    ap.add_argument("--no-date", action="store_true",
+                    help="the table without its visit-date column (default: with it, as registries are)")
     ap.add_argument("--sample", type=int, default=0,
                     help="time a seeded random sample of this many (b) fits and scale up")
     a = ap.parse_args()
@@ -312,14 +315,17 @@ def main() -> None:
     from scanner.estimate.kernels import KERNELS
     from scanner.spec import parse_spec
     n = int(a.rows)
-    folder = bd.generate(bd.DATA / f"scan_{n}", n, *SHAPE)
-    spec = bd.spec_for(folder, *SHAPE)
+    dated = not a.no_date
+    folder = bd.generate(bd.DATA / f"scan_{'dated_' if dated else ''}{n}", n, *SHAPE, dated=dated)
+    spec = bd.spec_for(folder, *SHAPE, dated=dated)
     machine = bd.machine()           # before the runs: the load of other jobs, not of this one
     res, cut_wall, cut_cpu = bd.timed(lambda: scanner.scan(spec))
     # The recording run (not timed): the same scan with the estimators wrapped.
     rec = Recorder({r: st.pooled().total for r, st in res.stats.items()})
+    os.environ["CUTSCAN_WORKERS"] = "1"        # record in this process (a forked one keeps its own)
     with rec.patched():
         res2 = scanner.scan(spec)
+    del os.environ["CUTSCAN_WORKERS"]
     assert np.array_equal([r["jump"] for r in res2.rows], [r["jump"] for r in res.rows],
                           equal_nan=True), "the recording run must be the same scan"
     fits = rec.fits
@@ -373,7 +379,10 @@ def main() -> None:
                   f"{(same_wall - half_ci) / cut_wall:.0f}–{(same_wall + half_ci) / cut_wall:.0f}×)")
     lines = ["## Naive baseline (`benchmarks/bench_naive.py`)", "",
              f"Machine: {machine}. {n:,} rows, {SHAPE[0]} running variables, {SHAPE[1]} "
-             f"treatments, {SHAPE[2]} covariates; {len(cands)} candidates.", "",
+             f"treatments, {SHAPE[2]} covariates"
+             f"{', a 10-year visit date (data.date set)' if dated else ', no date column'}, "
+             f"defaults on (round numbers, discovery with the held-out half); "
+             f"{len(cands)} candidates.", "",
              f"- (a) main and covariate fits only (conservative): {n_a:,} row-level statsmodels "
              "WLS fits (treatment and each covariate at the candidate's kernel and bandwidth, "
              "HC1). Bandwidth choice, bias correction, sensitivity, placebo, donut and "
@@ -395,7 +404,7 @@ def main() -> None:
              f"(a); on the {len(checked):,} timed (b) fits on exact support whose jump cutscan "
              f"reports: {worst_b:.2e}.",
              "", "Reproduce: `python benchmarks/bench_naive.py --rows "
-             f"{n}{f' --sample {a.sample}' if scale != 1 else ''}`."]
+             f"{n}{f' --sample {a.sample}' if scale != 1 else ''}{'' if dated else ' --no-date'}`."]
     bd.publish("bench_naive", lines)
 
 

@@ -1,16 +1,27 @@
-"""Wall time and peak memory of a scan, and the binning pass against simply reading the columns.
+"""Wall time and peak memory of a scan on a dated table, and the binning pass against a plain read.
 
 Usage::
 
     python benchmarks/bench_scan.py                 # 1M and 10M rows (the issue's sizes)
     python benchmarks/bench_scan.py --rows 200000   # a quick check
 
-Table: 10 running variables, 3 treatments, 5 covariates, generated once into
-``benchmarks/data/scan_<rows>/`` (git-ignored).  Each measurement runs in a fresh process so
-its peak resident memory is its own: (1) reading the needed columns batch by batch with
-pyarrow and nothing else, (2) the same read plus the conversion to float64 arrays the engine
-needs, (3) the binning pass, (4) the full scan (binning, candidates, estimates, diagnostics).
-Results go to ``benchmarks/results/scale.md``.
+Table: 10 running variables, 3 treatments, 5 covariates and a ten-year visit date (invented,
+bench_data.py), generated once into ``benchmarks/data/scan_dated_<rows>/`` (git-ignored).  Each
+measurement runs in a fresh process so its peak resident memory is its own:
+
+- ``read`` / ``read+convert``: the needed columns (running, tracked, date) batch by batch with
+  pyarrow and nothing else, then also turned into float64;
+- ``bin plain``: the binning pass with no period and no half keys;
+- ``bin keys``: the pass as a dated scan runs it — year keys (the timeline) and the held-out half;
+- ``bin quarters``: quarter and half keys on every running variable (what a dated rule asks for
+  on its own variable), the largest detail the pass keeps;
+- ``duckdb``: the same per-bin sums with year and half keys as one SQL GROUP BY per running
+  variable in DuckDB (2 threads), on the grid our pass settled — the alternative route measured;
+- ``scan`` / ``scan no date``: the full default scan (round numbers, discovery with the held-out
+  half) with ``data.date`` set, and on the same table without it.
+
+The machine is shared: every row records the load averages when it ran.  Results go to
+``benchmarks/results/scale.md``.
 """
 from __future__ import annotations
 
@@ -23,44 +34,85 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_data as bd  # noqa: E402
 
 SHAPE = (10, 3, 5)     # running variables, treatments, covariates
+MODES = ("read", "read+convert", "bin plain", "bin keys", "bin quarters", "duckdb", "scan",
+         "scan no date")
 
 
-def measure(mode: str, folder: str, batch_rows: int, kernel: str = "sparse") -> dict:
+def _plan(spec, mode: str, batch_rows: int):
+    from scanner.engines import BinPlan
+    run = tuple(r["column"] for r in spec["running"])
+    cols = tuple(spec["treatments"]["columns"] + spec["covariates"]["columns"])
+    kw = {}
+    if mode in ("bin keys", "bin quarters"):
+        kw = dict(date="visit", split_seed=20240601,
+                  periods={r: ("year" if mode == "bin keys" else "quarter") for r in run})
+    return BinPlan(run, cols, tuple(spec["treatments"]["columns"]), batch_rows=batch_rows, **kw)
+
+
+def _duckdb(folder: str, spec, grids: dict) -> int:
+    """Per-bin sums with year and half keys, one GROUP BY per running variable."""
+    import duckdb
+    con = duckdb.connect()
+    con.execute("SET threads = 2")
+    src = f"read_parquet('{folder}/*.parquet')"
+    cols = spec["treatments"]["columns"] + spec["covariates"]["columns"]
+    sums = ", ".join(f"count({c}), sum({c}), sum({c}*{c})" for c in cols)
+    rows = 0
+    for r in (x["column"] for x in spec["running"]):
+        width = grids[r]
+        key = r if width is None else f"floor({r} / {width!r})"
+        q = (f"SELECT {key} AS k, year(visit) * 4 AS period, hash(c1) & 1 AS half, count(*), "
+             f"sum({r}), sum({r}*{r}), {sums} FROM {src} WHERE isfinite({r}) "
+             "GROUP BY ALL")
+        rows = max(rows, len(con.execute(q).fetchnumpy()["k"]))
+    return rows
+
+
+def measure(mode: str, folder: str, batch_rows: int, extra: str = "{}") -> dict:
     import numpy as np
     import scanner
-    from scanner.engines import BinPlan, bin_table
+    from scanner.engines import bin_table
     from scanner.io import open_table
-    spec = bd.spec_for(Path(folder), *SHAPE, batch_rows=batch_rows)
+    load = bd.load()
+    spec = bd.spec_for(Path(folder), *SHAPE, batch_rows=batch_rows, dated=mode != "scan no date")
     cols = ([r["column"] for r in spec["running"]] + spec["treatments"]["columns"]
-            + spec["covariates"]["columns"])
+            + spec["covariates"]["columns"] + ["visit"])
     table = open_table(folder)
+    info = {}
     if mode == "read":
         rows, secs, cpu = bd.timed(lambda: sum(b.num_rows for b in table.batches(cols, batch_rows)))
     elif mode == "read+convert":
         def run():
             n = 0
             for b in table.batches(cols, batch_rows):
-                for c in b.columns:
+                for c in b.columns[:-1]:
                     c.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
                 n += b.num_rows
             return n
         rows, secs, cpu = bd.timed(run)
-    elif mode == "bin":
-        plan = BinPlan(tuple(cols[:SHAPE[0]]), tuple(cols[SHAPE[0]:]),
-                       tuple(spec["treatments"]["columns"]), batch_rows=batch_rows, kernel=kernel)
-        res, secs, cpu = bd.timed(lambda: bin_table(table, plan))
+    elif mode.startswith("bin"):
+        res, secs, cpu = bd.timed(lambda: bin_table(table, _plan(spec, mode, batch_rows)))
         rows = res.rows_read
+        info = {"grids": {r: (None if st.kind == "exact" else st.width)
+                          for r, st in res.stats.items()},
+                "bins": sum(st.n_bins for st in res.stats.values())}
+    elif mode == "duckdb":
+        groups, secs, cpu = bd.timed(lambda: _duckdb(folder, spec, json.loads(extra)))
+        rows, info = None, {"largest_groups": groups}
     else:
         res, secs, cpu = bd.timed(lambda: scanner.scan(spec))
         rows = res.data["rows_read"]
+        info = {"candidates": len(res.rows)}
     return {"mode": mode, "rows": rows, "seconds": secs, "cpu_seconds": cpu,
-            "peak_rss_mb": bd.peak_rss_mb()}
+            "peak_rss_mb": bd.peak_rss_mb(), "child_peak_rss_mb": bd.child_peak_rss_mb(),
+            "load": load, **info}
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=float, nargs="*", default=[1e6, 1e7])
     ap.add_argument("--batch-rows", type=int, default=1_000_000)
+    ap.add_argument("--modes", nargs="*", default=list(MODES))
     ap.add_argument("--child", nargs="+")
     a = ap.parse_args()
     if a.child:
@@ -68,26 +120,37 @@ def main() -> None:
         return
     lines = ["## Scan speed and memory (`benchmarks/bench_scan.py`)", "",
              f"Machine: {bd.machine()}. Table: {SHAPE[0]} running variables, {SHAPE[1]} "
-             f"treatments, {SHAPE[2]} covariates, Parquet folder, batches of {a.batch_rows:,} rows.",
-             "", "| rows | step | wall time (s) | CPU time (s) | peak RSS (MB) | wall vs read | CPU vs read |",
-             "|---:|---|---:|---:|---:|---:|---:|"]
+             f"treatments, {SHAPE[2]} covariates and a ten-year visit date, Parquet folder, "
+             f"batches of {a.batch_rows:,} rows. Wall time on this shared 2-core machine moves "
+             "with the load of other jobs (last column: 1/5/15-minute load averages when the "
+             "step ran); CPU time (this process and its forked worker) moves less.",
+             "", "| rows | step | wall (s) | CPU (s) | peak RSS (MB) | wall vs read | "
+             "CPU vs read | CPU vs plain pass | load |",
+             "|---:|---|---:|---:|---:|---:|---:|---:|---|"]
     for n in map(int, a.rows):
-        folder = bd.generate(bd.DATA / f"scan_{n}", n, *SHAPE)
+        folder = bd.generate(bd.DATA / f"scan_dated_{n}", n, *SHAPE, dated=True)
         bd.child(Path(__file__), "read", folder, a.batch_rows)      # warm the page cache
-        got = {}
-        for mode, extra in (("read", ()), ("read+convert", ()), ("bin", ()),
-                            ("bin-bincount", ("bincount",)), ("scan", ())):
-            r = bd.child(Path(__file__), mode.split("-")[0], folder, a.batch_rows, *extra)
+        got, grids = {}, "{}"
+        for mode in a.modes:
+            r = bd.child(Path(__file__), mode, folder, a.batch_rows, grids)
+            if mode == "bin plain":
+                grids = json.dumps(r["grids"])
             got[mode] = r
             print(f"{n:>11,} {mode:<13} {r['seconds']:8.2f} s {r['cpu_seconds']:8.2f} cpu-s "
-                  f"{r['peak_rss_mb']:8.0f} MB", flush=True)
-        base, cbase = got["read"]["seconds"], got["read"]["cpu_seconds"]
-        label = {"bin": "binning pass (sparse product)", "bin-bincount": "binning pass (np.bincount)"}
+                  f"{r['peak_rss_mb']:8.0f} MB load {r['load']}", flush=True)
+        base = got.get("read", {}).get("seconds", float("nan"))
+        cbase = got.get("read", {}).get("cpu_seconds", float("nan"))
+        plain = got.get("bin plain", {}).get("cpu_seconds", float("nan"))
         for mode, r in got.items():
-            lines.append(f"| {n:,} | {label.get(mode, mode)} | {r['seconds']:.2f} | "
-                         f"{r['cpu_seconds']:.2f} | {r['peak_rss_mb']:.0f} | "
-                         f"{r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}× |")
-    lines += ["", "Reproduce: `python benchmarks/bench_scan.py --rows " +
+            peak = f"{r['peak_rss_mb']:.0f}"
+            if r.get("child_peak_rss_mb", 0) > 1:
+                peak += f" (+ worker {r['child_peak_rss_mb']:.0f})"
+            lines.append(f"| {n:,} | {mode} | {r['seconds']:.2f} | {r['cpu_seconds']:.2f} | "
+                         f"{peak} | {r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}× | "
+                         f"{r['cpu_seconds'] / plain:.2f}× | {r['load']} |")
+    lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
+              "of the running variables shares its pages copy-on-write, so the two do not add up.",
+              "", "Reproduce: `python benchmarks/bench_scan.py --rows " +
               " ".join(f"{int(n)}" for n in a.rows) + "`."]
     print(bd.write_section("bench_scan", "\n".join(lines)))
 

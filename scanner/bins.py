@@ -12,12 +12,21 @@ present ``cnt[:, j]``, ``s1[:, j] = Σy`` and ``s2[:, j] = Σy²``; and for sele
 ``paa``, ``pbb`` and ``pab = Σab``.  With exact-support bins every local polynomial fit, its
 sandwich variance and every density estimate computed from these sums equals the row-level
 computation to floating-point precision.
+
+Forced edges.  A fixed-width bin that contains a cutoff would send all its rows to one side of
+it.  Cutoffs known before the pass (declared rules, also after a unit conversion) and round
+cutoffs are therefore *forced edges* (``edges``, pairs ``(value, right_closed)``): a bin that
+holds one is split there, rows ``x >= value`` (``x > value`` for a left-closed rule) going to the
+upper part.  The key of the ``j``-th part of grid bin ``k`` is ``k + j/SUB``, so keys still sort
+in the order of x; :meth:`BinnedStats.bounds` gives every bin's interval.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 
 import numpy as np
+
+from .engines import grid
 
 _PAIR_FIELDS = ("pn", "pa", "pb", "paa", "pbb", "pab")
 
@@ -38,6 +47,7 @@ class BinnedStats:
     cnt, s1, s2 : per bin and column, count of present values, Σy and Σy².
     pairs : column pairs with joint sums, as (name_a, name_b).
     pn, pa, pb, paa, pbb, pab : joint sums per bin and pair.
+    edges : forced edges ``(value, right_closed)`` at which fixed-width bins are split.
     """
 
     running: str
@@ -61,18 +71,21 @@ class BinnedStats:
     paa: np.ndarray = field(default=None)
     pbb: np.ndarray = field(default=None)
     pab: np.ndarray = field(default=None)
+    edges: tuple = ()
 
     # ------------------------------------------------------------------ construction
     @classmethod
     def empty(cls, running: str, columns, pairs=(), kind: str = "exact",
-              width: float = float("nan"), origin: float = float("nan")) -> "BinnedStats":
+              width: float = float("nan"), origin: float = float("nan"),
+              edges=()) -> "BinnedStats":
         k, p = len(columns), len(pairs)
         z1 = np.zeros(0)
         return cls(running, tuple(columns), kind, width, origin, z1, np.zeros(0, np.int32),
                    np.zeros(0, np.int8), np.zeros(0, np.int64), z1, z1,
                    np.zeros((0, k), np.int64), np.zeros((0, k)), np.zeros((0, k)),
                    tuple(tuple(x) for x in pairs),
-                   *[np.zeros((0, p), np.int64 if f == "pn" else float) for f in _PAIR_FIELDS])
+                   *[np.zeros((0, p), np.int64 if f == "pn" else float) for f in _PAIR_FIELDS],
+                   edges=tuple(edges))
 
     def __post_init__(self):
         if self.pn is None:
@@ -137,7 +150,8 @@ class BinnedStats:
                 (other.running, other.columns, other.pairs, other.kind):
             raise ValueError("cannot merge BinnedStats with different running variable, "
                              "columns, pairs or bin kind")
-        if self.kind == "width" and not (self.width == other.width and self.origin == other.origin):
+        if self.kind == "width" and not (self.width == other.width and self.origin == other.origin
+                                         and self.edges == other.edges):
             raise ValueError("cannot merge fixed-width bins on different grids")
 
     def merge(self, other: "BinnedStats") -> "BinnedStats":
@@ -182,6 +196,43 @@ class BinnedStats:
         key = np.floor((self.key - origin) / width)
         base = replace(self, kind="width", width=float(width), origin=float(origin))
         return base._grouped(key, self.period, self.half, self._arrays())
+
+    def bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        """(lo, hi) of every bin: rows lie in [lo, hi) (lo == hi == key for exact bins).
+
+        The upper part of a bin split at a left-closed forced edge ``e`` holds x > e; its lo is e.
+        """
+        if self.kind == "exact":
+            return self.key.copy(), self.key.copy()
+        p, d = grid.grid_of_width(self.width)
+        k = np.floor(self.key)
+        j = np.rint((self.key - k) * grid.SUB).astype(np.int64)
+        lo = grid.edges(k, p, d) + self.origin
+        hi = grid.edges(k + 1, p, d) + self.origin
+        kk, v, _ = grid.inner(self.edges, p, d)
+        for b, e, r in zip(kk, v, grid.ranks(kk)):
+            at = k == b
+            lo[at & (j == r)] = e
+            hi[at & (j == r - 1)] = e
+        return lo, hi
+
+    def straddles(self, cutoff: float, right_closed: bool = True) -> bool:
+        """True when an occupied bin holds rows on both sides of ``cutoff``."""
+        if self.kind == "exact":
+            return False
+        st = self.pooled()
+        lo, hi = st.bounds()
+        occ = st.n > 0
+        # A cutoff within rounding of a bin edge is that edge (a grid point computed as
+        # origin + k·width can differ from the exact decimal edge in the last bits).
+        tol = 1e-9 * max(self.width, abs(cutoff) * 1e-7)
+        if ((lo < cutoff - tol) & (cutoff + tol < hi) & occ).any():
+            return True
+        # A left-closed cutoff on a bin's lower edge: rows at the cutoff share the bin with rows
+        # above it, unless the cutoff was a forced (left-closed) edge.
+        if not right_closed and (cutoff, False) not in self.edges:
+            return bool(((lo == cutoff) & (hi > cutoff) & occ).any())
+        return False
 
     def validate(self) -> "BinnedStats":
         """Check shapes and invariants; return self so it can be chained."""

@@ -29,7 +29,7 @@ from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
-from .timeline import BEFORE_AFTER_FIELDS, before_after
+from .timeline import BEFORE_AFTER_FIELDS, before_after, change_date
 
 
 @dataclass
@@ -175,13 +175,21 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     rules = checked_rules([spec.resolve(c) for c in spec.catalogues]) if spec.catalogues else []
     columns = tuple(dict.fromkeys(spec.treatments + spec.covariates + spec.outcomes))
     pairs = tuple((t, y) for t in spec.treatments for y in spec.outcomes if y != t)
+    # Declared cutoffs are known before the pass: they become bin edges (no bin straddles one).
+    decl = {}
+    for r in spec.running:
+        decl[r.column] = declared(r, list(r.treatments or spec.treatments), rules)
     plan = BinPlan(running=tuple(r.column for r in spec.running), columns=columns,
                    treatments=spec.treatments, pairs=pairs,
                    bin_width={r.column: r.bin_width for r in spec.running if r.bin_width},
                    date=spec.date,
                    split_seed=(spec.seed if spec.discover and spec.confirm and engine != "spark"
                                else None),
-                   split_unit=spec.unit, batch_rows=spec.batch_rows)
+                   split_unit=spec.unit, batch_rows=spec.batch_rows,
+                   edges={col: tuple((c.cutoff, c.right_closed) for c in dec)
+                          for col, (dec, _) in decl.items()},
+                   round_edges=spec.round_numbers,
+                   periods={col: _period_detail(dec, spec) for col, (dec, _) in decl.items()})
     deduped = no_unit = 0
     if spec.discover and spec.confirm and engine == "spark":
         notes.append("warning: the Spark engine has no row positions for the held-out half, so "
@@ -205,7 +213,7 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     cands = []
     for r in spec.running:
         trs = list(r.treatments or spec.treatments)
-        dec, why = declared(r, trs, rules)
+        dec, why = decl[r.column]
         notes.extend(why)
         lattice = binned.stats[r.column].pooled()
         dec = [on_lattice(c, lattice) for c in dec]       # recorded values: see scanner.candidates
@@ -216,28 +224,24 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                 for t in trs:
                     if (t, c) not in taken:
                         cands.append(on_lattice(Candidate(r.column, t, c, "round"), lattice))
-    rows, density_cache = [], {}
     pooled = {r: st.pooled() for r, st in binned.stats.items()}
     screen_p = []
     if screen is not None:      # registry-wide screen: full evaluation only where stage 1 passes
         from .events.screen import first_stage
         cands, screen_p, screen["pairs"] = first_stage(cands, pooled, spec)
-    for i, c in enumerate(cands):
-        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
-        row.update(c.lattice_fields())
-        # Declared rules with an effective date: jumps before/after it from the period keys.
-        row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
-        if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
-            row.update(before_after(binned.stats[c.running], c, row["bandwidth"], spec.kernel,
-                                    spec.degree))
-        rows.append(row)
-        if progress:
-            progress("estimate", 1, len(cands))
+    rows = evaluate_all(cands, pooled, binned.stats, spec, progress,
+                        workers=1 if engine == "spark" else None)
     for row in rows:
         explain_nan(row)
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
     if spec.discover:
         extra_p, search = discovery_step(binned.stats, rows, spec, progress)
+        for row in rows:           # discovered rows: the bound on the half the jump came from
+            if row["origin"] == "discovered" and "binning_error" not in row:
+                st = binned.stats[row["running"]]
+                st = st.restrict(half=1) if row.get("split") else st
+                add_binning_error(row, st.pooled(), Candidate(row["running"], row["treatment"],
+                                                              row["cutoff"], "discovered"), spec)
     rows = finalize(rows, spec.alpha, list(extra_p) + screen_p)
     if screen is not None:
         search["screen"] = screen
@@ -267,6 +271,126 @@ def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> li
     out += quality.rule_warnings(spec, rules, stats, rule_cutoff)
     out += quality.no_variation(spec, stats)
     return out
+
+
+def _evaluate_group(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
+                    total: int | None = None) -> list:
+    """Rows of a list of candidates, in order (one density cache for the group)."""
+    rows, density_cache = [], {}
+    for c in cands:
+        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+        row.update(c.lattice_fields())
+        add_binning_error(row, pooled[c.running], c, spec)
+        # Declared rules with an effective date: jumps before/after it from the period keys.
+        row.update(dict.fromkeys(BEFORE_AFTER_FIELDS))
+        if c.rule is not None and np.isfinite(row.get("bandwidth", np.nan)):
+            row.update(before_after(stats[c.running], c, row["bandwidth"], spec.kernel,
+                                    spec.degree))
+        rows.append(row)
+        if progress:
+            progress("estimate", 1, total)
+    return rows
+
+
+MIN_PARALLEL = 40    # fewer candidates than this are not worth a second process (measured: ~0.1 s fork)
+
+
+def workers_default() -> int:
+    """Processes for the candidate loop: ``CUTSCAN_WORKERS`` if set, else up to 2 (the cores)."""
+    import os
+    env = os.environ.get("CUTSCAN_WORKERS")
+    if env and env.strip().isdigit():
+        return max(1, int(env))
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+def split_by_running(cands, k: int) -> list[list[int]]:
+    """Candidate positions in ``k`` groups of whole running variables, balanced by count."""
+    by = {}
+    for i, c in enumerate(cands):
+        by.setdefault(c.running, []).append(i)
+    groups = [[] for _ in range(k)]
+    for idx in sorted(by.values(), key=len, reverse=True):
+        min(groups, key=len).extend(idx)
+    return [sorted(g) for g in groups if g]
+
+
+def evaluate_all(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
+                 workers: int | None = None) -> list:
+    """Evaluate every candidate; running variables are shared among ``workers`` processes.
+
+    Every candidate's row depends only on its own running variable's bins, so the rows are the
+    same whatever the split (tested).  The other processes are forked (they read the bins without
+    copying them) and send their rows back through a pipe; with one worker, too few candidates
+    or no ``fork`` on the platform, everything runs here.
+    """
+    import multiprocessing as mp
+    workers = workers_default() if workers is None else workers
+    groups = split_by_running(cands, workers) if len(cands) >= MIN_PARALLEL else [list(range(len(cands)))]
+    if len(groups) < 2 or "fork" not in mp.get_all_start_methods():
+        return _evaluate_group(cands, pooled, stats, spec, progress, len(cands))
+    ctx = mp.get_context("fork")
+    pipes, procs = [], []
+    for g in groups[1:]:
+        recv, send = ctx.Pipe(duplex=False)
+        proc = ctx.Process(target=_child, args=(send, [cands[i] for i in g], pooled, stats, spec),
+                           daemon=True)
+        proc.start()
+        send.close()
+        pipes.append(recv)
+        procs.append(proc)
+    rows: list = [None] * len(cands)
+    for i, row in zip(groups[0], _evaluate_group([cands[i] for i in groups[0]], pooled, stats,
+                                                 spec, progress, len(cands))):
+        rows[i] = row
+    for g, recv, proc in zip(groups[1:], pipes, procs):
+        ok, got = recv.recv()
+        proc.join()
+        if not ok:
+            raise got
+        for i, row in zip(g, got):
+            rows[i] = row
+        if progress:
+            progress("estimate", len(g), len(cands))
+    return rows
+
+
+def _child(send, cands, pooled, stats, spec) -> None:
+    try:
+        send.send((True, _evaluate_group(cands, pooled, stats, spec)))
+    except BaseException as exc:  # noqa: BLE001 - handed to the parent, which raises it
+        send.send((False, exc))
+    finally:
+        send.close()
+
+
+def _period_detail(dec: list, spec: ScanSpec) -> str:
+    """Period keys a running variable's bins need: quarters where a declared rule has an
+    effective date (before/after jumps), years otherwise (the report's timeline of the jump).
+    Each period multiplies the bins held during the pass, so none is kept that is not used."""
+    if any(change_date(c.rule) is not None for c in dec):
+        return "quarter"
+    return "year"
+
+
+def add_binning_error(row: dict, stats: BinnedStats, cand: Candidate, spec: ScanSpec) -> None:
+    """Bound on how far the jump from bins can be from the row-level jump (scanner.binerror);
+    flag ``binning`` where it exceeds a quarter of the SE (our rule)."""
+    from .binerror import NEGLIGIBLE, binning_error
+    h = row.get("bandwidth", np.nan)
+    if stats.kind == "exact" or not np.isfinite(row.get("jump", np.nan)) or not np.isfinite(h):
+        bound, why = (0.0 if stats.kind == "exact" else float("nan")), None
+    else:
+        bound, why = binning_error(stats, cand.treatment, cand.cutoff, row.get("bandwidth_left", h),
+                                   row.get("bandwidth_right", h), spec.kernel, spec.degree,
+                                   cand.right_closed)
+    se = row.get("se", np.nan)
+    row["binning_error"] = bound
+    row["binning_error_se"] = bound / se if np.isfinite(se) and se > 0 else float("nan")
+    row["binning_note"] = why
+    if not (row["binning_error_se"] <= NEGLIGIBLE) and np.isfinite(row.get("jump", np.nan)) \
+            and stats.kind != "exact" and not (np.isnan(bound) and why is None):
+        row.setdefault("extra_flags", []).append("binning")
 
 
 def _data_info(binned, spec: ScanSpec, deduped: int, blanked=None, cleaning=None) -> dict:

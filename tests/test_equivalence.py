@@ -119,3 +119,92 @@ def test_not_estimable_is_a_value(integer_design):
     st = binned(integer_design, "x", ["y"])
     fit = fit_jump(st, "y", 100.0, 5.0)
     assert np.isnan(fit.jump) and "no data" in fit.reason
+
+
+def _offgrid_design(n=60000, seed=21):
+    """Continuous score recorded to full precision with a jump at 50.01 (invented, for tests)."""
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(49.0, 51.0, n)
+    d = (rng.random(n) < 0.2 + 0.5 * (x >= 50.01) + 0.1 * (x - 50)).astype(float)
+    return pd.DataFrame({"x": x, "d": d})
+
+
+@pytest.mark.parametrize("kernel", list(KERNELS))
+def test_offgrid_cutoff_is_a_bin_edge_and_fit_is_within_its_bound(kernel):
+    # Reference: statsmodels WLS (HC1) on the rows.  Cutoff 50.01 lies inside the bin
+    # [50.00, 50.02) of a 0.02 grid; as a forced edge the bin is split there, the binned jump
+    # equals the row-level one up to the reported binning-error bound, and the bound is small.
+    from scanner.binerror import NEGLIGIBLE, binning_error
+    df = _offgrid_design()
+    x, d = df.x.to_numpy(), df.d.to_numpy()
+    c, h = 50.01, 0.5
+    ref = rowlevel(x, d, c, h, kernel, 1)
+    st = binned(df, "x", ["d"], ["d"], bin_width={"x": 0.02}, edges={"x": ((c, True),)})
+    assert st.kind == "width" and not st.straddles(c)
+    lo, hi = st.bounds()
+    assert np.isin(c, lo) and np.isin(c, hi)          # 50.01 closes one bin and opens the next
+    fit = fit_jump(st, "d", c, h, kernel=kernel)
+    bound, why = binning_error(st, "d", c, h, h, kernel, 1)
+    assert why is None and abs(fit.jump - ref.params[1]) <= bound
+    # The uniform kernel's weight steps at the window edge, inside a bin: flagged, not hidden.
+    assert (bound < NEGLIGIBLE * ref.bse[1]) == (kernel != "uniform")
+    assert abs(fit.se / ref.bse[1] - 1) < 0.01
+
+
+def test_without_the_forced_edge_the_straddling_bin_is_reported():
+    # The same design binned without the forced edge: the bin [50.00, 50.02) goes to one side,
+    # the bound is infinite with its reason, and the jump is off by a visible fraction of its SE
+    # (reference: statsmodels WLS on the rows).
+    from scanner.binerror import NEGLIGIBLE, binning_error
+    df = _offgrid_design()
+    c, h = 50.01, 0.5
+    ref = rowlevel(df.x.to_numpy(), df.d.to_numpy(), c, h, "triangular", 1)
+    st = binned(df, "x", ["d"], ["d"], bin_width={"x": 0.02})
+    assert st.straddles(c)
+    bound, why = binning_error(st, "d", c, h)
+    assert bound == np.inf and "both sides" in why
+    fit = fit_jump(st, "d", c, h)
+    assert abs(fit.jump - ref.params[1]) > 0.2 * ref.bse[1]
+
+
+@pytest.mark.parametrize("degree", [0, 1, 2])
+def test_chosen_grid_splits_at_declared_cutoff_any_batch_size(degree):
+    # No user width: the grid is chosen by the pass (power-of-ten while streaming, 1-2-5 at the
+    # end); a declared cutoff off that grid is split at every stage, whatever the batch size.
+    # Reference: statsmodels WLS (HC1) on the rows, within the reported bound.
+    from scanner.binerror import NEGLIGIBLE, binning_error
+    df = _offgrid_design(n=40000, seed=4)
+    c = 50.0137
+    sts = [binned(df, "x", ["d"], ["d"], edges={"x": ((c, True),)}, batch_rows=b)
+           for b in (40000, 7001)]
+    for a in sts[1:]:
+        assert_allclose(a.n, sts[0].n)
+        assert_allclose(a.s1, sts[0].s1, rtol=1e-12)
+        assert_allclose(a.key, sts[0].key)
+    st = sts[0]
+    assert st.kind == "width" and not st.straddles(c)
+    ref = rowlevel(df.x.to_numpy(), df.d.to_numpy(), c, 0.4, "triangular", degree)
+    fit = fit_jump(st, "d", c, 0.4, degree=degree)
+    bound, _ = binning_error(st, "d", c, 0.4, 0.4, "triangular", degree)
+    assert abs(fit.jump - ref.params[1]) <= bound < NEGLIGIBLE * ref.bse[1]
+
+
+def test_left_closed_forced_edge_keeps_rows_at_the_cutoff_left():
+    # Rows recorded exactly at a left-closed cutoff stay on the left (x > c is the right side).
+    # Reference: statsmodels WLS on the rows with D = 1[x > c].
+    rng = np.random.default_rng(8)
+    x = np.concatenate([rng.uniform(9, 11, 30000), np.full(2000, 10.003)])
+    d = (rng.random(x.size) < 0.3 + 0.4 * (x > 10.003)).astype(float)
+    df = pd.DataFrame({"x": x, "d": d})
+    st = binned(df, "x", ["d"], ["d"], bin_width={"x": 0.01}, edges={"x": ((10.003, False),)})
+    assert not st.straddles(10.003, right_closed=False)
+    u = x - 10.003
+    w = KERNELS["triangular"](u / 0.5)
+    m = w > 0
+    D = (u > 0).astype(float)
+    Z = np.column_stack([np.ones_like(u), D, u, D * u])[m]
+    ref = sm.WLS(d[m], Z, weights=w[m]).fit(cov_type="HC1")
+    fit = fit_jump(st, "d", 10.003, 0.5, right_closed=False)
+    from scanner.binerror import NEGLIGIBLE, binning_error
+    bound, _ = binning_error(st, "d", 10.003, 0.5, 0.5, "triangular", 1, right_closed=False)
+    assert abs(fit.jump - ref.params[1]) <= bound < NEGLIGIBLE * ref.bse[1]

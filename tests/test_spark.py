@@ -47,7 +47,10 @@ def frame():
 def test_spark_bins_equal_local_bins(spark):
     df = frame()
     # Spark jobs are slow to start, so two running variables cover the two non-exact paths.
-    plan = BinPlan(**{**PLAN, "running": ("cont", "lab")}, date="visit", bin_width={"lab": 0.5})
+    # Forced edges off the grid split bins in both engines (declared cutoffs, one left-closed).
+    plan = BinPlan(**{**PLAN, "running": ("cont", "lab")}, date="visit", bin_width={"lab": 0.5},
+                   edges={"cont": ((41.37, True),), "lab": ((6.3, True), (7.2, False))},
+                   periods={"lab": "year"})
     local = bin_table(open_table(df), plan)
     remote = bin_table(spark.createDataFrame(df), plan, engine="spark")
     assert remote.rows_read == local.rows_read
@@ -57,6 +60,8 @@ def test_spark_bins_equal_local_bins(spark):
     assert [local.stats[r].kind for r in plan.running] == ["width", "width"]
     for r in plan.running:
         assert_same_stats(remote.stats[r], local.stats[r])
+        assert (local.stats[r].key % 1 != 0).any()        # some bin was split
+        assert not local.stats[r].straddles(6.3 if r == "lab" else 41.37)
 
 
 @needs_spark

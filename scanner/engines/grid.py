@@ -24,6 +24,7 @@ import math
 import numpy as np
 
 MAX_DECIMALS = 22          # 10^d is an exact double up to d = 22
+SUB = 1024.0               # part j of a bin split at forced edges has key k + j/SUB
 
 
 def grid_of_width(width: float) -> tuple[float, int]:
@@ -114,3 +115,46 @@ def final_grid(values_or_keys: np.ndarray, level: int | None, max_bins: int) -> 
             if np.unique(np.floor_divide(values_or_keys.astype(np.int64), r)).size <= max_bins:
                 return m, e
         e += 1
+
+
+# ---------------------------------------------------------------------- forced edges
+def inner(forced, p: float, d: int):
+    """Forced edges lying inside a bin of the grid (p, d), sorted by value.
+
+    ``forced`` holds pairs ``(value, right_closed)``.  An edge is inside bin k when
+    ``edge(k) < value``; a left-closed edge on a bin's lower edge also counts, since rows at the
+    value belong below it.  Returns arrays (bin k, value, right_closed).
+    """
+    if not forced:
+        return np.zeros(0, np.int64), np.zeros(0), np.zeros(0, bool)
+    fs = sorted(set((float(v), bool(rc)) for v, rc in forced))
+    v = np.array([f[0] for f in fs])
+    rc = np.array([f[1] for f in fs])
+    k = keys(v, p, d)
+    lo = edges(k.astype(float), p, d)
+    keep = (lo < v) | ((lo == v) & ~rc)
+    return k[keep], v[keep], rc[keep]
+
+
+def ranks(k: np.ndarray) -> np.ndarray:
+    """1-based rank of each inner edge within its bin (``k`` sorted by edge value)."""
+    r = np.ones(k.size, np.int64)
+    for i in range(1, k.size):
+        if k[i] == k[i - 1]:
+            r[i] = r[i - 1] + 1
+    return r
+
+
+def sub_index(k: np.ndarray, x: np.ndarray, inn) -> np.ndarray | None:
+    """Part of its bin each x falls in: the number of inner edges of bin k it lies above.
+
+    ``inn`` is :func:`inner`; None when no bin is split.  "Above" is x >= e for a right-closed
+    edge and x > e for a left-closed one.
+    """
+    kk, v, rc = inn
+    if kk.size == 0:
+        return None
+    j = np.zeros(k.shape, np.int64)
+    for b, e, r in zip(kk, v, rc):
+        j += (k == b) & ((x >= e) if r else (x > e))
+    return j

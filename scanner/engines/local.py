@@ -37,6 +37,7 @@ from ..bins import BinnedStats
 from ..io import check_binary, numeric, period_codes
 from . import grid
 from .plan import BinPlan, BinResult
+from .sums import SlotSums, unpack
 
 
 def half_split(index: np.ndarray, seed: int) -> np.ndarray:
@@ -104,6 +105,31 @@ class Columns:
         self.mat = np.column_stack(parts) if parts else np.zeros((m, 0))
         self.names, self.pairs, self.binary = tuple(names), tuple(pairs), set(binary)
 
+    def gather(self, template: BinnedStats) -> np.ndarray:
+        """Column of ``[per-bin sums of mat | row count]`` for each sum after (n, Σx, Σx²) in
+        the layout of :mod:`scanner.engines.sums`; -1 is the row count."""
+        idx = self.index
+        s1 = [idx[("s1", c)] for c in template.columns]
+        s2 = [idx.get(("s2", c), idx[("s1", c)]) for c in template.columns]   # 0/1: Σy² = Σy
+        cnt = [idx.get(("cnt", c), -1) for c in template.columns]
+        out = cnt + s1 + s2
+        pairs = {f: [] for f in ("pn", "pa", "pb", "paa", "pbb", "pab")}
+        for a, b in template.pairs:
+            ja, jb = template.col(a), template.col(b)
+            pairs["pab"].append(idx[("pab", a, b)])
+            if ("pn", a, b) in idx:
+                for f in ("pn", "pa", "pb", "paa", "pbb"):
+                    pairs[f].append(idx[(f, a, b)])
+            else:
+                pairs["pn"].append(-1)
+                pairs["pa"].append(s1[ja])
+                pairs["pb"].append(s1[jb])
+                pairs["paa"].append(s2[ja])
+                pairs["pbb"].append(s2[jb])
+        for f in ("pn", "pa", "pb", "paa", "pbb", "pab"):
+            out += pairs[f]
+        return np.array(out, np.int64)
+
 
 def _segment_sums(g: np.ndarray, nb: int, mat: np.ndarray, kernel: str) -> np.ndarray:
     """Column sums of ``mat`` per group ``g`` (0..nb-1); rows with g == nb are dropped."""
@@ -163,65 +189,84 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
     return g, np.asarray(uniq), nb
 
 
-def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
-         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
+def keyed(period: np.ndarray, half: np.ndarray):
+    """One small integer per row for its (period, half) keys: (code, number of codes, first period).
+
+    Periods are counted from the batch's first one (0 = missing), so composite codes with the
+    bin stay a dense range and need no hashing.
+    """
+    period = period.astype(np.int64)
+    dated = period >= 0
+    p0 = int(period[dated].min()) if dated.any() else 0
+    ext = np.where(dated, period - p0 + 1, 0) * 3 + (half.astype(np.int64) + 1)
+    return ext, int(ext.max()) + 1, p0
+
+
+def fold_raw(codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns, template: BinnedStats,
+             kernel: str = "sparse"):
     """Per-bin sums of one batch for rows with ``ok`` (finite running variable).
 
-    ``codes`` is ``_codes(key, ok, ...)``; ``extra`` is None or (period, half) per row;
-    ``template`` gives layout, kind and grid.
+    ``codes`` is ``_codes(key, ok, ...)`` with at least one group; ``extra`` is None, (period,
+    half) per row, or :func:`keyed` of them; ``template`` gives the layout.  Returns (key, period, half, M)
+    with the sums as one matrix in the layout of :mod:`scanner.engines.sums`.
     """
     g, ukey, nb = codes
-    if nb == 0:
-        return template
     if extra is None:
         bkey = ukey.astype(float)
         bper = np.full(nb, -1, np.int32)
         bhalf = np.full(nb, -1, np.int8)
     else:
-        period, half = extra
-        ext = (period.astype(np.int64) + 1) * 3 + (half.astype(np.int64) + 1)
-        comp = np.where(g < nb, g * (int(ext.max()) + 1) + ext, -1)
+        ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
+        comp = np.where(g < nb, g * span + ext, -1)
         g, ucomp, nb = _codes(comp, g < nb, True)
-        span = int(ext.max()) + 1
         bkey = ukey[ucomp // span].astype(float)
-        bper = ((ucomp % span) // 3 - 1).astype(np.int32)
+        r = (ucomp % span) // 3
+        bper = np.where(r > 0, r - 1 + p0, -1).astype(np.int32)
         bhalf = ((ucomp % span) % 3 - 1).astype(np.int8)
     xs = np.where(ok, x, 0.0)
-    n = np.bincount(g, minlength=nb + 1)[:nb].astype(np.int64)
-    sx = np.bincount(g, weights=xs, minlength=nb + 1)[:nb]
-    sxx = np.bincount(g, weights=xs * xs, minlength=nb + 1)[:nb]
+    gather = batch.gather(template)
+    M = np.empty((nb, 3 + gather.size))
+    M[:, 0] = np.bincount(g, minlength=nb + 1)[:nb]
+    M[:, 1] = np.bincount(g, weights=xs, minlength=nb + 1)[:nb]
+    M[:, 2] = np.bincount(g, weights=xs * xs, minlength=nb + 1)[:nb]
     S = _segment_sums(g, nb, batch.mat, kernel)
-    idx = batch.index
-    k, p = len(template.columns), len(template.pairs)
-    cnt = np.empty((nb, k), np.int64)
-    s1 = np.empty((nb, k))
-    s2 = np.empty((nb, k))
-    for j, name in enumerate(template.columns):
-        s1[:, j] = S[:, idx[("s1", name)]]
-        s2[:, j] = S[:, idx[("s2", name)]] if ("s2", name) in idx else s1[:, j]
-        cnt[:, j] = np.rint(S[:, idx[("cnt", name)]]) if ("cnt", name) in idx else n
-    pf = {f: np.empty((nb, p)) for f in ("pa", "pb", "paa", "pbb", "pab")}
-    pn = np.empty((nb, p), np.int64)
-    for q, (a, b) in enumerate(template.pairs):
-        pf["pab"][:, q] = S[:, idx[("pab", a, b)]]
-        if ("pn", a, b) in idx:
-            pn[:, q] = np.rint(S[:, idx[("pn", a, b)]])
-            for f in ("pa", "pb", "paa", "pbb"):
-                pf[f][:, q] = S[:, idx[(f, a, b)]]
-        else:
-            ja, jb = template.col(a), template.col(b)
-            pn[:, q] = n
-            pf["pa"][:, q], pf["pb"][:, q] = s1[:, ja], s1[:, jb]
-            pf["paa"][:, q], pf["pbb"][:, q] = s2[:, ja], s2[:, jb]
-    return replace(template, key=bkey, period=bper, half=bhalf, n=n, sx=sx, sxx=sxx,
-                   cnt=cnt, s1=s1, s2=s2, pn=pn, **pf)
+    # every other sum is a column of S, or the row count (index -1 of [S | n])
+    M[:, 3:] = np.concatenate([S, M[:, :1]], axis=1)[:, gather]
+    return bkey, bper, bhalf, M
+
+
+def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Columns,
+         template: BinnedStats, kernel: str = "sparse") -> BinnedStats:
+    """:func:`fold_raw` as a BinnedStats."""
+    g, ukey, nb = codes
+    if nb == 0:
+        return template
+    return unpack(template, *fold_raw(codes, x, ok, extra, batch, template, kernel))
 
 
 # ---------------------------------------------------------------------- grid state
-def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int) -> BinnedStats:
-    """``stats`` with bins re-keyed by ``key`` on the grid (p, d); sums add up exactly."""
-    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0)
-    return base._grouped(key.astype(float), stats.period, stats.half, stats._arrays())
+def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int, forced=()) -> BinnedStats:
+    """``stats`` with bins re-keyed by grid bin ``key`` on the grid (p, d); sums add up exactly.
+
+    Bins of the new grid that hold a forced edge are split there.  Each source bin lies wholly
+    on one side of every forced edge (an exact value, or a bin already split at it or ending on
+    it), so its midpoint tells the side.
+    """
+    forced = tuple(sorted(set(forced)))
+    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0, edges=forced)
+    key = np.asarray(key, np.int64)
+    lo, hi = stats.bounds()
+    j = grid.sub_index(key, (lo + hi) / 2, grid.inner(forced, p, d))
+    fkey = key.astype(float) if j is None else key + j / grid.SUB
+    return base._grouped(fkey, stats.period, stats.half, stats._arrays())
+
+
+def _splittable(stats: BinnedStats, value: float) -> bool:
+    """True when no bin of ``stats`` holds rows on both sides of ``value`` (it can become an edge)."""
+    if stats.kind == "exact":
+        return True
+    lo, hi = stats.bounds()
+    return not ((lo < value) & (value < hi)).any()
 
 
 class Accumulator:
@@ -230,24 +275,41 @@ class Accumulator:
     def __init__(self, running: str, plan: BinPlan):
         self.plan = plan
         w = plan.bin_width.get(running)
+        self.forced = tuple(sorted(set((float(v), bool(rc)) for v, rc in plan.edges.get(running, ()))))
         if w:
             self.state, self.grid = "user", grid.grid_of_width(float(w))
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs, "width",
-                                           grid.width_of(*self.grid), 0.0)
+                                           grid.width_of(*self.grid), 0.0, self.forced)
         else:
             self.state, self.grid = "exact", None
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
 
-    def key(self, x: np.ndarray, ok: np.ndarray):
-        """Row keys for the current state, and whether they are integers (dense codes)."""
-        if self.state == "exact":
-            return x, False
-        return np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0), True
+    @property
+    def stats(self) -> BinnedStats:
+        return self.sums.stats()
 
-    def _distinct(self, st: BinnedStats) -> int:
-        # Bins are unique per key unless period/half keys split them.
-        return st.distinct_values() if st.keyed else st.n_bins
+    @stats.setter
+    def stats(self, value: BinnedStats) -> None:
+        self.sums = SlotSums.of(value)
+
+    @property
+    def template(self) -> BinnedStats:
+        """An empty BinnedStats with the current layout (kind, grid, forced edges)."""
+        return self.sums.template
+
+    def key(self, x: np.ndarray, ok: np.ndarray):
+        """Row keys for the current state, whether they are integers (dense codes), and the
+        number of parts per bin (keys are ``k*parts + j`` for part j of grid bin k)."""
+        if self.state == "exact":
+            return x, False, 1
+        xs = np.where(ok, x, 0.0)
+        k = np.where(ok, grid.keys(xs, *self.grid), 0)
+        j = grid.sub_index(k, xs, grid.inner(self.forced, *self.grid))
+        if j is None:
+            return k, True, 1
+        parts = int(j.max()) + 1
+        return k * parts + j, True, parts
 
     def codes(self, x: np.ndarray, ok: np.ndarray):
         """Group codes of a batch's rows, leaving exact bins first if the batch would overflow.
@@ -255,11 +317,11 @@ class Accumulator:
         Checked before folding, so a batch of continuous values never becomes a batch-sized
         set of exact bins.
         """
-        key, dense = self.key(x, ok)
+        key, dense, parts = self.key(x, ok)
         out = _codes(key, ok, dense)
         f = self.plan.fine_keys
-        if self.state == "exact" and out[2] + self._distinct(self.stats) > f:
-            vals = np.union1d(out[1], self.stats.key)
+        if self.state == "exact" and out[2] + self.sums.n_keys > f:
+            vals = np.union1d(out[1], self.sums.bin_keys)
             if vals.size > f:
                 # Any set of more than fine_keys of the table's values certifies the start
                 # level (grid.start_level), so a spread subset of them is enough.
@@ -268,20 +330,26 @@ class Accumulator:
                 self.level = grid.start_level(vals, f)
                 self.grid = grid.power_grid(self.level)
                 # Exact keys are the raw values, so keying them is keying the rows.
-                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid)
+                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid,
+                                     self.forced)
                 self.state = "fine"
-                key, dense = self.key(x, ok)
+                key, dense, parts = self.key(x, ok)
                 out = _codes(key, ok, dense)
+        if parts > 1:       # part j of grid bin k has key k + j/SUB
+            g, u, nb = out
+            out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
         return out
 
-    def add(self, part: BinnedStats) -> None:
-        """Add one batch's bins; coarsen the power-of-ten grid while it holds too many."""
-        self.stats = self.stats.merge(part)
-        while self.state == "fine" and self._distinct(self.stats) > self.plan.fine_keys:
+    def add(self, raw) -> None:
+        """Add one batch's sums (:func:`fold_raw`); coarsen the power-of-ten grid while it
+        holds too many bins."""
+        if raw is not None:
+            self.sums.add_raw(*raw)
+        while self.state == "fine" and self.sums.n_keys > self.plan.fine_keys:
             self.level += 1
             self.grid = grid.power_grid(self.level)
-            self.stats = regroup(self.stats, np.floor_divide(self.stats.key.astype(np.int64), 10),
-                                 *self.grid)
+            self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
+                                 *self.grid, self.forced)
 
     def finish(self) -> BinnedStats:
         st = self.stats
@@ -292,10 +360,34 @@ class Accumulator:
                 return st
             m, e = grid.final_grid(np.unique(st.key), None, self.plan.max_bins)
             g = grid.series_grid(m, e)
-            return regroup(st, grid.keys(st.key, *g), *g)
-        m, e = grid.final_grid(np.unique(st.key), self.level, self.plan.max_bins)
+            return self._settle(st, grid.keys(st.key, *g), g)
+        m, e = grid.final_grid(np.unique(_base(st.key)), self.level, self.plan.max_bins)
         r = m * 10 ** (e - self.level)
-        return regroup(st, np.floor_divide(st.key.astype(np.int64), r), *grid.series_grid(m, e))
+        return self._settle(st, np.floor_divide(_base(st.key), r), grid.series_grid(m, e))
+
+    def _settle(self, st: BinnedStats, key, g) -> BinnedStats:
+        """The final grid, split at the forced edges and (``plan.round_edges``) at every round
+        value :func:`scanner.candidates.round_cutoffs` can propose on it, where the bins held
+        so far allow that exactly.  Splitting moves bin means, which can move the round values,
+        so this repeats until they settle."""
+        forced = set(self.forced)
+        out = regroup(st, key, *g, forced)
+        if not self.plan.round_edges:
+            return out
+        from ..candidates import round_cutoffs
+        for _ in range(5):
+            new = {(v, True) for v in round_cutoffs(out, 0)} - forced
+            new = {e for e in new if _splittable(st, e[0])}
+            if not new:
+                break
+            forced |= new
+            out = regroup(st, key, *g, forced)
+        return out
+
+
+def _base(key: np.ndarray) -> np.ndarray:
+    """Grid bin index of fixed-width keys (dropping the part of a split bin)."""
+    return np.floor(key).astype(np.int64)
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
@@ -312,18 +404,18 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         for t in plan.treatments:
             check_binary(cols[t], t, table.name)
         packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
-        extra = None
-        if plan.date or plan.split_seed is not None:
-            period = (period_codes(batch, plan.date, table.name) if plan.date
-                      else np.full(m, -1, np.int32))
-            if plan.split_seed is None:
-                half = np.full(m, -1, np.int8)
-            elif plan.split_unit:
+        dated = plan.date in plan.needed if plan.date else False
+        quarter = period_codes(batch, plan.date, table.name) if dated else None
+        half = None
+        if plan.split_seed is not None:
+            if plan.split_unit:
                 half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
             else:
                 half = half_split(np.arange(rows, rows + m), plan.split_seed)
-            extra = (period, half)
+        by_detail = {d: _extra(d, quarter, half, m) for d in {plan.period_of(r) for r in plan.running}}
+        extras = {r: by_detail[plan.period_of(r)] for r in plan.running}
         for r in plan.running:
+            extra = extras[r]
             x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
             ok = np.isfinite(x)
             isn = np.isnan(x)
@@ -331,12 +423,22 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             nonfinite[r] += int(m - ok.sum() - isn.sum())
             a = acc[r]
             codes = a.codes(x, ok)
-            empty = a.stats.restrict(np.zeros(a.stats.n_bins, bool))
-            a.add(fold(r, codes, x, ok, extra, packed, empty, plan.kernel))
+            a.add(fold_raw(codes, x, ok, extra, packed, a.template, plan.kernel)
+                  if codes[2] else None)
         rows += m
         if progress:
             progress(m)
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
+
+
+def _extra(detail: str, quarter, half, m: int):
+    """(period, half) keys of a batch's rows for one running variable, or None for neither."""
+    if detail == "none" or quarter is None:
+        if half is None:
+            return None
+        return keyed(np.full(m, -1, np.int32), half)
+    period = quarter if detail == "quarter" else np.where(quarter >= 0, quarter // 4 * 4, -1)
+    return keyed(period, np.full(m, -1, np.int8) if half is None else half)
 
 
 def _role(column: str, plan: BinPlan) -> str:

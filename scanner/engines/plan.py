@@ -28,6 +28,15 @@ class BinPlan:
     kernel : "sparse" (one scipy product per running variable) or "bincount" (plain numpy).
     split_unit : unit-id column; when set, the half is a seeded hash of the unit id (all rows of
         a unit fall in the same half, whatever the row order), else of the row position.
+    edges : per running variable, forced edges ``(cutoff, right_closed)`` known before the pass
+        (declared rules, converted to the column's unit): a fixed-width bin holding one is split
+        there, so no bin straddles a declared cutoff.
+    periods : per running variable, the period detail its bins keep when ``date`` is set:
+        ``"quarter"`` (the default), ``"year"`` (keys year*4, the year's first quarter) or
+        ``"none"``.  Memory and time grow with the bins × periods kept, so a scan asks for
+        quarters only where a dated rule needs them.
+    round_edges : also split the final grid at the round values the candidate rule can propose
+        (where the bins held during the pass allow it exactly).
     """
 
     running: tuple[str, ...]
@@ -43,11 +52,18 @@ class BinPlan:
     fine_keys: int = FINE_KEYS
     batch_rows: int = BATCH_ROWS
     kernel: str = "sparse"
+    edges: dict = field(default_factory=dict)
+    round_edges: bool = False
+    periods: dict = field(default_factory=dict)
+
+    def period_of(self, running: str) -> str:
+        """Period detail kept for ``running``: "quarter", "year" or "none"."""
+        return self.periods.get(running, "quarter") if self.date else "none"
 
     @property
     def needed(self) -> list[str]:
         cols = list(dict.fromkeys(list(self.running) + list(self.columns)))
-        if self.date:
+        if self.date and any(self.period_of(r) != "none" for r in self.running):
             cols.append(self.date)
         if self.split_seed is not None and self.split_unit and self.split_unit not in cols:
             cols.append(self.split_unit)

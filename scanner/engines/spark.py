@@ -95,6 +95,17 @@ def spark_keys(F, x, p: float, d: int):
     return k.cast("long")
 
 
+def spark_split_keys(F, x, p: float, d: int, forced):
+    """Grid keys with the parts of bins split at forced edges: ``k + j/SUB`` (as the local engine)."""
+    k = spark_keys(F, x, p, d)
+    kk, v, rc = grid.inner(forced, p, d)
+    key = k.cast("double")
+    for b, e, r in zip(kk, v, rc):
+        above = (x >= F.lit(float(e))) if r else (x > F.lit(float(e)))
+        key = key + F.when((k == F.lit(int(b))) & above, 1.0 / grid.SUB).otherwise(0.0)
+    return key
+
+
 def _check(df, name, plan: BinPlan, T):
     kinds = dict(df.dtypes)
     for c in plan.needed:
@@ -123,7 +134,7 @@ def bin_spark(table, plan: BinPlan, progress=None) -> BinResult:
     sel = [num(c).alias(f"c{j}") for j, c in enumerate(plan.columns)]
     for i, r in enumerate(plan.running):
         sel.append(F.col(r).cast("double").alias(f"x{i}"))
-    if plan.date:
+    if plan.date and plan.date in plan.needed:
         d = F.col(plan.date)
         if dict(df.dtypes)[plan.date] == "string":
             d = F.to_date(d)
@@ -181,9 +192,14 @@ def _row_aggs(F, x, cols, plan):
 def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
     x = F.col(xcol)
     rows = base.where(x.isNotNull() & ~F.isnan(x) & (F.abs(x) != float("inf")))
+    detail, p = plan.period_of(running), F.col("period")
+    if detail != "quarter":        # the period detail this running variable keeps (BinPlan.periods)
+        per = F.lit(-1) if detail == "none" else F.when(p >= 0, F.floor(p / 4) * 4).otherwise(-1)
+        rows = rows.withColumn("period", per.cast("int"))
     acc = Accumulator(running, plan)
     if acc.state == "user":
-        binned = rows.groupBy(spark_keys(F, x, *acc.grid).alias("key"), "period", "half") \
+        binned = rows.groupBy(spark_split_keys(F, x, *acc.grid, acc.forced).alias("key"),
+                              "period", "half") \
             .agg(*_row_aggs(F, x, cols, plan))
         acc.stats = _collect(binned, acc.stats, plan)
         return acc.finish()
@@ -207,11 +223,13 @@ def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
             e -= 6
         level = (over[0] if over else e) + 1
         sums = [c for c in exact.columns if c not in ("key", "period", "half")]
-        fine = exact.groupBy(spark_keys(F, F.col("key"), *grid.power_grid(level)).alias("key"),
+        fine = exact.groupBy(spark_split_keys(F, F.col("key"), *grid.power_grid(level),
+                                              acc.forced).alias("key"),
                              "period", "half").agg(*[F.sum(c).alias(c) for c in sums])
         acc.state, acc.level, acc.grid = "fine", level, grid.power_grid(level)
         acc.stats = _collect(fine, BinnedStats.empty(running, plan.columns, plan.pairs, "width",
-                                                     grid.width_of(*acc.grid), 0.0), plan)
+                                                     grid.width_of(*acc.grid), 0.0, acc.forced),
+                             plan)
         return acc.finish()
     finally:
         exact.unpersist()

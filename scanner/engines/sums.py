@@ -1,0 +1,138 @@
+"""Running per-bin sums that each batch is added to in place.
+
+Adding a batch's BinnedStats to the totals used to mean concatenating both and re-sorting every
+(bin, period, half) key — with period and half keys, hundreds of thousands of keys per running
+variable and batch.  Here every (bin key, period, half) seen so far owns a slot (a row of one
+float64 matrix); a batch's groups find their slots with two hash look-ups and are added with one
+indexed ``+=``.  Nothing is sorted until the totals are read (:meth:`SlotSums.stats`), so the cost
+of a batch grows with the number of its groups, not with the totals, and memory with the
+(bin, period, half) combinations that actually occur.  Counts are held as float64, exact up to
+2^53 rows.
+"""
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from ..bins import BinnedStats, _PAIR_FIELDS
+
+_STRIDE = 3 * 2 ** 16          # period slots per bin: up to 65,536 periods × 3 half codes
+
+
+def _matrix(st: BinnedStats) -> np.ndarray:
+    """All sums of ``st`` as one float64 matrix, one row per bin."""
+    k, p = len(st.columns), len(st.pairs)
+    cols = [(st.n, 1), (st.sx, 1), (st.sxx, 1), (st.cnt, k), (st.s1, k), (st.s2, k)]
+    cols += [(getattr(st, f), p) for f in _PAIR_FIELDS]
+    return np.concatenate([np.asarray(c, float).reshape(st.n_bins, w) for c, w in cols], axis=1)
+
+
+class SlotSums:
+    """Totals of one running variable, one slot per (bin key, period, half)."""
+
+    def __init__(self, template: BinnedStats):
+        import pandas as pd
+        self._pd = pd
+        self.template = template.restrict(np.zeros(template.n_bins, bool))
+        k, p = len(template.columns), len(template.pairs)
+        self.width = 3 + 3 * k + 6 * p
+        self.size = 0
+        self.M = np.zeros((0, self.width))
+        self.key = np.zeros(0)
+        self.period = np.zeros(0, np.int32)
+        self.half = np.zeros(0, np.int8)
+        self.code = np.zeros(0, np.int64)
+        self.bin_keys = np.zeros(0)
+        self._bins = pd.Index(self.bin_keys)
+        self._periods: dict[int, int] = {}
+        self._codes = pd.Index(self.code)
+        self._cache = None
+
+    @classmethod
+    def of(cls, stats: BinnedStats) -> "SlotSums":
+        s = cls(stats)
+        s.add(stats)
+        return s
+
+    @property
+    def n_keys(self) -> int:
+        """Distinct bin keys (whatever their period and half keys)."""
+        return self.bin_keys.size
+
+    def _bin_index(self, key: np.ndarray) -> np.ndarray:
+        idx = self._bins.get_indexer(key)
+        new = idx < 0
+        if new.any():
+            self.bin_keys = np.concatenate([self.bin_keys, np.unique(key[new])])
+            self._bins = self._pd.Index(self.bin_keys)
+            idx = self._bins.get_indexer(key)
+        return idx
+
+    def _period_index(self, period: np.ndarray) -> np.ndarray:
+        u, inv = np.unique(period, return_inverse=True)
+        for v in u:
+            self._periods.setdefault(int(v), len(self._periods))
+        return np.array([self._periods[int(v)] for v in u], np.int64)[inv.ravel()]
+
+    def _grow(self, need: int) -> None:
+        if need <= self.M.shape[0]:
+            return
+        cap = max(need + need // 2, 2 * self.M.shape[0], 1024)
+        self.M = np.concatenate([self.M, np.zeros((cap - self.M.shape[0], self.width))])
+        for name, dtype in (("key", float), ("period", np.int32), ("half", np.int8),
+                            ("code", np.int64)):
+            old = getattr(self, name)
+            new = np.zeros(cap, dtype)
+            new[:old.size] = old
+            setattr(self, name, new)
+
+    def add(self, part: BinnedStats) -> None:
+        """Add a batch's bins (each (key, period, half) at most once, as a fold returns them)."""
+        self.add_raw(part.key, part.period, part.half, _matrix(part))
+
+    def add_raw(self, key, period, half, M) -> None:
+        """Add sums given as keys and one matrix in this module's layout (see :func:`_matrix`)."""
+        if key.size == 0:
+            return
+        self._cache = None
+        code = (self._bin_index(key) * _STRIDE + self._period_index(period) * 3
+                + (half.astype(np.int64) + 1))
+        slot = self._codes.get_indexer(code)
+        new = slot < 0
+        if new.any():
+            m = int(new.sum())
+            self._grow(self.size + m)
+            at = np.arange(self.size, self.size + m)
+            slot[new] = at
+            self.key[at], self.period[at], self.half[at] = key[new], period[new], half[new]
+            self.code[at] = code[new]
+            self.size += m
+            self._codes = self._pd.Index(self.code[:self.size])
+        self.M[slot] += M
+
+    def stats(self) -> BinnedStats:
+        """The totals as BinnedStats, bins sorted by (key, period, half)."""
+        if self._cache is not None:
+            return self._cache
+        n = self.size
+        order = np.lexsort((self.half[:n], self.period[:n], self.key[:n]))
+        self._cache = unpack(self.template, self.key[:n][order], self.period[:n][order],
+                             self.half[:n][order], self.M[:n][order])
+        return self._cache
+
+
+def unpack(template: BinnedStats, key, period, half, M) -> BinnedStats:
+    """BinnedStats with the layout of ``template`` from keys and a matrix of sums (:func:`_matrix`)."""
+    k, p = len(template.columns), len(template.pairs)
+    cut = np.cumsum([1, 1, 1, k, k, k] + [p] * 6)[:-1]
+    parts = np.split(M, cut, axis=1)
+
+    def whole(a):                                            # counts, held as float64
+        return np.rint(a).astype(np.int64)
+    out = dict(n=whole(parts[0][:, 0]), sx=parts[1][:, 0], sxx=parts[2][:, 0],
+               cnt=whole(parts[3]), s1=parts[4], s2=parts[5], pn=whole(parts[6]))
+    for f, a in zip(_PAIR_FIELDS[1:], parts[7:]):
+        out[f] = a
+    return replace(template, key=np.asarray(key, float), period=np.asarray(period, np.int32),
+                   half=np.asarray(half, np.int8), **out)
