@@ -255,8 +255,11 @@ def card(c: dict, unit: str | None) -> str:
     if c.get("density_tests"):
         parts.append(_list_table("Density tests", c["density_tests"], "density-tests"))
     if c.get("placebo_p") is not None:
-        parts.append(f"<p class='placebo'>Placebo cutoffs: {_p_eq('p', c['placebo_p'])} (jumps at "
-                     "nearby non-cutoffs; a small p means jumps like this one are common here).</p>")
+        parts.append(f"<p class='placebo'>Placebo cutoffs: {_p_eq('p', c['placebo_p'])} — the "
+                     "share of placebo cutoffs (nearby points where no rule applies) whose jump is "
+                     "at least as clear as this one. A small p means the real jump is unusual "
+                     "among the placebo jumps; a large p means jumps this clear are common "
+                     "here even without a rule.</p>")
     if isinstance(c.get("power"), dict):
         parts.append(_scalar_table("Power for the planned outcome", c["power"], "power"))
     elif isinstance(c.get("power"), list):
