@@ -9,6 +9,7 @@ from __future__ import annotations
 import html
 from pathlib import Path
 
+from ..headline import PRACTICAL_JUMP
 from ..score import format_p, format_p_eq
 from . import figures
 from .exports import cautions
@@ -96,7 +97,7 @@ def _overview(results: dict) -> list[str]:
 
 
 RANK_HEADS = (("#", ""), ("running", "l"), ("treatment", "l"), ("cutoff", ""), ("origin", "l"),
-              ("jump [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
+              ("jump (conventional)", ""), ("bias-corrected [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
               ("density p", ""), ("balance p", ""), ("score", ""), ("verdict", "l"), ("flags", "l"))
 
 
@@ -104,18 +105,27 @@ def _ranking(results: dict, limit: int) -> list[str]:
     parts = ["<section id='ranking'><h2>Ranked candidates</h2>",
              f"<p class='muted'>Best {min(limit, results['n_candidates'])} of "
              f"{results['n_candidates']}; rows left/right count the rows within the bandwidth. "
+             "The robust 95% interval is centred on the bias-corrected jump, shown beside the "
+             "conventional estimate; 'inconclusive' marks an interval that holds both zero and "
+             f"a jump of ±{PRACTICAL_JUMP:g} or more. "
              "The full list is in candidates.csv.</p><table><tr>"]
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
     for c in results["candidates"][:limit]:
         ci = ("" if c["ci_low"] is None else
-              f"<br><span class='ci'>[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}]</span>")
+              f"<br><span class='ci'>[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] "
+              f"{esc(c.get('interval') or '')}</span>")
+        # The robust interval is centred on the bias-corrected jump: show it beside the
+        # conventional one, with the interval under it (other intervals sit under the jump).
+        robust = c.get("interval") == "robust"
+        bc = _fmt(c.get("jump_bc"), "+.3f") if robust else "—"
         f = c.get("first_stage_f")
         parts.append(
             f"<tr><td>{c['rank']}</td><td class='l'>{esc(c['running'])}</td>"
             f"<td class='l'>{esc(c['treatment'])}</td><td>{c['cutoff']:g}</td>"
             f"<td class='l'>{esc(c.get('rule_id') or c['origin'])}</td>"
-            f"<td>{_fmt(c['jump'], '+.3f')}{ci}</td>"
+            f"<td>{_fmt(c['jump'], '+.3f')}{'' if robust else ci}</td>"
+            f"<td>{bc}{ci if robust else ''}</td>"
             f"<td>{'—' if f is None else ('>9999' if f > 9999 else f'{f:.0f}')}</td>"
             f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}</td>"
             f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}</td>"
