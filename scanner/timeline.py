@@ -261,8 +261,8 @@ def in_force_codes(stats: BinnedStats, rule) -> tuple[list[int], str] | None:
     return keep, label
 
 
-POOLED_FIELDS = ("jump", "se", "ci_low", "ci_high", "p_value", "jump_bc", "bandwidth", "n_left",
-                 "n_right")
+# No row counts: beside the in-force counts they could give small counts away by subtraction.
+POOLED_FIELDS = ("jump", "se", "ci_low", "ci_high", "p_value", "jump_bc", "bandwidth")
 
 
 BEFORE_AFTER_FIELDS = ("change_date", "jump_before", "se_before", "jump_after", "se_after", "did",

@@ -276,6 +276,10 @@ def card(c: dict, unit: str | None) -> str:
         parts.append(_list_table("Power for the planned outcomes", c["power"], "power"))
     elif isinstance(c.get("power"), (int, float)):
         parts.append(f"<p class='power'>Power for the planned outcome: {c['power']:.2f}</p>")
+    if c.get("in_force") and isinstance(c.get("jump_pooled"), (int, float)):
+        parts.append(f"<p class='period-jump'>Headline jump from the periods the rule was in "
+                     f"force ({esc(c['in_force'])}): {c['jump']:+.3f}; pooled over all periods: "
+                     f"{c['jump_pooled']:+.3f}.</p>")
     for key, title in (("jump_before", "before the rule"), ("jump_after", "after the rule")):
         if isinstance(c.get(key), (int, float)):
             parts.append(f"<p class='period-jump'>Jump {title}: {c[key]:+.3f}</p>")
