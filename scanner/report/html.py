@@ -118,7 +118,7 @@ def _ranking(results: dict, limit: int) -> list[str]:
         # The robust interval is centred on the bias-corrected jump: show it beside the
         # conventional one, with the interval under it (other intervals sit under the jump).
         robust = c.get("interval") == "robust"
-        bc = _fmt(c.get("jump_bc"), "+.3f") if robust else "—"
+        bc = _fmt(c.get("jump_bc"), "+.3f") if robust else "—"   # interval named under the jump
         f = c.get("first_stage_f")
         parts.append(
             f"<tr><td>{c['rank']}</td><td class='l'>{esc(c['running'])}</td>"

@@ -327,9 +327,11 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
     for c in results["candidates"][:top]:
         ci = ("" if c["ci_low"] is None else f" [{c['ci_low']:+.2f}, {c['ci_high']:+.2f}]")
         f = c["first_stage_f"]
-        bc = c.get("jump_bc") if c.get("interval") == "robust" else None   # the CI's centre
+        # The robust CI's centre, or the name of the interval when it is not the robust one.
+        bc = (_num(c.get("jump_bc"), "+.3f") if c.get("interval") == "robust"
+              else str(c.get("interval") or "—"))
         t.add_row(str(c["rank"]), c["running"], c["treatment"], f"{c['cutoff']:g}",
-                  c.get("rule_id") or c["origin"], _num(c["jump"], "+.3f"), _num(bc, "+.3f") + ci,
+                  c.get("rule_id") or c["origin"], _num(c["jump"], "+.3f"), bc + ci,
                   "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}"),
                   format_p(c["q_value"], "—"), _num(c["score"], ".0f"),
                   f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
