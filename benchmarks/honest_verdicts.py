@@ -166,13 +166,34 @@ def run(design: str, reps: int, seed: int = 1) -> dict:
     return out
 
 
+def combine(parts: list[dict]) -> dict:
+    """One design's results from runs with different seeds (counts summed, rates re-weighted)."""
+    out = {"design": parts[0]["design"], "reps": sum(p["reps"] for p in parts),
+           "seed": [p["seed"] for p in parts]}
+    for k in ("null_candidates", "usable_without_jump", "clear_verdict_without_jump",
+              "planted_candidates", "seconds"):
+        out[k] = round(sum(p[k] for p in parts), 1)
+    cov = [(p["coverage"], p["planted_candidates"]) for p in parts if p["coverage"] is not None]
+    out["coverage"] = (sum(c * n for c, n in cov) / sum(n for _, n in cov)) if cov else None
+    for k in ("sorting_flagged", "sorting_flag_rate_far_from_it"):
+        v = [(p[k], p["reps"]) for p in parts if p.get(k) is not None]
+        if v:
+            out[k] = sum(a * n for a, n in v) / sum(n for _, n in v)
+    return out
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=500)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--designs", nargs="*", default=list(DESIGNS))
+    ap.add_argument("--out", default="honest", help="name of the result files in results/")
     a = ap.parse_args(argv)
-    res = [run(d, a.reps, a.seed) for d in a.designs]
+    res = []
+    RESULTS.mkdir(exist_ok=True)
+    for d in a.designs:     # written after each design, so a long run keeps what it has done
+        res.append(run(d, a.reps, a.seed))
+        (RESULTS / f"{a.out}.json").write_text(json.dumps(res, indent=2) + "\n")
     lines = ["| design | reps | candidates without a jump | of them usable | planted | "
              "coverage of the reported 95% interval | planted sorting flagged | seconds |",
              "|---|---|---|---|---|---|---|---|"]
@@ -184,12 +205,10 @@ def main(argv=None):
                      f"{r['seconds']} |")
     text = "\n".join(lines)
     print(text)
-    RESULTS.mkdir(exist_ok=True)
-    (RESULTS / "honest.md").write_text(
+    (RESULTS / f"{a.out}.md").write_text(
         "# Verdicts and coverage on irregular designs (benchmarks/honest_verdicts.py)\n\n"
         f"Command: `PYTHONPATH=. python benchmarks/honest_verdicts.py --reps {a.reps} "
-        f"--seed {a.seed}`\n\n" + text + "\n")
-    (RESULTS / "honest.json").write_text(json.dumps(res, indent=2) + "\n")
+        f"--seed {a.seed} --designs {' '.join(a.designs)} --out {a.out}`\n\n" + text + "\n")
     return res
 
 
