@@ -188,27 +188,41 @@ def main(argv=None):
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--designs", nargs="*", default=list(DESIGNS))
     ap.add_argument("--out", default="honest", help="name of the result files in results/")
+    ap.add_argument("--combine", nargs="*", default=None,
+                    help="combine these results/*.json files (runs with other seeds) into --out")
     a = ap.parse_args(argv)
     res = []
     RESULTS.mkdir(exist_ok=True)
-    for d in a.designs:     # written after each design, so a long run keeps what it has done
+    if a.combine:
+        parts = [p for f in a.combine for p in json.loads((RESULTS / f).read_text())]
+        res = [combine([p for p in parts if p["design"] == d])
+               for d in dict.fromkeys(p["design"] for p in parts)]
+        (RESULTS / f"{a.out}.json").write_text(json.dumps(res, indent=2) + "\n")
+        a.designs, a.reps, a.seed = [r["design"] for r in res], res[0]["reps"], res[0]["seed"]
+    for d in a.designs if not a.combine else ():
+        # Written after each design, so a long run keeps what it has done.
         res.append(run(d, a.reps, a.seed))
         (RESULTS / f"{a.out}.json").write_text(json.dumps(res, indent=2) + "\n")
     lines = ["| design | reps | candidates without a jump | of them usable | planted | "
-             "coverage of the reported 95% interval | planted sorting flagged | seconds |",
-             "|---|---|---|---|---|---|---|---|"]
+             "coverage of the reported 95% interval | planted sorting flagged | "
+             f"sorting flags at clean candidates > {FAR:g} away | seconds |",
+             "|---|---|---|---|---|---|---|---|---|"]
     for r in res:
         cov = "—" if r["coverage"] is None else f"{r['coverage']:.3f}"
-        srt = f"{r['sorting_flagged']:.3f}" if r.get("sorting_flagged") is not None else "—"
+        srt, far = (f"{r[k]:.3f}" if r.get(k) is not None else "—"
+                    for k in ("sorting_flagged", "sorting_flag_rate_far_from_it"))
         lines.append(f"| {r['design']} | {r['reps']} | {r['null_candidates']} | "
                      f"{r['usable_without_jump']} | {r['planted_candidates']} | {cov} | {srt} | "
-                     f"{r['seconds']} |")
+                     f"{far} | {r['seconds']} |")
     text = "\n".join(lines)
     print(text)
+    how = (f"Combined from results/{', results/'.join(a.combine)} (seeds {a.seed})"
+           if a.combine else
+           f"Command: `PYTHONPATH=. python benchmarks/honest_verdicts.py --reps {a.reps} "
+           f"--seed {a.seed} --designs {' '.join(a.designs)} --out {a.out}`")
     (RESULTS / f"{a.out}.md").write_text(
         "# Verdicts and coverage on irregular designs (benchmarks/honest_verdicts.py)\n\n"
-        f"Command: `PYTHONPATH=. python benchmarks/honest_verdicts.py --reps {a.reps} "
-        f"--seed {a.seed} --designs {' '.join(a.designs)} --out {a.out}`\n\n" + text + "\n")
+        + how + "\n\n" + text + "\n")
     return res
 
 
