@@ -280,7 +280,7 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
         row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se,
                                     levels=(fit.left, fit.right)))
-    row["design"] = _design(fit)
+    row["design"] = "unknown" if row.get("no_variation") else _design(fit)
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
         bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)

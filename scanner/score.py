@@ -25,7 +25,11 @@ A sub-score that could not be computed is left out and the weights of the others
 
 Flags and what they mean (each comes with a plain-words reason):
 
-* ``weak`` — first-stage F below 10 (Staiger & Stock 1997; common practice).
+* ``weak`` — first-stage F below 104.7, the F a single-instrument IV needs for its usual 5%
+  t-test to have size 5% (Lee, McCrary, Moreira & Porter 2022, AER 112(10), from memory); the
+  older rule of thumb, F below 10 (Staiger & Stock 1997), still scales the strength sub-score.
+  A fuzzy RD's effect is such an IV; and at the stricter bar a chance "jump" at a cutoff
+  without one (|t| near 3) is never taken for a usable design.
 * ``sorting`` — the density test the design calls for (``density_method``; rule in
   diagnostics/sorting.py) rejects a smooth density; ``density_q`` < alpha.
 * ``imbalance`` — the covariate balance joint test rejects; ``balance_q`` < alpha.
@@ -76,6 +80,7 @@ UNSTABLE_REL = 0.2
 VERDICTS = ("usable", "caution", "doubtful", "inconclusive", "no jump", "not estimable")
 SERIOUS = {"sorting", "heaping", "imbalance", "overlap", "weak"}
 F_WEAK = 10.0          # common practice: first-stage F below 10 is weak (Staiger & Stock 1997)
+F_VALID_T = 104.7      # Lee, McCrary, Moreira & Porter (2022), from memory: the "weak" flag
 MIN_DISTINCT = 5       # fewer distinct running-variable values per side inside h → "coarse"
 MIN_SIDE_ROWS = 100
 OVERLAP_Z = 3.0        # a neighbour counts as a rival only if its own jump is clear (|z| > 3)    # common practice: fewer rows per side inside h → "thin"
@@ -208,7 +213,7 @@ def flags(c: dict, alpha: float) -> list[str]:
     out = []
     if not np.isfinite(c.get("jump", np.nan)) or c.get("no_variation"):
         return out
-    if (c.get("first_stage_f") or 0) < F_WEAK:
+    if (c.get("first_stage_f") or 0) < F_VALID_T:
         out.append("weak")
     if _below(c.get("density_q", c.get("density_p")), alpha):
         out.append("sorting")
@@ -273,7 +278,8 @@ def reasons(c: dict, alpha: float) -> list[str]:
     out.append(_headline_line(c))
     fl = c.get("flags", [])
     if "weak" in fl:
-        out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
+        out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_VALID_T:g}, "
+                   "the F a usual 5% t-test of the effect needs).")
     if "sorting" in fl:
         how = (c.get("density_method") or "density test").replace("_", " ")
         how = how.replace(" without heaps", " test, heaps' excess removed")
