@@ -18,7 +18,8 @@ Stability (our rule): for each sensitivity run v (0.5, 0.75, 1.5, 2 × h; donuts
 1 and 2 support values nearest the cutoff) with conventional estimate τ_v and SE s_v, the shift
 from the run at 1 × h (estimate τ, SE s) is standardised by the SE of a difference of nested estimates,
 z_v = |τ_v − τ| / max(√|s_v² − s²|, s/2) (a Hausman-type approximation; the floor keeps near-equal
-SEs from inflating z).  S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
+SEs from inflating z); the bias-corrected estimate (SE ``se_robust``) counts as one more run.
+S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
 also practically large, max_v |τ_v − τ| / |τ| > 0.2.
 
 A sub-score that could not be computed is left out and the weights of the others rescaled.
@@ -127,6 +128,13 @@ def stability(c: dict) -> tuple[float, float]:
             continue
         zs.append(abs(tv - tau) / max(math.sqrt(abs(sv * sv - se * se)), se / 2))
         rel.append(abs(tv - tau) / max(abs(tau), 1e-12))
+    # The bias-corrected estimate is one more run: when it disagrees with the conventional one
+    # by many SEs and by much, the local polynomial does not fit at this bandwidth (a kink or
+    # a neighbouring jump inside the window) and the answer depends on the estimator.
+    tb, sb = c.get("jump_bc"), c.get("se_robust")
+    if tb is not None and sb is not None and np.isfinite(tb) and np.isfinite(sb):
+        zs.append(abs(tb - tau) / max(math.sqrt(abs(sb * sb - se * se)), se / 2))
+        rel.append(abs(tb - tau) / max(abs(tau), 1e-12))
     if not zs:
         return float("nan"), float("nan")
     return float(max(zs)), float(max(rel))
