@@ -279,3 +279,21 @@ def test_a_strong_rejection_at_one_of_50_contenders_is_not_hidden():
     other = {**rows[0], "q_value": 0.5, "density_p": 1e-9}
     design_qvalues([other], 0.05)
     assert other["density_q"] is None and "sorting" not in flags(other, 0.05)
+
+
+def test_a_bias_correction_far_from_the_estimate_makes_it_unstable():
+    # Seen in benchmarks/honest_verdicts.py "both_sides_constant": at a cutoff 20 above a step,
+    # the bandwidth selector returned h = 2.1e6 on a 0–299 score, so the window held the step;
+    # every sensitivity run agreed (0.549) but the bias-corrected jump was 0.131.
+    from scanner.score import flags, stability
+    runs = [{"variant": v, "jump": 0.549, "se": 0.0132} for v in ("h×0.5", "h×1", "h×2")]
+    row = {"jump": 0.549, "se": 0.0132, "sensitivity": runs, "jump_bc": 0.131,
+           "se_robust": 0.015, "first_stage_f": 1740.0, "n_left": 4000, "n_right": 4000,
+           "distinct_left": 100, "distinct_right": 100}
+    row["stability_z"], row["stability_shift"] = stability(row)
+    assert row["stability_z"] > 3 and row["stability_shift"] > 0.2
+    assert "unstable" in flags(row, 0.05)
+    # A bias correction within noise changes nothing.
+    row.update(jump_bc=0.55)
+    row["stability_z"], row["stability_shift"] = stability(row)
+    assert "unstable" not in flags(row, 0.05)
