@@ -216,7 +216,7 @@ def main(argv=None):
                      f"{far} | {r['seconds']} |")
     text = "\n".join(lines)
     print(text)
-    how = (f"Combined from results/{', results/'.join(a.combine)} (seeds {a.seed})"
+    how = (f"Combined from results/{', results/'.join(a.combine)} (seeds in the .json)"
            if a.combine else
            f"Command: `PYTHONPATH=. python benchmarks/honest_verdicts.py --reps {a.reps} "
            f"--seed {a.seed} --designs {' '.join(a.designs)} --out {a.out}`")
