@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +20,7 @@ from .engines import BinPlan, bin_table
 from .errors import InputError
 from .estimate import fit_jump, side_data
 from .estimate.inference import inference_fields
+from .estimate.local import floor_variance
 from .estimate.select import select_bandwidth
 from .guards import (add_cleaning_info, checked_rules, cleaning_for, evaluate_contained,
                      explain_nan, keep_first, roles, text_columns, unit_repeats)
@@ -29,7 +30,7 @@ from .io import open_table
 from .rules import load_rules
 from .score import MIN_DISTINCT, finalize
 from .spec import ScanSpec, load_spec, parse_spec
-from .timeline import BEFORE_AFTER_FIELDS, before_after, change_date
+from .timeline import BEFORE_AFTER_FIELDS, POOLED_FIELDS, before_after, change_date, in_force_codes
 
 
 @dataclass
@@ -279,6 +280,14 @@ def _evaluate_group(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=N
     rows, density_cache = [], {}
     for c in cands:
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+        force = in_force_codes(stats[c.running], c.rule)
+        if force is not None:
+            # A dated rule: the headline comes from the periods it was in force; pooled beside.
+            st = stats[c.running].restrict(period=force[0]).pooled()
+            key = ("in force", c.running, tuple(force[0]))
+            alone = evaluate_contained(evaluate, st, c, spec, density_cache.setdefault(key, {}))
+            alone.update({f"{k}_pooled": row.get(k) for k in POOLED_FIELDS}, in_force=force[1])
+            row = alone
         row.update(c.lattice_fields())
         add_binning_error(row, pooled[c.running], c, spec)
         # Declared rules with an effective date: jumps before/after it from the period keys.
@@ -440,6 +449,8 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
     d = side_data(stats, t, c, cand.right_closed)
     sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
     h = (sel.h_left + sel.h_right) / 2   # diagnostics below use one window
+    # A side with no variation in the window gets a variance that cannot vanish (local.py).
+    d, variation = floor_variance(d, sel.h_left, sel.h_right)
     fit = fit_jump(stats, t, c, sel.h_left, spec.kernel, spec.degree, cand.right_closed, data=d,
                    bandwidth_right=sel.h_right)
     row = {
@@ -453,12 +464,19 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         "bandwidth_note": sel.note, "kernel": spec.kernel, "degree": spec.degree,
         "n_left": fit.n_left, "n_right": fit.n_right, "distinct_left": fit.distinct_left,
         "distinct_right": fit.distinct_right, "reason": fit.reason,
-        "right_closed": cand.right_closed,
+        "right_closed": cand.right_closed, "variation": variation.to_dict(),
     }
-    if np.isfinite(fit.jump):
+    if variation.none and np.isfinite(fit.jump):
+        # Both sides constant at one value: nothing varies, so nothing is tested (no p-value).
+        nan = float("nan")
+        row.update(jump=0.0, se=nan, z=nan, p_value=nan, ci_low=nan, ci_high=nan,
+                   first_stage_f=nan, no_variation=True, interval="none")
+        fit = replace(fit, jump=0.0, se=nan, z=nan, p_value=nan, ci_low=nan, ci_high=nan)
+    elif np.isfinite(fit.jump):
         coarse = min(fit.distinct_left, fit.distinct_right) < MIN_DISTINCT   # as score.flags
-        row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se))
-    row["design"] = _design(fit)
+        row.update(inference_fields(d, sel, spec.kernel, spec.degree, coarse, fit.se,
+                                    levels=(fit.left, fit.right)))
+    row["design"] = "unknown" if row.get("no_variation") else _design(fit)
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
         bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)

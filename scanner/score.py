@@ -18,14 +18,19 @@ Stability (our rule): for each sensitivity run v (0.5, 0.75, 1.5, 2 × h; donuts
 1 and 2 support values nearest the cutoff) with conventional estimate τ_v and SE s_v, the shift
 from the run at 1 × h (estimate τ, SE s) is standardised by the SE of a difference of nested estimates,
 z_v = |τ_v − τ| / max(√|s_v² − s²|, s/2) (a Hausman-type approximation; the floor keeps near-equal
-SEs from inflating z).  S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
+SEs from inflating z); the bias-corrected estimate (SE ``se_robust``) counts as one more run.
+S = max_v z_v.  Flag ``unstable`` when S > 3 and the largest shift is
 also practically large, max_v |τ_v − τ| / |τ| > 0.2.
 
 A sub-score that could not be computed is left out and the weights of the others rescaled.
 
 Flags and what they mean (each comes with a plain-words reason):
 
-* ``weak`` — first-stage F below 10 (Staiger & Stock 1997; common practice).
+* ``weak`` — first-stage F below 104.7, the F a single-instrument IV needs for its usual 5%
+  t-test to have size 5% (Lee, McCrary, Moreira & Porter 2022, AER 112(10), from memory); the
+  older rule of thumb, F below 10 (Staiger & Stock 1997), still scales the strength sub-score.
+  A fuzzy RD's effect is such an IV; and at the stricter bar a chance "jump" at a cutoff
+  without one (|t| near 3) is never taken for a usable design.
 * ``sorting`` — the density test the design calls for (``density_method``; rule in
   diagnostics/sorting.py) rejects a smooth density; ``density_q`` < alpha.
 * ``imbalance`` — the covariate balance joint test rejects; ``balance_q`` < alpha.
@@ -36,10 +41,15 @@ Flags and what they mean (each comes with a plain-words reason):
 * ``thin`` — fewer than ``MIN_SIDE_ROWS`` rows on a side within the bandwidth.
 * ``overlap`` — a stronger cutoff lies inside this candidate's window.
 
-``density_q`` and ``balance_q`` are Benjamini–Hochberg q-values over the scan's contenders (first
-stage q < alpha; see ``design_qvalues``); other candidates keep their p-values but get neither
-flag.  Candidates are ranked by verdict (usable, caution, doubtful, no jump, not estimable) and then by
-score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
+* ``impossible`` — a compliance share lies outside [0, 1] by more than 1.96 of its standard
+  errors (diagnostics/compliance.py says why that can happen).
+
+``density_q`` and ``balance_q`` are Holm (1979, Scand. J. Statist. 6(2)) adjusted p-values over
+each contender's own design checks (its density test and its covariate balance test; contenders
+are candidates whose first stage survives the scan's adjustment, q < alpha; see
+``design_qvalues``); other candidates get neither flag.  Verdicts and the headline each rests on
+are built in scanner/headline.py.  Candidates are ranked by verdict (usable, caution, doubtful,
+inconclusive, no jump, not estimable) and then by score.  q-values are Benjamini–Hochberg (1995, JRSS B 57(1)) adjusted p-values over every
 test actually run in the scan, counted as follows:
 
 * each declared or round candidate with a finite p-value is one test (its own p-value);
@@ -62,14 +72,17 @@ import numpy as np
 
 from .diagnostics.heaping import HEAP_P, HEAP_RATIO
 from .textfmt import format_p, format_p_eq  # noqa: F401  (one formatter for every output)
+from .headline import (PRACTICAL_JUMP, SHARE_BOUNDS, apply_headline, build_headline,
+                       clip_intervals, is_share)
 
 WEIGHTS = {"strength": 0.30, "density": 0.15, "balance": 0.15, "support": 0.10, "placebo": 0.10,
            "heaping": 0.10, "stability": 0.10}
 UNSTABLE_Z = 3.0       # our rule, see the table above
 UNSTABLE_REL = 0.2
-VERDICTS = ("usable", "caution", "doubtful", "no jump", "not estimable")
+VERDICTS = ("usable", "caution", "doubtful", "inconclusive", "no jump", "not estimable")
 SERIOUS = {"sorting", "heaping", "imbalance", "overlap", "weak"}
 F_WEAK = 10.0          # common practice: first-stage F below 10 is weak (Staiger & Stock 1997)
+F_VALID_T = 104.7      # Lee, McCrary, Moreira & Porter (2022), from memory: the "weak" flag
 MIN_DISTINCT = 5       # fewer distinct running-variable values per side inside h → "coarse"
 MIN_SIDE_ROWS = 100
 OVERLAP_Z = 3.0        # a neighbour counts as a rival only if its own jump is clear (|z| > 3)    # common practice: fewer rows per side inside h → "thin"
@@ -116,6 +129,13 @@ def stability(c: dict) -> tuple[float, float]:
             continue
         zs.append(abs(tv - tau) / max(math.sqrt(abs(sv * sv - se * se)), se / 2))
         rel.append(abs(tv - tau) / max(abs(tau), 1e-12))
+    # The bias-corrected estimate is one more run: when it disagrees with the conventional one
+    # by many SEs and by much, the local polynomial does not fit at this bandwidth (a kink or
+    # a neighbouring jump inside the window) and the answer depends on the estimator.
+    tb, sb = c.get("jump_bc"), c.get("se_robust")
+    if tb is not None and sb is not None and np.isfinite(tb) and np.isfinite(sb):
+        zs.append(abs(tb - tau) / max(math.sqrt(abs(sb * sb - se * se)), se / 2))
+        rel.append(abs(tb - tau) / max(abs(tau), 1e-12))
     if not zs:
         return float("nan"), float("nan")
     return float(max(zs)), float(max(rel))
@@ -152,22 +172,39 @@ def _below(p, alpha) -> bool:
     return p is not None and np.isfinite(p) and p < alpha
 
 
-def design_qvalues(rows: list[dict], alpha: float) -> None:
-    """BH q-values of the density and balance checks over the scan's contenders.
+def holm(p) -> np.ndarray:
+    """Holm (1979) step-down adjusted p-values; NaN p-values stay NaN and are not counted."""
+    p = np.asarray(p, float)
+    q = np.full(p.shape, np.nan)
+    ok = np.flatnonzero(np.isfinite(p))
+    m = ok.size
+    if m == 0:
+        return q
+    order = ok[np.argsort(p[ok])]
+    adj = np.maximum.accumulate(p[order] * (m - np.arange(m)))
+    q[order] = np.minimum(adj, 1.0)
+    return q
 
-    Contenders are candidates whose first stage survives the scan's adjustment (q < alpha).  A
-    design check qualifies a candidate design, so it is judged among the designs on offer:
-    without this, a scan of hundreds of cutoffs raises about alpha × (number of cutoffs) false
-    warnings.  Other candidates keep their p-values and get no sorting/imbalance flag
-    (q-value None).  With a single contender the q-value is its p-value.
+
+def design_qvalues(rows: list[dict], alpha: float) -> None:
+    """Adjusted p-values of the density and balance checks: each contender is its own family.
+
+    Contenders are candidates whose first stage survives the scan's adjustment (q < alpha).
+    A design check qualifies one candidate's design, and a missed rejection is the costly error
+    (a design with sorting called "usable"), so each contender's checks are adjusted only among
+    themselves — Holm (1979) over its density test and its covariate balance test — and the
+    chance that a clean design gets a flag is at most alpha.  An adjustment across candidates
+    would let a crowd of strong candidates hide a strong rejection at one of them (with 50
+    contenders a Benjamini–Hochberg q of a density p of 0.004 is 0.2).  Other candidates get no
+    sorting/imbalance flag (q-value None).
     """
-    cont = [r for r in rows if _below(r.get("q_value"), alpha)]
     for r in rows:
         r["density_q"] = None
         r["balance_q"] = None
-    for field in ("density", "balance"):
-        q = bh_qvalues([r.get(f"{field}_p", np.nan) for r in cont])
-        for r, v in zip(cont, q):
+        if not _below(r.get("q_value"), alpha):
+            continue
+        q = holm([r.get("density_p", np.nan), r.get("balance_p", np.nan)])
+        for field, v in zip(("density", "balance"), q):
             r[f"{field}_q"] = float(v) if np.isfinite(v) else None
 
 
@@ -183,9 +220,9 @@ def heaped(c: dict) -> bool:
 def flags(c: dict, alpha: float) -> list[str]:
     """Short flag words for a candidate row."""
     out = []
-    if not np.isfinite(c.get("jump", np.nan)):
+    if not np.isfinite(c.get("jump", np.nan)) or c.get("no_variation"):
         return out
-    if (c.get("first_stage_f") or 0) < F_WEAK:
+    if (c.get("first_stage_f") or 0) < F_VALID_T:
         out.append("weak")
     if _below(c.get("density_q", c.get("density_p")), alpha):
         out.append("sorting")
@@ -200,22 +237,15 @@ def flags(c: dict, alpha: float) -> list[str]:
     S, rel = c.get("stability_z", np.nan), c.get("stability_shift", np.nan)
     if np.isfinite(S) and S > UNSTABLE_Z and rel > UNSTABLE_REL:
         out.append("unstable")
+    if c.get("impossible_share"):
+        out.append("impossible")
     out.extend(f for f in c.get("extra_flags", []) if f not in out)
     return out
 
 
 def verdict(c: dict, alpha: float) -> str:
-    if not np.isfinite(c.get("jump", np.nan)):
-        return "not estimable"
-    q = c.get("q_value")
-    if q is None or not np.isfinite(q) or q >= alpha:
-        return "no jump"
-    fl = set(c.get("flags", []))
-    if fl & SERIOUS:
-        return "doubtful"
-    if fl:
-        return "caution"
-    return "usable"
+    """The candidate's verdict word (scanner.headline.build_headline decides it)."""
+    return build_headline(c, alpha, SERIOUS).verdict
 
 
 def _fmt_f(f):
@@ -230,12 +260,21 @@ def reasons(c: dict, alpha: float) -> list[str]:
     out = []
     if not np.isfinite(c.get("jump", np.nan)):
         return [f"could not be estimated: {c.get('reason') or 'unknown reason'}."]
+    if c.get("no_variation"):
+        v = (c.get("variation") or {}).get("value_left")
+        return [f"{c['treatment']} is {v:.3g} on both sides of {c['running']} = {c['cutoff']:g} "
+                "within the bandwidth: no variation, so there is nothing to test."]
+    left, right = c["left"], c["right"]
+    if is_share(c):   # fitted levels of a 0/1 column are shares: shown within [0, 1]
+        left, right = (float(np.clip(v, *SHARE_BOUNDS)) for v in (left, right))
     out.append(f"uptake of {c['treatment']} jumps by {c['jump']:+.3f} at {c['running']} = "
-               f"{c['cutoff']:g} (from {c['left']:.2f} to {c['right']:.2f}; F = {_fmt_f(c['first_stage_f'])}, "
+               f"{c['cutoff']:g} (from {left:.2f} to {right:.2f}; F = {_fmt_f(c['first_stage_f'])}, "
                f"{format_p_eq('q', c['q_value'])}).")
+    out.append(_headline_line(c))
     fl = c.get("flags", [])
     if "weak" in fl:
-        out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_WEAK:g}).")
+        out.append(f"the first stage is weak (F = {c['first_stage_f']:.1f} < {F_VALID_T:g}, "
+                   "the F a usual 5% t-test of the effect needs).")
     if "sorting" in fl:
         how = (c.get("density_method") or "density test").replace("_", " ")
         how = how.replace(" without heaps", " test, heaps' excess removed")
@@ -259,6 +298,8 @@ def reasons(c: dict, alpha: float) -> list[str]:
     if "overlap" in fl:
         out.append(f"a stronger jump at {c['overlap_with']:g} lies inside this window, so this "
                    "estimate mostly picks up that one.")
+    if "impossible" in fl and c.get("impossible_share"):
+        out.append(f"{c['impossible_share']}.")
     if "thin" in fl:
         out.append("few rows near the cutoff on at least one side.")
     if "unstable" in fl:
@@ -280,10 +321,36 @@ def reasons(c: dict, alpha: float) -> list[str]:
                        f"{pw['mde_itt']:.3g} (intent-to-treat)"
                        + (f", {cm:.3g} among compliers" if cm is not None and np.isfinite(cm) else "")
                        + f" at {100 * pw['power']:.0f}% power, alpha {pw['alpha']:g}.")
-    if c.get("q_value") is not None and np.isfinite(c["q_value"]) and c["q_value"] >= alpha:
-        out.append(f"no jump after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
-                   f"({format_p_eq('q', c['q_value'])} ≥ {alpha:g}).")
+    if c.get("verdict") in ("inconclusive", "no jump"):
+        q = c.get("q_value")
+        adj = (f"not clear after adjusting for the {c.get('n_tested', 0)} cutoffs tested "
+               f"({format_p_eq('q', q)} ≥ {alpha:g})" if q is not None and np.isfinite(q)
+               else "not tested")
+        iv = _iv(c.get("ci_low"), c.get("ci_high"))
+        if c["verdict"] == "inconclusive":
+            out.append(f"inconclusive: {adj}, yet the 95% interval {iv} includes a jump of "
+                       f"±{PRACTICAL_JUMP:g} or more: the data cannot tell either way.")
+        else:
+            out.append(f"no jump of practical size: {adj}, and the 95% interval {iv} lies "
+                       f"within ±{PRACTICAL_JUMP:g}.")
     return out
+
+
+def _iv(lo, hi) -> str:
+    ok = all(v is not None and np.isfinite(v) for v in (lo, hi))
+    return f"[{lo:+.3f}, {hi:+.3f}]" if ok else "(none)"
+
+
+def _headline_line(c: dict) -> str:
+    """Where the headline numbers come from: estimate, interval, its centre, the rows."""
+    h = c.get("headline") or {}
+    kind = h.get("interval") or c.get("interval") or "conventional"
+    bc = c.get("jump_bc")
+    centre = (f", centred on the bias-corrected jump {bc:+.3f}" if kind == "robust"
+              and bc is not None and np.isfinite(bc) else "")
+    return (f"estimate {c['jump']:+.3f} (conventional); 95% {kind} interval "
+            f"{_iv(c.get('ci_low'), c.get('ci_high'))}{centre}; rows: "
+            f"{h.get('sample', 'all rows')}.")
 
 
 def overlaps(rows: list[dict]) -> None:
@@ -327,7 +394,8 @@ def finalize(rows: list[dict], alpha: float, extra_p=()) -> list[dict]:
         r["flags"] = flags(r, alpha)
         r["subscores"] = subscores(r)
         r["score"] = composite(r["subscores"])
-        r["verdict"] = verdict(r, alpha)
+        clip_intervals(r)
+        apply_headline(r, build_headline(r, alpha, SERIOUS))
         r["reasons"] = reasons(r, alpha) + search_reasons(r)
     rows.sort(key=lambda r: (VERDICTS.index(r["verdict"]), -r["score"], r["running"],
                              r["treatment"], r["cutoff"]))

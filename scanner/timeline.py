@@ -233,6 +233,38 @@ def change_date(rule) -> dt.date | None:
     return None
 
 
+def in_force_codes(stats: BinnedStats, rule) -> tuple[list[int], str] | None:
+    """Quarter codes wholly inside the rule's effective dates, and a label for them.
+
+    None when the rule has no dates, the bins have no period keys, or every period present is
+    in force (then the pooled estimate is the in-force one).  A quarter the rule starts or
+    stops in mid-way mixes both regimes and is left out, as in :func:`split_codes`.
+    """
+    if rule is None or not (rule.effective_from or rule.effective_to):
+        return None
+    codes = [int(c) for c in np.unique(stats.period[stats.period >= 0])]
+    if not codes:
+        return None
+    lo, hi = -np.inf, np.inf
+    if rule.effective_from:
+        q = quarter_code(rule.effective_from)
+        lo = q if rule.effective_from == quarter_start(q) else q + 1
+    if rule.effective_to:
+        q = quarter_code(rule.effective_to)
+        hi = q if rule.effective_to + dt.timedelta(days=1) == quarter_start(q + 1) else q - 1
+    keep = [c for c in codes if lo <= c <= hi]
+    if not keep or len(keep) == len(codes):
+        return None
+    label = (f"{rule.effective_from.isoformat() if rule.effective_from else 'start'} to "
+             f"{rule.effective_to.isoformat() if rule.effective_to else 'end of data'}; "
+             f"{period_label(keep[0], 'quarter')}–{period_label(keep[-1], 'quarter')}")
+    return keep, label
+
+
+# No row counts: beside the in-force counts they could give small counts away by subtraction.
+POOLED_FIELDS = ("jump", "se", "ci_low", "ci_high", "p_value", "jump_bc", "bandwidth")
+
+
 BEFORE_AFTER_FIELDS = ("change_date", "jump_before", "se_before", "jump_after", "se_after", "did",
                        "did_se", "did_p", "did_reason")
 
@@ -254,5 +286,5 @@ def before_after(stats: BinnedStats, cand, bandwidth: float, kernel: str = "tria
             for k in BEFORE_AFTER_FIELDS}
 
 
-__all__ = ["quarter_code", "choose_granularity", "period_jumps", "diff_in_disc", "before_after",
+__all__ = ["in_force_codes", "POOLED_FIELDS", "quarter_code", "choose_granularity", "period_jumps", "diff_in_disc", "before_after",
            "change_date", "PeriodJump", "DiscDiff"]

@@ -35,7 +35,12 @@ def test_heaped_self_report_flags_round_candidates_and_none_usable():
     assert jumped, "the heaps should create apparent jumps at round values"
     assert all("heaping" in r["flags"] for r in jumped)
     assert not any(r["verdict"] == "usable" for r in rows)
-    assert not any("sorting" in r["flags"] for r in rows)
+    # Heaps are not read as sorting: the raw density tests reject at every heaped contender,
+    # the tests with the heaps' excess removed do not.  Each contender's design checks are
+    # their own family (score.design_qvalues), so a clean design is flagged with chance at
+    # most alpha: one chance flag among the contenders is allowed, not more.
+    assert all(r["density_tests"]["local_polynomial"]["p_value"] < 0.05 for r in jumped)
+    assert sum("sorting" in r["flags"] for r in rows) <= 1
 
 
 def _balance_design(rng, n, shift):

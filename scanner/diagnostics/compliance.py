@@ -8,7 +8,11 @@ uptake limit on the eligible side and p_out on the other,
 
     always-takers = p_out,   never-takers = 1 − p_in,   compliers = p_in − p_out,
 
-which sum to one by construction.  "The threshold binds for X%" is the complier share.  The
+which sum to one by construction.  The limits of a 0/1 uptake are shares, so the shares are
+computed from the limits clipped to [0, 1] (a local linear fit can overshoot near 0 or 1: a
+fitted −0.04 is a share of 0 with some noise).  A limit outside [0, 1] by more than 1.96 of its
+standard errors, or a complier share below 0 by as much, is not noise: the shares are then not
+reported (NaN) and ``impossible`` says why (the scan flags it "impossible").  "The threshold binds for X%" is the complier share.  The
 eligible side is the rule's, or — without a rule — the side where uptake is higher.  Standard
 errors: the complier share's is the jump's; the other two are the one-sided limits' HC1 SEs.
 """
@@ -18,7 +22,7 @@ from dataclasses import dataclass, asdict
 
 import numpy as np
 
-from ..estimate.local import SideData, fit_jump
+from ..estimate.local import Z95, SideData, _is_binary, fit_jump
 
 
 @dataclass(frozen=True)
@@ -31,6 +35,7 @@ class Compliance:
     se_compliers: float
     eligible: str            # "right" or "left"
     reason: str | None = None
+    impossible: str | None = None
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -73,5 +78,25 @@ def compliance_profile(stats, data: SideData, fit, eligible_side: str | None = N
     reason = None
     if p_in < p_out:
         reason = "uptake is lower on the eligible side: the shares assume monotonicity"
+    side = "right" if right else "left"
+    bad = _impossible(p_in, se_in, p_out, se_out, fit.se, side) if _is_binary(data) else None
+    if bad:
+        return Compliance(nan, nan, nan, float(se_out), float(se_in), float(fit.se), side,
+                          bad, bad)
+    if _is_binary(data):
+        p_in, p_out = (min(max(v, 0.0), 1.0) for v in (p_in, p_out))
     return Compliance(float(p_out), float(1 - p_in), float(p_in - p_out), float(se_out),
-                      float(se_in), float(fit.se), "right" if right else "left", reason)
+                      float(se_in), float(fit.se), side, reason)
+
+
+def _impossible(p_in, se_in, p_out, se_out, se_jump, eligible) -> str | None:
+    """Why the shares are impossible beyond noise (None when they are possible)."""
+    other = "left" if eligible == "right" else "right"
+    for name, v, se, where in (("uptake", p_in, se_in, eligible), ("uptake", p_out, se_out, other)):
+        if np.isfinite(v) and np.isfinite(se) and (v < -Z95 * se or v > 1 + Z95 * se):
+            return (f"the fitted {name} just {where} of the cutoff is {v:.3f}, outside [0, 1] by "
+                    f"more than 1.96 SE: the local fit overshoots, so no shares are reported")
+    if np.isfinite(se_jump) and p_in - p_out < -Z95 * se_jump:
+        return ("uptake is clearly lower on the eligible side: a negative complier share is "
+                "impossible under monotonicity, so no shares are reported")
+    return None

@@ -55,7 +55,8 @@ def design_checks(stats, cand, spec, fit, data, cache: dict) -> dict:
     row.update(share_always=cp.share_always, share_never=cp.share_never,
                share_compliers=cp.share_compliers, share_always_se=cp.se_always,
                share_never_se=cp.se_never, share_compliers_se=cp.se_compliers,
-               eligible_limit_side=cp.eligible, compliance_reason=cp.reason)
+               eligible_limit_side=cp.eligible, compliance_reason=cp.reason,
+               impossible_share=cp.impossible)
     # Power for planned outcomes (never uses an outcome's jump).
     row["power"] = [outcome_power(side_data(stats, y, c, rc), h, fit.jump, spec.alpha,
                                   spec.kernel, spec.degree, name=y)

@@ -17,10 +17,12 @@ honest intervals use HC3 (``robust.py`` says why); ``se_conventional_hc3`` is th
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from ..bins import BinnedStats
-from .local import SideData, Z95, joint_side_data
+from .local import SideData, Z95, joint_side_data, se_floor, two_sided_p
 from .mse import fuzzy_side_data, pilot_ratio
 from .robust import (curvature_bound, honest_best, honest_by_M, honest_interval, robust_fuzzy,
                      robust_jump)
@@ -28,7 +30,7 @@ from .select import Selection, select_bandwidth, sensitivity
 
 
 def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coarse: bool,
-                     se_conventional: float | None = None) -> dict:
+                     se_conventional: float | None = None, levels=()) -> dict:
     """Robust, conventional and honest interval fields plus the sensitivity runs.
 
     Parameters
@@ -39,12 +41,14 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
     se_conventional : the row's conventional SE (HC1, ``local.fit_jump``); the conventional
         interval is built from it so ``jump``, ``se`` and that interval agree.  When None, the
         conventional part of the robust fit (HC3) is used.
+    levels : the fitted one-sided limits; the robust SE is held above ``local.se_floor`` of
+        them (a numerical floor relative to the data's scale).
 
     Returns
     -------
     dict of results.json fields (see the module docstring and docs/methods.md).
     """
-    rob = robust_jump(d, sel.h, sel.b, kernel, degree)
+    rob = _floored(robust_jump(d, sel.h, sel.b, kernel, degree), levels)
     M = curvature_bound(d, window=sel.b, kernel=kernel)   # local fits at the bias pilot b
     if coarse:
         hon, h_hon = honest_best(d, M, kernel, degree)
@@ -77,6 +81,16 @@ def inference_fields(d: SideData, sel: Selection, kernel: str, degree: int, coar
         out.update(interval="conventional")   # keeps the conventional fields already in the row
     out["sensitivity"] = sensitivity(d, sel, kernel, degree, main=rob)
     return out
+
+
+def _floored(rob, levels):
+    """The robust fit with its SE held above the numerical floor of ``local.se_floor``."""
+    floor = se_floor(*levels) if levels else 0.0
+    if not (np.isfinite(rob.se_robust) and rob.se_robust < floor):
+        return rob
+    z = rob.jump_bc / floor
+    return replace(rob, se_robust=floor, ci_low=rob.jump_bc - Z95 * floor,
+                   ci_high=rob.jump_bc + Z95 * floor, z_robust=z, p_value=two_sided_p(z))
 
 
 def fuzzy_inference(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,

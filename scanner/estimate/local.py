@@ -11,6 +11,13 @@ Variance: heteroskedasticity-robust sandwich (White 1980) with the HC1 finite-sa
 applies for ``cov_type="HC1"``.  Within an exact-support bin every row has the same x, so the
 row residuals' squares sum to ``Σ(y - ȳ_b)² + n_b (ȳ_b - f(x_b))²``; the sandwich is then exact.
 
+Sides without variation: when every row on a side of the window has the same value (uptake 0
+or 1 throughout), that side's residuals are all zero and the sandwich variance collapses, so a
+rounding-error "jump" of 1e-16 could get a t of 20.  :func:`floor_variance` gives such a side a
+per-row variance that cannot vanish (see its docstring), both sides constant and equal are "no
+variation" (no test at all), and :func:`_finish` never lets a standard error fall below
+``SE_FLOOR_REL`` times the scale of the fitted levels (a numerical floor, our choice).
+
 Fuzzy design: the ratio of the outcome jump to the uptake jump (a local Wald estimator), with
 the delta-method variance ``Σ ℓ_i² (e_Y,i − τ e_T,i)² / τ_T²`` — numerically the HC sandwich of
 the just-identified weighted two-stage least squares with instrument D.
@@ -26,6 +33,9 @@ from ..bins import BinnedStats
 from .kernels import kernel as kernel_fn
 
 Z95 = float(special.ndtri(0.975))
+SE_FLOOR_REL = 1e-8      # our choice: far below any real SE, far above rounding error of sums
+AC_PSEUDO = 2.0          # Agresti & Coull (1998): add 2 successes and 2 failures (95% level)
+CONST_TOL = 1e-12        # relative tolerance for "every row has the same value"
 
 
 @dataclass(frozen=True)
@@ -289,7 +299,18 @@ def two_sided_p(z: float) -> float:
     return float(2 * special.ndtr(-abs(z)))
 
 
+def se_floor(*levels) -> float:
+    """Smallest standard error we report for estimates of levels like ``levels``.
+
+    Sums of n values of size s carry rounding errors near n·1e-16·s, so an SE below
+    ``SE_FLOOR_REL`` × the scale of the fitted levels is numerical noise, not precision.
+    """
+    scale = max((abs(float(v)) for v in levels if np.isfinite(v)), default=0.0)
+    return SE_FLOOR_REL * scale
+
+
 def _finish(cutoff, h, kern, degree, jump, se, bl, br, counts) -> JumpFit:
+    se = max(float(se), se_floor(bl[0], br[0])) if np.isfinite(se) else se
     z = jump / se if se > 0 else (np.inf if jump != 0 else float("nan"))
     p = two_sided_p(z) if np.isfinite(z) else (0.0 if np.isinf(z) else float("nan"))
     sl = bl[1] if degree >= 1 else 0.0
@@ -297,6 +318,117 @@ def _finish(cutoff, h, kern, degree, jump, se, bl, br, counts) -> JumpFit:
     return JumpFit(float(cutoff), h, kern, degree, float(jump), se, float(z), p,
                    float(jump - Z95 * se), float(jump + Z95 * se), float(bl[0]), float(br[0]),
                    float(sl), float(sr), *counts)
+
+
+@dataclass(frozen=True)
+class Variation:
+    """Which sides of a window have no within-side variation, and the variance used instead.
+
+    ``method`` names the variance given to a constant side (None when no side is constant);
+    ``none`` is True when both sides are constant at the same value: there is nothing to test.
+    """
+
+    constant_left: bool
+    constant_right: bool
+    value_left: float
+    value_right: float
+    binary: bool
+    method: str | None = None
+    variance_left: float = float("nan")
+    variance_right: float = float("nan")
+
+    @property
+    def none(self) -> bool:
+        return (self.constant_left and self.constant_right
+                and abs(self.value_left - self.value_right)
+                <= CONST_TOL * max(1.0, abs(self.value_left)))
+
+    def to_dict(self) -> dict:
+        return {**asdict(self), "none": self.none}
+
+
+def _is_binary(d: SideData) -> bool:
+    """Every row 0 or 1: then Σy² = Σy in every bin and 0 ≤ Σy ≤ n."""
+    n, s1, s2 = d.n, d.s1, d.s2
+    return bool(np.all(s1 >= -CONST_TOL * n) and np.all(s1 <= n * (1 + CONST_TOL))
+                and np.all(np.abs(s2 - s1) <= CONST_TOL * np.maximum(n, 1)))
+
+
+def _constant(n, s1, s2):
+    """(constant?, value) of the rows in these bins: one mean and no spread within bins."""
+    if n.sum() <= 0:
+        return False, float("nan")
+    mean = s1 / n
+    v = float(s1.sum() / n.sum())
+    tol = CONST_TOL * max(1.0, abs(v))
+    within = s2 - s1 * mean
+    return bool(np.all(np.abs(mean - v) <= tol) and np.all(within <= tol * tol * n + tol * n)), v
+
+
+def floor_variance(d: SideData, h_left: float, h_right: float | None = None):
+    """The side data with a non-vanishing variance on any side that has no variation.
+
+    Parameters
+    ----------
+    d : SideData of one column at the cutoff.
+    h_left, h_right : the bandwidths on each side (``h_right`` defaults to ``h_left``); a side
+        is constant when every row with |x − c| < h on it has the same value.
+
+    Returns
+    -------
+    (SideData, Variation).  Only the second moments of the constant side's bins inside its
+    window change (``s2`` = ``s1²/n + n σ̃²``), so every estimate is unchanged and every
+    variance built from residuals sees a per-row variance σ̃² there:
+
+    * 0/1 column: σ̃² = p̃(1 − p̃) with p̃ = (Σy + 2)/(n + 4), the Bernoulli variance at the
+      Agresti–Coull share of that side's n rows in the window (Agresti & Coull 1998, The
+      American Statistician 52(2): 119–126, from memory): 0 successes in n rows still carry
+      the uncertainty of a share near 2/(n + 4).
+    * other columns: σ̃² = the other side's sample variance within its window (a pooled
+      variance; conservative, as it also holds the other side's trend).
+    * other columns constant on both sides at different values: no floor (the data are
+      deterministic); only the numerical floor of :func:`se_floor` applies.
+
+    Notes
+    -----
+    METHODS.md §8e asks for a variance that cannot vanish where uptake is 0 or 1 throughout a
+    side; the Agresti–Coull share is the floor we chose for 0/1 columns.
+    """
+    hr = h_left if h_right is None else h_right
+    nan = float("nan")
+    binary = _is_binary(d)
+    if not (np.isfinite(h_left) and np.isfinite(hr) and h_left > 0 and hr > 0):
+        return d, Variation(False, False, nan, nan, binary)
+    masks = [(~d.right) & (np.abs(d.u) < h_left) & (d.n > 0),
+             d.right & (np.abs(d.u) < hr) & (d.n > 0)]
+    const = [_constant(d.n[m], d.s1[m], d.s2[m]) for m in masks]
+    (cl, vl), (cr, vr) = const
+    if not (cl or cr):
+        return d, Variation(False, False, vl, vr, binary)
+    var = [nan, nan]
+    method = None
+    for i, (m, (c, v)) in enumerate(zip(masks, const)):
+        if not c:
+            continue
+        n = float(d.n[m].sum())
+        if binary:
+            pt = (float(d.s1[m].sum()) + AC_PSEUDO) / (n + 2 * AC_PSEUDO)
+            var[i] = pt * (1 - pt)
+            method = "Bernoulli variance at the Agresti-Coull share (Agresti & Coull 1998)"
+        else:
+            o = masks[1 - i]
+            no = float(d.n[o].sum())
+            if const[1 - i][0] or no < 2:
+                continue
+            s1o, s2o = float(d.s1[o].sum()), float(d.s2[o].sum())
+            var[i] = max(s2o - s1o * s1o / no, 0.0) / (no - 1)
+            method = "the other side's variance within the bandwidth (pooled)"
+    s2 = d.s2.astype(float).copy()
+    for m, v in zip(masks, var):
+        if np.isfinite(v) and v > 0:
+            s2[m] = d.s1[m] ** 2 / d.n[m] + d.n[m] * v
+    out = SideData(d.u, d.n, d.s1, s2, d.right) if method else d
+    return out, Variation(cl, cr, vl, vr, binary, method, var[0], var[1])
 
 
 def joint_side_data(stats: BinnedStats, treatment: str, outcome: str, cutoff: float,

@@ -12,6 +12,7 @@ import json
 import html
 from pathlib import Path
 
+from ..headline import PRACTICAL_JUMP
 from . import figures
 from .exports import cautions, density_label, format_p, format_p_eq
 from .screen import screen_section
@@ -157,7 +158,7 @@ def _overview(results: dict) -> list[str]:
 
 
 RANK_HEADS = (("#", ""), ("running", "l"), ("treatment", "l"), ("cutoff", ""), ("origin", "l"),
-              ("jump [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
+              ("jump (conventional)", ""), ("bias-corrected [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
               ("density p", ""), ("balance p", ""), ("score", ""), ("verdict", "l"), ("flags", "l"))
 
 
@@ -168,18 +169,27 @@ def _ranking(results: dict, limit: int) -> list[str]:
              "('suppressed' where the count, or its difference from a figure's bins, would be "
              f"below {results['disclosure']['min_cell']}, so one side can be hidden while the "
              "other shows thousands). "
+             "The robust 95% interval is centred on the bias-corrected jump, shown beside the "
+             "conventional estimate; 'inconclusive' marks an interval that holds both zero and "
+             f"a jump of ±{PRACTICAL_JUMP:g} or more. "
              "The full list is in candidates.csv.</p><table><tr>"]
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
     for c in results["candidates"][:limit]:
         ci = ("" if c["ci_low"] is None else
-              f"<br><span class='ci'>[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}]</span>")
+              f"<br><span class='ci'>[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] "
+              f"{esc(c.get('interval') or '')}</span>")
+        # The robust interval is centred on the bias-corrected jump: show it beside the
+        # conventional one, with the interval under it (other intervals sit under the jump).
+        robust = c.get("interval") == "robust"
+        bc = _fmt(c.get("jump_bc"), "+.3f") if robust else "—"   # interval named under the jump
         f = c.get("first_stage_f")
         parts.append(
             f"<tr><td>{c['rank']}</td><td class='l'>{esc(c['running'])}</td>"
             f"<td class='l'>{esc(c['treatment'])}</td><td>{c['cutoff']:g}</td>"
             f"<td class='l'>{esc(c.get('rule_id') or c['origin'])}</td>"
-            f"<td>{_fmt(c['jump'], '+.3f')}{ci}</td>"
+            f"<td>{_fmt(c['jump'], '+.3f')}{'' if robust else ci}</td>"
+            f"<td>{bc}{ci if robust else ''}</td>"
             f"<td>{'—' if f is None else ('>9999' if f > 9999 else f'{f:.0f}')}</td>"
             f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}</td>"
             f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}"
@@ -320,14 +330,21 @@ def card(c: dict, unit: str | None) -> str:
     if c.get("density_tests"):
         parts.append(_list_table("Density tests", c["density_tests"], "density-tests"))
     if c.get("placebo_p") is not None:
-        parts.append(f"<p class='placebo'>Placebo cutoffs: {_p_eq('p', c['placebo_p'])} (jumps at "
-                     "nearby non-cutoffs; a small p means jumps like this one are common here).</p>")
+        parts.append(f"<p class='placebo'>Placebo cutoffs: {_p_eq('p', c['placebo_p'])} — the "
+                     "share of placebo cutoffs (nearby points where no rule applies) whose jump is "
+                     "at least as clear as this one. A small p means the real jump is unusual "
+                     "among the placebo jumps; a large p means jumps this clear are common "
+                     "here even without a rule.</p>")
     if isinstance(c.get("power"), dict):
         parts.append(_scalar_table("Power for the planned outcome", c["power"], "power"))
     elif isinstance(c.get("power"), list):
         parts.append(_list_table("Power for the planned outcomes", c["power"], "power"))
     elif isinstance(c.get("power"), (int, float)):
         parts.append(f"<p class='power'>Power for the planned outcome: {c['power']:.2f}</p>")
+    if c.get("in_force") and isinstance(c.get("jump_pooled"), (int, float)):
+        parts.append(f"<p class='period-jump'>Headline jump from the periods the rule was in "
+                     f"force ({esc(c['in_force'])}): {c['jump']:+.3f}; pooled over all periods: "
+                     f"{c['jump_pooled']:+.3f}.</p>")
     for key, title in (("jump_before", "before the rule"), ("jump_after", "after the rule")):
         if isinstance(c.get(key), (int, float)):
             parts.append(f"<p class='period-jump'>Jump {title}: {c[key]:+.3f}</p>")

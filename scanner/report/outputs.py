@@ -336,15 +336,19 @@ def terminal_table(results: dict, top: int = 20, width: int = 200):
                     f"{min(top, results['n_candidates'])} shown",
               header_style="bold", show_lines=False)
     for col, just in (("#", "right"), ("running", "left"), ("treatment", "left"),
-                      ("cutoff", "right"), ("origin", "left"), ("jump [95% CI]", "right"),
+                      ("cutoff", "right"), ("origin", "left"), ("jump", "right"),
+                      ("bias-corr. [95% CI]", "right"),
                       ("F", "right"), ("q", "right"), ("score", "right"), ("verdict", "left"),
                       ("flags", "left")):
         t.add_column(col, justify=just, overflow="fold")
     for c in results["candidates"][:top]:
         ci = ("" if c["ci_low"] is None else f" [{c['ci_low']:+.2f}, {c['ci_high']:+.2f}]")
         f = c["first_stage_f"]
+        # The robust CI's centre, or the name of the interval when it is not the robust one.
+        bc = (_num(c.get("jump_bc"), "+.3f") if c.get("interval") == "robust"
+              else str(c.get("interval") or "—"))
         t.add_row(str(c["rank"]), c["running"], c["treatment"], f"{c['cutoff']:g}",
-                  c.get("rule_id") or c["origin"], _num(c["jump"], "+.3f") + ci,
+                  c.get("rule_id") or c["origin"], _num(c["jump"], "+.3f"), bc + ci,
                   "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}"),
                   format_p(c["q_value"], "—"), _num(c["score"], ".0f"),
                   f"[{STYLE.get(c['verdict'], '')}]{c['verdict']}[/]", " ".join(c["flags"]))
@@ -380,7 +384,8 @@ def _family(results: dict) -> str:
     return f" ({t['candidates']} candidates with a p-value + {t['searches']} search scans)"
 
 
-STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta", "no jump": "dim",
+STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta",
+         "inconclusive": "cyan", "no jump": "dim",
          "not estimable": "dim red"}
 
 

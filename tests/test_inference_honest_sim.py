@@ -1,0 +1,34 @@
+"""Fast versions of benchmarks/honest_verdicts.py (invented designs; full runs: 500 reps each).
+
+Targets from the benchmark: no "usable" verdict for a candidate without a planted jump; the
+reported 95% interval covers the planted jump; the planted sorting among 50 strong candidates
+is flagged.  With a handful of replications the coverage bound is loose (binomial), the other
+two are exact.
+"""
+import importlib.util
+
+import pytest
+
+from .conftest import ROOT
+
+_spec = importlib.util.spec_from_file_location("honest_verdicts",
+                                               ROOT / "benchmarks" / "honest_verdicts.py")
+bench = importlib.util.module_from_spec(_spec)
+_spec.loader.exec_module(bench)
+
+
+@pytest.mark.parametrize("design,reps", [("one_side_constant", 8), ("both_sides_constant", 6),
+                                         ("five_point", 20), ("dated", 8)])
+def test_no_usable_without_a_jump_and_the_planted_jump_covered(design, reps):
+    r = bench.run(design, reps, seed=11)
+    assert r["null_candidates"] > 0 or design == "dated"
+    assert r["usable_without_jump"] == 0, r
+    # binomial: at 95% coverage, fewer than 80% covered in ≤ 20 reps has probability < 0.02
+    assert r["coverage"] >= 0.8, r
+
+
+def test_planted_sorting_at_one_of_50_strong_candidates_is_flagged():
+    r = bench.run("sorting50", 2, seed=12)
+    assert r["planted_candidates"] == 100
+    assert r["sorting_flagged"] == 1.0, r
+    assert r["usable_without_jump"] == 0
