@@ -96,6 +96,9 @@ def test_terminal_table_never_prints_an_underflowed_q_as_zero(demo):
         body = [line for line in lines if line[:3].strip().isdigit()]
         assert body and all(" q 0 " not in line for line in body)
         assert any(" q < 0.0001 " in line for line in body)
+        # A robust interval is centred on the bias-corrected jump: the line names that centre.
+        robust = [line for line in body if "] robust" in line]
+        assert robust and all(", bias-corrected " in line for line in robust)
         return
     head = next(line for line in lines if "┃" in line and " q " in line)
     col = [c.strip() for c in head.split("┃")].index("q")     # wide or compact layout

@@ -365,8 +365,11 @@ def plain_lines(results: dict, top: int = 20) -> str:
     lines = [f"{results['title']}: {n} candidates, {results['n_tested']} tests in the q-value "
              f"family{_family(results)}, best {min(top, n)} shown"]
     for c in results["candidates"][:top]:
+        # The robust interval is centred on the bias-corrected jump: show that centre with it.
+        centre = (f", bias-corrected {_num(c.get('jump_bc'), '+.3f')}"
+                  if c.get("interval") == "robust" else "")
         ci = ("" if c.get("ci_low") is None else
-              f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
+              f"{centre} [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
         f = c.get("first_stage_f")
         fs = "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}")
         flags = " ".join(c.get("flags") or []) or "-"
