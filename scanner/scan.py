@@ -244,6 +244,9 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                 add_binning_error(row, st.pooled(), Candidate(row["running"], row["treatment"],
                                                               row["cutoff"], "discovered"), spec)
     rows = finalize(rows, spec.alpha, list(extra_p) + screen_p)
+    # What the q-value family holds besides candidate rows (report.outputs.test_family).
+    search["family_extra"] = {"searches": int(np.isfinite(np.asarray(extra_p, float)).sum()),
+                              "screened_out": int(np.isfinite(np.asarray(screen_p, float)).sum())}
     if screen is not None:
         search["screen"] = screen
     data_info = _data_info(binned, spec, deduped, getattr(table, "blanked", {}), cleaning)
@@ -513,7 +516,7 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
 
     A discovered row's ``jump``, ``se``, ``ci_low``/``ci_high`` and ``p_value`` all come from
     the held-out half: the p-value and interval allow for the worst-case smoothing bias
-    (``interval`` = "search bias-aware"), and ``confirm_half`` repeats exactly those fields.
+    (``interval`` = "bias-bounded"), and ``confirm_half`` repeats exactly those fields.
     Appends discovered rows to ``rows``; returns the p-values of the search tests that produced
     no row — every step of the sequential search is one test in the q-value family (see
     scanner.score): a step whose break became a row is counted by that row's held-out p-value;
@@ -575,7 +578,7 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
     if np.isfinite(pb):
         cv = float(sps.foldnorm.ppf(0.95, bb.bound / row["se"]))
         row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],
-                   ci_high=row["jump"] + cv * row["se"], interval="search bias-aware")
+                   ci_high=row["jump"] + cv * row["se"], interval="bias-bounded")
     if not split:
         # Same rows for search and estimate: only the search-adjusted p is honest.
         row["p_value"] = max(row["p_value"], pk.search_p)

@@ -396,6 +396,8 @@ def finalize(rows: list[dict], alpha: float, extra_p=()) -> list[dict]:
         r["score"] = composite(r["subscores"])
         clip_intervals(r)
         apply_headline(r, build_headline(r, alpha, SERIOUS))
+        if r.get("confirm_half"):     # the held-out fields as finally shown (clipped, labelled)
+            r["confirm_half"] = {k: r.get(k) for k in r["confirm_half"]}
         r["reasons"] = reasons(r, alpha) + search_reasons(r)
     rows.sort(key=lambda r: (VERDICTS.index(r["verdict"]), -r["score"], r["running"],
                              r["treatment"], r["cutoff"]))

@@ -134,8 +134,9 @@ def _overview(results: dict) -> list[str]:
              f"<tr><th class='l'>cutoffs examined</th><td>{results['n_candidates']:,} "
              f"({results['n_tested']:,} tests in the q-value family: "
              f"{(results.get('tests') or {}).get('candidates', results['n_tested']):,} candidates "
-             f"with a p-value and {(results.get('tests') or {}).get('searches', 0):,} search scans "
-             "that added no candidate)</td></tr>",
+             f"with a p-value, {(results.get('tests') or {}).get('searches', 0):,} search steps "
+             "that added no candidate"
+             f"{_screened((results.get('tests') or {}).get('screened_out', 0))})</td></tr>",
              f"<tr><th class='l'>estimator</th><td class='l'>local polynomial of degree "
              f"{spec.get('degree', 1)}, {esc(str(spec.get('kernel', '')))} kernel, bandwidth "
              f"{esc(str(spec.get('bandwidth', '')))}</td></tr></table>"]
@@ -405,3 +406,7 @@ def write_report(results: dict, path: Path, stats=None, cache: bool = False) -> 
         FIGURE_CACHE.prune()
     finally:
         FIGURE_CACHE.start(None)
+
+
+def _screened(n: int) -> str:
+    return f" and {n:,} screened pairs set aside by stage 1" if n else ""

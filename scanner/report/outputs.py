@@ -146,12 +146,15 @@ def results_dict(result) -> dict:
 
 def test_family(rows: list, search: dict) -> dict:
     """What ``n_tested`` counts (scanner.score): candidates with a finite p-value, plus each
-    discovery scan of a running variable × treatment that added no row of its own."""
+    step of the discovery search that added no row of its own (its search-adjusted p-value),
+    plus each screened pair that stage 1 set aside (its stage-1 p-value)."""
     finite = sum(1 for r in rows if r.get("p_value") is not None
                  and math.isfinite(float(r["p_value"])))
-    found = {(r["running"], r["treatment"]) for r in rows if r.get("origin") == "discovered"}
-    scans = int(search.get("n_scans", 0) or 0)
-    return {"candidates": finite, "searches": max(scans - len(found), 0) if scans else 0}
+    extra = search.get("family_extra") or {}
+    out = {"candidates": finite, "searches": int(extra.get("searches", 0))}
+    if extra.get("screened_out"):
+        out["screened_out"] = int(extra["screened_out"])
+    return out
 
 
 def _pkg_version():
@@ -382,9 +385,11 @@ def plain_lines(results: dict, top: int = 20) -> str:
 
 def _family(results: dict) -> str:
     t = results.get("tests") or {}
-    if not t.get("searches"):
+    if not (t.get("searches") or t.get("screened_out")):
         return ""
-    return f" ({t['candidates']} candidates with a p-value + {t['searches']} search scans)"
+    screened = (f" + {t['screened_out']} screened-out tests" if t.get("screened_out") else "")
+    return (f" ({t['candidates']} candidates with a p-value + {t['searches']} search "
+            f"steps{screened})")
 
 
 STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta",
