@@ -16,23 +16,15 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-import argparse
-import time
 
 import numpy as np
 
 from benchmarks.discover_locate_sim import RUNNING, UPTAKES, close_enough, locate_rep
-from benchmarks.discover_report import run_reps, save
+from benchmarks.discover_report import parse_and_run, save
 
 
 def main():
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--reps", type=int, default=500)
-    ap.add_argument("--workers", type=int, default=1)
-    a = ap.parse_args()
-    t0 = time.time()
-    res = run_reps(locate_rep, a.reps, a.workers)
-    secs = time.time() - t0
+    a, res, secs = parse_and_run(locate_rep, reps=500, workers=1)
     fig, lines = {}, []
     for name in RUNNING:
         for kind in UPTAKES:

@@ -14,25 +14,16 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")   # several small factorisations: threads only contend
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-import argparse
-import time
 from collections import Counter
 
 import numpy as np
 
 from benchmarks.discover_sim import SHAPES, null_rep
-from benchmarks.discover_report import run_reps, save
+from benchmarks.discover_report import parse_and_run, save
 
 
 def main():
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--reps", type=int, default=200)
-    ap.add_argument("--workers", type=int, default=2)
-    ap.add_argument("--n", type=int, default=100_000)
-    a = ap.parse_args()
-    t0 = time.time()
-    res = run_reps(null_rep, a.reps, a.workers)
-    secs = time.time() - t0
+    a, res, secs = parse_and_run(null_rep, reps=200, workers=2, n=100_000)
     any_conf = np.mean([r["confirmed"] > 0 for r in res])
     hits = Counter(h for r in res for h in r["hit_pairs"])
     conf = Counter(h for r in res for h in r["confirmed_pairs"])

@@ -14,23 +14,15 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-import argparse
-import time
 
 import numpy as np
 
 from benchmarks.discover_sim import PLANTED, planted_rep
-from benchmarks.discover_report import run_reps, save
+from benchmarks.discover_report import parse_and_run, save
 
 
 def main():
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--reps", type=int, default=200)
-    ap.add_argument("--workers", type=int, default=1)
-    a = ap.parse_args()
-    t0 = time.time()
-    res = run_reps(planted_rep, a.reps, a.workers)
-    secs = time.time() - t0
+    a, res, secs = parse_and_run(planted_rep, reps=200, workers=1)
     fig, lines = {}, []
     for name, c in PLANTED.items():
         f = [r[name] for r in res]

@@ -27,6 +27,25 @@ def save(name: str, figures: dict, markdown: str) -> Path:
     return write_markdown()
 
 
+def parse_and_run(rep, reps: int, workers: int, n: int | None = None):
+    """The command line shared by the discovery benchmarks: ``--reps``, ``--workers`` and, when
+    the replication takes a sample size, ``--n``; runs the replications and returns
+    ``(args, results, seconds)``."""
+    import argparse
+    import functools
+    import time
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--reps", type=int, default=reps)
+    ap.add_argument("--workers", type=int, default=workers)
+    if n is not None:
+        ap.add_argument("--n", type=int, default=n)
+    a = ap.parse_args()
+    fn = functools.partial(rep, n=a.n) if n is not None else rep
+    t0 = time.time()
+    res = run_reps(fn, a.reps, a.workers)
+    return a, res, time.time() - t0
+
+
 def run_reps(rep, reps: int, workers: int) -> list:
     """Run ``rep(i)`` for i < reps on ``workers`` processes, printing one JSON line per replication."""
     import json
