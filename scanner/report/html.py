@@ -22,7 +22,7 @@ CARD_VERDICTS = ("usable", "caution", "doubtful")
 MAX_CARDS = 10    # cards for the best 10 candidates with a jump; the ranked table lists more
 
 CSS = """
-body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1120px;margin:1.5em auto;
+body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1240px;margin:1.5em auto;
 color:#222;padding:0 1em}
 h1{font-size:1.6em;margin:.2em 0}h2{font-size:1.2em;border-bottom:2px solid #1d4e89;padding-bottom:.15em;
 margin-top:1.6em}h3{font-size:1.05em;margin:.1em 0 .5em}h4{font-size:.92em;margin:.8em 0 .2em;color:#444}
@@ -35,6 +35,7 @@ figcaption{font-size:12px;color:#444}.tag{display:inline-block;padding:0 .45em;b
 font-size:12px;margin-right:.3em}.v-usable{font-weight:700}.v-doubtful{font-style:italic}
 .bar{display:flex;height:16px;border:1px solid #555;max-width:420px}.bar span{display:block}
 .muted{color:#555;font-size:12.5px}.ci{color:#555;font-size:11px}
+.wide{overflow-x:auto;max-width:100%}.wrap{display:inline-block;white-space:normal;max-width:11em}
 """
 
 
@@ -158,9 +159,12 @@ def _overview(results: dict) -> list[str]:
     return parts
 
 
+# The verdict and its flags sit next to the candidate they judge, so they stay in view when a narrow window
+# scrolls the table sideways.
 RANK_HEADS = (("#", ""), ("running", "l"), ("treatment", "l"), ("cutoff", ""), ("origin", "l"),
-              ("jump (conventional)", ""), ("bias-corrected [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
-              ("density p", ""), ("balance p", ""), ("score", ""), ("verdict", "l"), ("flags", "l"))
+              ("verdict", "l"), ("flags", "l"), ("jump (conventional)", ""),
+              ("bias-corrected [95% CI]", ""), ("F", ""), ("q", ""), ("rows left", ""), ("rows right", ""),
+              ("density p", ""), ("balance p", ""), ("score", ""))
 
 
 def _ranking(results: dict, limit: int) -> list[str]:
@@ -173,7 +177,7 @@ def _ranking(results: dict, limit: int) -> list[str]:
              "The robust 95% interval is centred on the bias-corrected jump, shown beside the "
              "conventional estimate; 'inconclusive' marks an interval that holds both zero and "
              f"a jump of ±{PRACTICAL_JUMP:g} or more. "
-             "The full list is in candidates.csv.</p><table><tr>"]
+             "The full list is in candidates.csv.</p><div class='wide'><table><tr>"]
     parts += [f"<th class='{c}'>{h}</th>" for h, c in RANK_HEADS]
     parts.append("</tr>")
     for c in results["candidates"][:limit]:
@@ -189,16 +193,16 @@ def _ranking(results: dict, limit: int) -> list[str]:
             f"<tr><td>{c['rank']}</td><td class='l'>{esc(c['running'])}</td>"
             f"<td class='l'>{esc(c['treatment'])}</td><td>{c['cutoff']:g}</td>"
             f"<td class='l'>{esc(c.get('rule_id') or c['origin'])}</td>"
+            f"<td class='l v-{c['verdict'].replace(' ', '-')}'>{esc(c['verdict'])}</td>"
+            f"<td class='l'>{esc(', '.join(c.get('flags') or []))}</td>"
             f"<td>{_fmt(c['jump'], '+.3f')}{'' if robust else ci}</td>"
             f"<td>{bc}{ci if robust else ''}</td>"
             f"<td>{'—' if f is None else ('>9999' if f > 9999 else f'{f:.0f}')}</td>"
-            f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}</td>"
-            f"<td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}"
-            f"<br><span class='ci'>{esc(density_label(c.get('density_method')))}</span></td>"
-            f"<td>{_p(c.get('balance_p'))}</td><td>{_fmt(c.get('score'), '.0f')}</td>"
-            f"<td class='l v-{c['verdict'].replace(' ', '-')}'>{esc(c['verdict'])}</td>"
-            f"<td class='l'>{esc(', '.join(c.get('flags') or []))}</td></tr>")
-    parts.append("</table></section>")
+            f"<td>{_p(c.get('q_value'))}</td><td class='n'>{_fmt(c['n_left'], ',', 'suppressed')}"
+            f"</td><td class='n'>{_fmt(c['n_right'], ',', 'suppressed')}</td><td>{_p(c.get('density_p'))}"
+            f"<br><span class='ci wrap'>{esc(density_label(c.get('density_method')))}</span></td>"
+            f"<td>{_p(c.get('balance_p'))}</td><td>{_fmt(c.get('score'), '.0f')}</td></tr>")
+    parts.append("</table></div></section>")
     return parts
 
 
