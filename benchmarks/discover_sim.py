@@ -103,8 +103,14 @@ def search(stats: dict, treatments, seed=1, alpha=0.05, screen=True):
     return rows, extra, summary
 
 
-def confirmed(rows):
-    return [r for r in rows if r["origin"] == "discovered" and r["verdict"] not in ("no jump", "not estimable")]
+NOT_CONFIRMED = ("no jump", "inconclusive", "not estimable")
+
+
+def confirmed(rows, alpha=0.05):
+    """Discovered rows that survive the held-out test: q below alpha and a verdict that claims a
+    jump ("inconclusive" says the held-out half cannot tell, which is not a discovery)."""
+    return [r for r in rows if r["origin"] == "discovered" and r["verdict"] not in NOT_CONFIRMED
+            and r["q_value"] < alpha]
 
 
 def null_rep(rep: int, n: int = 100_000, shapes=None, alpha=0.05):
@@ -119,8 +125,8 @@ def null_rep(rep: int, n: int = 100_000, shapes=None, alpha=0.05):
     searched = sum(1 for p in summary["pairs"] if p["search_p"] is not None and p["search_p"] < alpha)
     hits = [f"{p['running']}×{p['treatment']}" for p in summary["pairs"]
             if p["search_p"] is not None and p["search_p"] < alpha]
-    return {"confirmed": len(confirmed(rows)), "search_hits": searched, "hit_pairs": hits,
-            "confirmed_pairs": [f"{r['running']}×{r['treatment']}" for r in confirmed(rows)],
+    return {"confirmed": len(confirmed(rows, alpha)), "search_hits": searched, "hit_pairs": hits,
+            "confirmed_pairs": [f"{r['running']}×{r['treatment']}" for r in confirmed(rows, alpha)],
             "pairs": len(summary["pairs"]), "n_tested": rows[0]["n_tested"] if rows else len(extra),
             "grid_points": summary["n_grid_points"]}
 
@@ -143,11 +149,11 @@ def planted_rep(rep: int, n: int = 50_000, jump: float = 0.15, alpha=0.05):
     rows, extra, summary = search(stats, ["t_jump", "t_none"], seed=rep, alpha=alpha)
     out = {}
     for name, c in PLANTED.items():
-        found = [r for r in confirmed(rows) if r["running"] == name and r["treatment"] == "t_jump"]
+        found = [r for r in confirmed(rows, alpha) if r["running"] == name and r["treatment"] == "t_jump"]
         h = next(p["bandwidth"] for p in summary["pairs"] if p["running"] == name and p["treatment"] == "t_jump")
         best = min(found, key=lambda r: abs(r["location"] - c)) if found else None
         out[name] = {"found": best is not None, "h": h,
                      "error": abs(best["location"] - c) if best else None,
                      "covered": bool(best and best["location_ci_low"] <= c <= best["location_ci_high"]),
-                     "false": len([r for r in confirmed(rows) if r["running"] == name and r["treatment"] == "t_none"])}
+                     "false": len([r for r in confirmed(rows, alpha) if r["running"] == name and r["treatment"] == "t_none"])}
     return out
