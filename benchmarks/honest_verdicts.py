@@ -286,6 +286,10 @@ def main(argv=None):
         aw = ("not measured" if "coverage_bias_aware" not in r else
               "—" if r["coverage_bias_aware"] is None else f"{r['coverage_bias_aware']:.3f}")
         kinds = ", ".join(f"{k} {v}" for k, v in (r.get("reported_interval") or {}).items()) or "—"
+        if r.get("bias_aware_candidates", r["planted_candidates"]) != r["planted_candidates"]:
+            # Combined runs where older parts did not record it: say what the figure rests on.
+            aw += f" ({r['bias_aware_candidates']} of {r['planted_candidates']} planted)"
+            kinds += f" (of {sum((r.get('reported_interval') or {}).values())} recorded)"
         srt, far = (f"{r[k]:.3f}" if r.get(k) is not None else "—"
                     for k in ("sorting_flagged", "sorting_flag_rate_far_from_it"))
         lines.append(f"| {r['design']} | {r['reps']} | {r['null_candidates']} | "
