@@ -100,12 +100,31 @@ def draw_fivepoint(rng, n: int = 4000):
 
 DRAW = {"discrete": draw_discrete, "lognormal": draw_lognormal, "halfint": draw_halfint,
         "fivepoint": draw_fivepoint, "lognormal-binned": draw_lognormal}
-COARSE = ("discrete", "halfint", "fivepoint", "lognormal-binned")   # the scan's coarse path
+# Lattice designs: the bandwidth is widened to MIN_DISTINCT support values per side, as the scan
+# does, and the bias-aware column is taken at its shortest bandwidth (``honest_best``).
+COARSE = ("discrete", "halfint", "fivepoint", "lognormal-binned")
 WIDTH = {"lognormal-binned": 0.05}
+# The true max |μ''| of the lattice designs (from their formulas above): the bias-aware interval
+# is also computed at this M, to separate over-coverage that comes from the estimated M from
+# over-coverage that comes from μ not being the worst case of the class (the worst case bends
+# the two sides in opposite directions at full curvature; exactly attained only by `discrete`).
+TRUE_M = {"discrete": 6.0, "halfint": 0.002, "fivepoint": 0.1}
+
+
+def distinct_inside(d, h) -> int:
+    """Fewest distinct support values with positive triangular weight on a side (|u| < h)."""
+    hl, hr = h
+    left = np.unique(d.u[~d.right & (-d.u < hl)]).size
+    right = np.unique(d.u[d.right & (d.u < hr)]).size
+    return int(min(left, right))
 
 
 def one_sharp(x, y, selector="mse", widen=False, width=None):
-    """(conventional covers?, robust covers?, honest covers?) pieces for one sample."""
+    """(robust fit, honest fit, bandwidth choice, scan-coarse?) for one sample.
+
+    The last item applies the scan's rule (``scan.evaluate``): a candidate is coarse, and reports
+    the bias-aware interval, when a side has fewer than MIN_DISTINCT distinct values inside h.
+    """
     st = to_bins(x, {"y": y})
     if width:
         st = st.to_width(width)
@@ -123,37 +142,46 @@ def one_sharp(x, y, selector="mse", widen=False, width=None):
     fit = robust_jump(d, h, b)
     M = curvature_bound(d, window=b)   # as the scan: local quadratic fits at the bias pilot
     hon = honest_best(d, M)[0] if widen else honest_interval(d, h, M)
-    return fit, hon, ch
+    return fit, hon, ch, distinct_inside(d, h) < MIN_DISTINCT
 
 
 def coverage_sharp(design: str, reps: int, seed: int = 1, selector="mse") -> dict:
     """Coverage of conventional, robust and honest 95% intervals over ``reps`` samples."""
     rng = np.random.default_rng(seed)
-    hits = {"conventional": 0, "robust": 0, "honest": 0, "reported": 0}
-    ok = 0
-    hs, lengths = [], {"conventional": [], "robust": [], "honest": [], "reported": []}
+    hits = {"conventional": 0, "robust": 0, "honest": 0, "reported": 0, "honest_true_M": 0}
+    ok = n_coarse = 0
+    hs, lengths = [], {"conventional": [], "robust": [], "honest": [], "reported": [],
+                       "honest_true_M": []}
     coarse = design in COARSE
     for _ in range(reps):
         if design in DRAW:
             x, y, tau = DRAW[design](rng)
         else:
             x, y, tau = draw_cct(design, rng)
-        fit, hon, ch = one_sharp(x, y, selector, widen=coarse, width=WIDTH.get(design))
-        # As the scan: a coarse candidate reports the bias-aware interval, others the robust one.
-        rep = (hon.ci_low, hon.ci_high) if coarse else (fit.ci_low, fit.ci_high)
+        fit, hon, ch, scan_coarse = one_sharp(x, y, selector, widen=coarse,
+                                              width=WIDTH.get(design))
+        # As the scan: a candidate with fewer than MIN_DISTINCT support values on a side inside
+        # h reports the bias-aware interval, others the robust one (a lattice with enough values
+        # per side, e.g. the half-integer one, reports the robust interval).
+        n_coarse += scan_coarse
+        rep = (hon.ci_low, hon.ci_high) if scan_coarse else (fit.ci_low, fit.ci_high)
         if not np.isfinite(rep[0]):
             continue
         ok += 1
         hs.append(fit.h_left)
+        true_m = (float("nan"),) * 2
+        if design in TRUE_M:
+            t = honest_best(side_data(to_bins(x, {"y": y}), "y", 0.0), TRUE_M[design])[0]
+            true_m = (t.ci_low, t.ci_high)
         for k, lo, hi in (("conventional", fit.ci_low_conventional, fit.ci_high_conventional),
                           ("robust", fit.ci_low, fit.ci_high), ("honest", hon.ci_low, hon.ci_high),
-                          ("reported", *rep)):
+                          ("reported", *rep), ("honest_true_M", *true_m)):
             if np.isfinite(lo) and np.isfinite(hi):
                 hits[k] += bool(lo <= tau <= hi)
                 lengths[k].append(hi - lo)
     # Coverage over the replications where that interval exists (NaN when it never does).
     out = {k: v / len(lengths[k]) if lengths[k] else float("nan") for k, v in hits.items()}
-    out.update(reps=ok, h_median=float(np.median(hs)),
+    out.update(reps=ok, h_median=float(np.median(hs)), share_coarse=n_coarse / reps,
                **{f"length_{k}": float(np.median(v)) if v else float("nan")
                   for k, v in lengths.items()})
     return out

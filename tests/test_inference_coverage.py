@@ -43,3 +43,17 @@ def test_fuzzy_robust_coverage():
     # Robust bias-corrected fuzzy intervals (CCT 2014, fuzzy case): tolerant bounds for 300 reps.
     out = coverage_fuzzy(300, seed=3)
     assert 0.90 <= out["robust"] <= 0.985, out
+
+
+def test_reported_interval_on_lattices_is_the_scans():
+    # The reported interval follows the scan's coarse rule: the half-integer lattice holds five
+    # values per side inside h, so the robust interval is reported (CCT 2014) and covers near
+    # 0.95; the five-point score has two values left of the cutoff, so the bias-aware interval
+    # is reported (Kolesár & Rothe 2018).  Binomial bounds for 120 reps.
+    half = coverage_sharp("halfint", 120, seed=7)
+    assert half["share_coarse"] == 0.0
+    assert half["reported"] == half["robust"]
+    assert 0.87 <= half["reported"] <= 0.99, half
+    five = coverage_sharp("fivepoint", 60, seed=7)
+    assert five["share_coarse"] == 1.0
+    assert five["reported"] == five["honest"] >= 0.9, five
