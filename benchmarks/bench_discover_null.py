@@ -5,7 +5,7 @@ wave), n = 100,000 rows, no jump anywhere; discovery on half 0, confirmation on 
 over the 60 scans.  Done-when (issue 5): share of replications with any confirmed discovery at
 alpha = 0.05 is at most 0.05 over at least 200 replications.
 
-Run: ``nice -n 10 env PYTHONPATH=. python benchmarks/bench_discover_null.py [--reps 200 --workers 2]``
+Run: ``nice -n 19 env PYTHONPATH=. python benchmarks/bench_discover_null.py [--reps 500 --workers 2]``
 """
 from __future__ import annotations
 
@@ -44,7 +44,7 @@ def main():
     se = np.sqrt(any_conf * (1 - any_conf) / a.reps)
     md = f"""## Null registry (no jump anywhere)
 
-`nice -n 10 env PYTHONPATH=. python benchmarks/bench_discover_null.py --reps {a.reps} --workers {a.workers}` ({secs / 60:.1f} min)
+`nice -n 19 env PYTHONPATH=. python benchmarks/bench_discover_null.py --reps {a.reps} --workers {a.workers}` ({secs / 60:.1f} min)
 
 {len(SHAPES)} running variables × 3 smooth uptakes, n = {a.n:,}, {a.reps} replications, alpha = 0.05;
 {res[0]['grid_points']:,} grid cutoffs examined per replication, {res[0]['n_tested']} tests in the q-value family.
