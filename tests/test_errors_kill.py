@@ -117,3 +117,30 @@ def test_sigterm_while_binning_writes_nothing(tmp_path):
         "candidates.csv", "report.html", "results.json"]
     assert leftovers(tmp_path, "fresh") == []
     assert "Traceback" not in err
+
+
+def test_interrupts_are_held_even_when_another_thread_receives_them():
+    # A process-wide signal may be delivered to any thread that does not block it (POSIX,
+    # signal(7)); masking the main thread alone let it in.  Inside held_interrupts a SIGTERM
+    # sent to a worker thread must not interrupt the block, and must surface right after it.
+    import threading
+    from scanner.report.outputs import held_interrupts
+    from scanner.cli import _on_term
+    previous = signal.signal(signal.SIGTERM, _on_term)
+    stop = threading.Event()
+    worker = threading.Thread(target=stop.wait)
+    worker.start()
+    reached_end = False
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            with held_interrupts():
+                signal.pthread_kill(worker.ident, signal.SIGTERM)
+                time.sleep(0.2)
+                for _ in range(10_000):   # bytecodes at which Python would run a handler
+                    pass
+                reached_end = True
+    finally:
+        stop.set()
+        worker.join()
+        signal.signal(signal.SIGTERM, previous)
+    assert reached_end

@@ -6,13 +6,16 @@ cell size suppression policy, which forbids showing counts from 1 to 10).
 """
 from __future__ import annotations
 
+import contextlib
 import csv
 import json
 import math
+import secrets
 import os
 import shutil
 import signal
 import tempfile
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +24,33 @@ from ..errors import OutputError
 from .exports import format_p
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
-HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}   # held back while folders are created or moved
+HELD_SIGNALS = (signal.SIGINT, signal.SIGTERM)   # held back while folders are created or moved
+
+
+@contextlib.contextmanager
+def held_interrupts():
+    """Hold SIGINT and SIGTERM back for the block; one that arrived is raised after it.
+
+    Masking the signals (``pthread_sigmask``) is not enough: it masks only the calling thread,
+    and the kernel hands a process-wide signal to any thread that does not block it (pyarrow,
+    numba and BLAS keep worker threads), after which Python runs the handler in the main thread
+    at the next bytecode, possibly inside the block.  So the block runs under handlers that
+    only record the signal.  Outside the main thread handlers cannot be set; the block then
+    runs as it is.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught = []
+    previous = {s: signal.signal(s, lambda signum, frame: caught.append(signum))
+                for s in HELD_SIGNALS}
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
+    if caught:
+        raise KeyboardInterrupt
 
 RESULTS_VERSION = "1.0"
 COUNT_FIELDS = ("n_left", "n_right")
@@ -257,8 +286,7 @@ def _swap_in(tmp: Path, out: Path) -> None:
     SIGINT and SIGTERM are held back while the folders move, so an interrupt lands before or
     after the swap, never between the two renames of the fallback path.
     """
-    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, HELD_SIGNALS)
-    try:
+    with held_interrupts():
         if not out.exists():
             os.replace(tmp, out)
         elif _exchange(tmp, out):
@@ -269,8 +297,6 @@ def _swap_in(tmp: Path, out: Path) -> None:
             os.replace(out, old)
             os.replace(tmp, out)
             shutil.rmtree(old)
-    finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
 
 
 def write_outputs(result, out: Path, force: bool = False, protect=()) -> Path:
@@ -284,18 +310,16 @@ def write_outputs(result, out: Path, force: bool = False, protect=()) -> Path:
     out = Path(out)
     recover(out)
     check_out(out, force, protect)
-    # An interrupt between creating the temporary folder and entering the clean-up block below
-    # would leave the folder behind, so SIGINT/SIGTERM are held until the block is entered.
-    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, HELD_SIGNALS)
+    # The temporary folder's name is fixed before it is made, so the clean-up below removes it
+    # whenever an interrupt lands, even between its creation and the next line.
+    tmp = out.parent / f".{out.name}{TMP_MARK}{os.getpid()}-{secrets.token_hex(4)}"
     try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}{TMP_MARK}", dir=out.parent))
-    except OSError as exc:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
-        raise OutputError(f"{out}: cannot create the output folder: {exc.strerror or exc}; choose "
-                          "a folder you can write to.") from None
-    try:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)   # a held interrupt lands here
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+            tmp.mkdir(mode=0o700)
+        except OSError as exc:
+            raise OutputError(f"{out}: cannot create the output folder: {exc.strerror or exc}; "
+                              "choose a folder you can write to.") from None
         results = result.to_dict()
         write_json(results, tmp / "results.json")
         write_csv(results, tmp / "candidates.csv")
@@ -304,6 +328,9 @@ def write_outputs(result, out: Path, force: bool = False, protect=()) -> Path:
             _fsync(f)
         _swap_in(tmp, out)
         _fsync(out.parent)
+    except OutputError:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         raise OutputError(f"{out}: cannot write the outputs: {exc.strerror or exc}; check free "
