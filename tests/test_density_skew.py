@@ -64,3 +64,22 @@ def test_window_test_is_not_used_on_a_sloping_density():
     x = np.repeat(np.arange(-8, 8, dtype=float), (2000 * 0.9 ** np.arange(16)).astype(int))
     t = window_count_test(bins(x), 0.0)
     assert np.isnan(t.p_value) and "not flat" in t.reason
+
+
+def test_window_test_still_sees_sorting_on_a_flat_density_with_two_bins_left():
+    # Flat density on [0, 40) in unit bins, cutoff 2 (two bins on the left, so the local
+    # polynomial and McCrary tests cannot run); the window test is the design rule's choice.
+    # No sorting: it must not reject at 1%.  Extra mass of 60% in the bin [2, 3) next to the
+    # cutoff: it must reject.  (Sorting spread over [2, 5) makes the bins beyond the first look
+    # sloped, and the window test then drops out: a known blind spot, no false "no sorting".)
+    # Reference for the p-value under no sorting: the exact binomial (scipy) on the window counts.
+    rng = np.random.default_rng(8)
+    x = rng.uniform(0, 40, 40_000)
+    name, t, tests = density_suite(bins(x, 1.0), 2.0)
+    assert name == "binomial_window" and t.p_value > 0.01
+    nl, nr = int(((x >= 0) & (x < 2)).sum()), int(((x >= 2) & (x < 4)).sum())
+    ref = min(1.0, 2 * min(sps.binom.cdf(nr, nl + nr, 0.5), sps.binom.sf(nr - 1, nl + nr, 0.5)))
+    assert np.isclose(t.p_value, ref, rtol=1e-9)
+    extra = rng.uniform(2, 3, 600)
+    name, t, _ = density_suite(bins(np.concatenate([x, extra]), 1.0), 2.0)
+    assert name == "binomial_window" and t.p_value < 0.001

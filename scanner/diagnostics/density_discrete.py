@@ -40,6 +40,9 @@ left out, so sorting into it cannot pose as a sloping density.  If a side reject
 the 5% level, or if one side rejects and the other has too few bins to be checked, the window
 test gives NaN ("density not flat next to the cutoff"); the other tests then decide, or none.
 A 5% pre-test errs on the side of not using a count test whose null is in doubt.
+Blind spot: sorting spread over a band wider than one bin makes the bins beyond the first look
+sloped, so where the other tests cannot run either (fewer than four bins on a side), such
+sorting leaves the candidate with no density p — reported as untested, not as "no sorting".
 """
 from __future__ import annotations
 
