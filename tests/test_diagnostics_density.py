@@ -139,10 +139,10 @@ def test_density_bandwidth_search_on_the_window_equals_the_full_sums():
     # influence values in closed form; reference: the same criterion summed over every bin
     # (docs/methods.md, "Density tests"), written out here directly, at every grid point.
     from scanner.diagnostics import density_lp as D
+    from scanner.estimate.mse import robust_scale
 
     def full_sums(u, n, F, N, left, right, hs):
-        sd = np.sqrt((n * u ** 2).sum() / N - ((n * u).sum() / N) ** 2)
-        f2, f3 = D._pilot_pooled(u, n, F, sd)
+        f2, f3 = D._pilot_pooled(u, n, F, robust_scale(u, n))
         out = []
         for h in hs:
             (fl, ell_l, _), (fr, ell_r, _) = (D._side_fit(u, n, F, s, h, 2, "triangular")

@@ -24,18 +24,24 @@ Variance: the influence-function plug-in of docs/methods.md ("Density tests"),
 ψ_j⁺ − ψ_j⁻.  It is a sum over bins of j (rows of a bin share ψ_j).
 
 Bandwidth and inference (our choices, written down here): one common bandwidth h for both sides,
-found on a geometric grid (at most one standard deviation of the running variable, and at most
-four times the normal-reference scale 1.06·sd·N^(-1/5)) by minimising
+found on a geometric grid (at most one scale unit s of the running variable, and at most
+four times the normal-reference scale 1.06·s·N^(-1/5)) by minimising
 the null-hypothesis MSE of f̂⁺ − f̂⁻.  With a common bandwidth the leading h² bias of f̂⁺ and f̂⁻
 is the same multiple of f''(c) (the two one-sided problems are mirror images), so under the null
 of a smooth density it nearly cancels in the difference; the bias used is the sample version —
 the difference's slope weights applied to the cubic and quartic terms of F, f''(c)u³/6 +
 f'''(c)u⁴/24, as in CCT 2014's bias correction — with f'', f''' from one quintic fit of F̂ across
-the cutoff within one standard deviation (a quartic density; a sextic fit made the f''' pilot four
+the cutoff within one scale unit s (a quartic density; a sextic fit made the f''' pilot four
 times noisier, which pulled the chosen h down and cost power — measured in
 benchmarks/results/density.md).  Because the leading bias cancels, the test uses the
 conventional statistic with p = 2 and no explicit bias correction [DERIVED; checked by the size
 simulation in benchmarks/density_size_power.py].
+
+The scale s is Silverman's skew-resistant min(sd, IQR/1.349) (Silverman 1986, eq. 3.30;
+:func:`scanner.estimate.mse.robust_scale`, the scale of the estimator's pilot bandwidth).  With
+the plain sd, a lognormal(0, 2) score (sd in the hundreds, IQR/1.349 about 2.7) let the cap
+reach 0.97 at a cutoff of 1, where the density falls by half over that distance; the unmodelled
+curvature then rejected a smooth density at p ≈ 1e-174.  For a normal score the two scales agree.
 """
 from __future__ import annotations
 
@@ -44,6 +50,7 @@ import numpy as np
 from ..bins import BinnedStats
 from ..estimate.kernels import kernel as kernel_fn
 from ..estimate.local import two_sided_p
+from ..estimate.mse import robust_scale
 from .density import DensityTest
 
 MIN_SIDE_POINTS = 4      # a local quadratic CDF fit needs more than p + 1 support points
@@ -126,8 +133,7 @@ def _mse_curve(u, n, F, N, left, right, p, kern):
     A grid of one point (the smallest usable h, without an MSE) when the cap leaves no range.
     """
     nan = np.array([np.nan])
-    mean = (n * u).sum() / N
-    sd = float(np.sqrt(max((n * (u - mean) ** 2).sum() / N, 0.0)))
+    s = robust_scale(u, n)          # skew-resistant scale (module docstring)
     hs = []
     for side in (left, right):
         d = np.sort(np.abs(u[side]))
@@ -136,13 +142,13 @@ def _mse_curve(u, n, F, N, left, right, p, kern):
         hs.append((d[min(d.size - 1, MIN_SIDE_POINTS + 1)] * 1.01, d[-1]))
     # The bias model keeps only the f'' and f''' terms, whose leading part cancels in the
     # difference; at large N even small unmodelled bias then dominates a wide window.  So the
-    # grid stops at four times the normal-reference scale 1.06*sd*N^(-1/5) (Silverman 1986; common
+    # grid stops at four times the normal-reference scale 1.06*s*N^(-1/5) (Silverman 1986; common
     # practice for the scale of a density bandwidth).
-    cap = CAP_MULTIPLE * 1.06 * sd * N ** (-0.2)
-    lo, hi = max(a for a, _ in hs), min(min(b for _, b in hs), sd, cap)
+    cap = CAP_MULTIPLE * 1.06 * s * N ** (-0.2)
+    lo, hi = max(a for a, _ in hs), min(min(b for _, b in hs), s, cap)
     if not hi > lo:
         return np.array([lo]), nan
-    f2, f3 = _pilot_pooled(u, n, F, sd)
+    f2, f3 = _pilot_pooled(u, n, F, s)
     # Only bins within the widest h enter the fits; the others carry ψ_j = S − f̂ (left of the
     # window, S = Σ nℓ, zero up to rounding) or −f̂ (right of it), added in closed form, so the
     # search costs O(bins in the window) and gives the same MSE as the full sums.

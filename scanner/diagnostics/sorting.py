@@ -14,6 +14,9 @@ Rule for ``density_p`` (the test the design calls for):
    with few support points): Frandsen.
 2. Otherwise the local polynomial test; if it cannot be computed, Frandsen on exact support, then
    McCrary, then the binomial window.
+3. The binomial window gives NaN where the density is visibly not flat next to the cutoff
+   (density_discrete.py): a sloping density is not evidence of sorting, so a candidate can end
+   with no density p at all rather than a confident false one.
 
 Heaps: when the running variable has heaps (see heaping.py), every test is also run on the
 counts with each heap's excess mass removed (``heaping.deheaped``; keys ending in

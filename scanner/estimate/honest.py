@@ -69,6 +69,13 @@ def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: st
     quadratic exactly and leave no residual for its standard error).  A side with fewer than
     three support points shows no curvature and is skipped (NaN when neither side has three).
 
+    The window stays the bias pilot b.  Widening it to at least :func:`local_window` (a second
+    derivative prefers a wider window than a level) was tried: on a lognormal(0, 2) score with
+    0.05-wide bins M fell from a median of 2.1 to about 0.8 (true |μ''| 0.23) but coverage stayed
+    0.98–0.99 (100 replications), and with 50 rules 20 units apart the window, set by the global
+    scale, spanned the neighbouring jumps and the bias-aware coverage fell to 0.951 (25
+    replications).  The over-coverage on few bins is kept as the price of a bound that holds.
+
     Notes
     -----
     Armstrong & Kolesár (2020, Quantitative Economics 11(1)) and Kolesár & Rothe (2018, AER

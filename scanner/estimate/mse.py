@@ -85,10 +85,18 @@ def spread(d: SideData) -> float:
     or bounded designs it equals S_X (CCT Model 1's 2·Beta(2, 4) − 1: IQR/1.349 = 0.39 > S_X =
     0.36); for a lognormal(0, 2) score S_X is hundreds of units and IQR/1.349 about 2.7.
     """
-    N = d.n.sum()
-    mean = (d.n * d.u).sum() / N
-    sx = float(np.sqrt((d.n * (d.u - mean) ** 2).sum() / max(N - 1, 1)))
-    q1, q3 = weighted_quantile(d.u, d.n, np.array([0.25, 0.75]))
+    return robust_scale(d.u, d.n)
+
+
+def robust_scale(u: np.ndarray, n: np.ndarray) -> float:
+    """``min(S_X, IQR/1.349)`` of values ``u`` with counts ``n`` (Silverman 1986, eq. 3.30).
+
+    The scale behind :func:`spread`; also used to cap the density test's bandwidth.
+    """
+    N = n.sum()
+    mean = (n * u).sum() / N
+    sx = float(np.sqrt((n * (u - mean) ** 2).sum() / max(N - 1, 1)))
+    q1, q3 = weighted_quantile(u, n, np.array([0.25, 0.75]))
     return min(sx, float(q3 - q1) / 1.349) if q3 > q1 else sx
 
 
