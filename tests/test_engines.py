@@ -317,3 +317,23 @@ def test_text_columns_keep_file_order(tmp_path):
     b = bin_table(open_table(csv, text_columns=("y",)), BinPlan(**{**plan.__dict__, "kernel": "bincount"}))
     for r in IRR["running"]:
         assert_same_stats(a.stats[r], b.stats[r])
+
+
+def test_parquet_folder_with_mixed_column_types(tmp_path):
+    # A folder whose files store a column with different types (int16 in one, float64 in the
+    # other, as appended extracts do) reads as the folder's types; reference: the same rows
+    # from one pandas frame.
+    df = irregular_table(900, seed=12).drop(columns="visit")
+    df["five"] = df["five"].astype("int16")
+    folder = tmp_path / "mixed"
+    folder.mkdir()
+    pq.write_table(pa.Table.from_pandas(df.iloc[:400], preserve_index=False), folder / "a.parquet",
+                   row_group_size=150)
+    pq.write_table(pa.Table.from_pandas(df.iloc[400:].astype({"five": float}), preserve_index=False),
+                   folder / "b.parquet", row_group_size=150)
+    plan = BinPlan(**IRR, batch_rows=200)
+    got = bin_table(open_table(folder), plan)
+    ref = bin_table(open_table(df), plan)
+    assert got.rows_read == 900
+    for r in IRR["running"]:
+        assert_same_stats(got.stats[r], ref.stats[r])
