@@ -357,6 +357,28 @@ def evaluate_and_search(cands, pooled: dict, stats: dict, spec: ScanSpec, progre
     """:func:`evaluate_all`, and with ``search`` the discovery searches of every running
     variable × treatment (:func:`pair_searches`) run in the same processes, each beside the
     candidates of its running variable.  Returns (rows, searches or None)."""
+    with one_blas_thread():
+        return _evaluate_and_search(cands, pooled, stats, spec, progress, workers, search)
+
+
+def one_blas_thread():
+    """A context in which the linear algebra library uses one thread.
+
+    The candidate loop already runs in one process per core; the BLAS library's own threads on
+    top of that (two per process on two cores) spin-wait for each other, which measured 5× the
+    wall time and 10× the CPU time of one thread for the discovery search's Cholesky factors on
+    this shared machine.  One thread also makes the factors, and so the simulated critical
+    values, independent of the number of cores (they differ in the last bits otherwise).
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:                     # a declared dependency; without it, as before
+        import contextlib
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def _evaluate_and_search(cands, pooled, stats, spec, progress, workers, search):
     import multiprocessing as mp
     workers = workers_default() if workers is None else workers
     runs = [r.column for r in spec.running] if search else []

@@ -64,7 +64,9 @@ def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
     todo = {r.column for r in spec.running
             if any((r.column, t) not in searches for t in (r.treatments or spec.treatments))}
     if todo:
-        searches.update(pair_searches(stats, spec, todo, screen))
+        from .scan import one_blas_thread
+        with one_blas_thread():
+            searches.update(pair_searches(stats, spec, todo, screen))
     for r in spec.running:
         st = stats[r.column]
         test = st.restrict(half=1).pooled() if split else st.pooled()
