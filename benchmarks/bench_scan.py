@@ -169,7 +169,9 @@ def main() -> None:
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",
               "", "Reproduce: `python benchmarks/bench_scan.py --rows " +
-              " ".join(f"{int(n)}" for n in a.rows) + "`."]
+              " ".join(f"{int(n)}" for n in a.rows) +
+              ("" if list(a.modes) == list(MODES) else
+               " --modes " + " ".join(f'"{m}"' if " " in m else m for m in a.modes)) + "`."]
     print(bd.write_section("bench_scan", "\n".join(lines)))
 
 
