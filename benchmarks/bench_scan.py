@@ -9,8 +9,11 @@ Table: 10 running variables, 3 treatments, 5 covariates and a ten-year visit dat
 bench_data.py), generated once into ``benchmarks/data/scan_dated_<rows>/`` (git-ignored).  Each
 measurement runs in a fresh process so its peak resident memory is its own:
 
-- ``read`` / ``read+convert``: the needed columns (running, tracked, date) batch by batch with
-  pyarrow and nothing else, then also turned into float64;
+- ``read``: the needed columns (running, tracked, date) batch by batch with pyarrow, nothing else;
+- ``read+convert``: the 18 numeric columns read and turned into float64 the way the pass turns
+  them (``scanner.io.numeric``) — the fair baseline of a pass without periods;
+- ``read+convert dated``: the same plus the date turned into calendar quarters
+  (``scanner.io.period_codes``) — the baseline of a pass that keeps periods;
 - ``bin plain``: the binning pass with no period and no half keys;
 - ``bin keys``: the pass as a dated scan runs it — year keys (the timeline) and the held-out half;
 - ``bin quarters``: quarter and half keys on every running variable (what a dated rule asks for
@@ -34,8 +37,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_data as bd  # noqa: E402
 
 SHAPE = (10, 3, 5)     # running variables, treatments, covariates
-MODES = ("read", "read+convert", "bin plain", "bin keys", "bin quarters", "duckdb", "scan",
-         "scan no date")
+MODES = ("read", "read+convert", "read+convert dated", "bin plain", "bin keys", "bin quarters",
+         "duckdb", "scan", "scan no date")
+# The fair baseline of each pass: reading the columns it reads and converting them into the
+# arrays it works on (float64 values; calendar quarters of the date where it keeps periods).
+BASELINE = {"bin plain": "read+convert", "bin keys": "read+convert dated",
+            "bin quarters": "read+convert dated", "scan": "read+convert dated",
+            "scan no date": "read+convert"}
 
 
 def _plan(spec, mode: str, batch_rows: int):
@@ -81,12 +89,18 @@ def measure(mode: str, folder: str, batch_rows: int, extra: str = "{}") -> dict:
     info = {}
     if mode == "read":
         rows, secs, cpu = bd.timed(lambda: sum(b.num_rows for b in table.batches(cols, batch_rows)))
-    elif mode == "read+convert":
+    elif mode.startswith("read+convert"):
+        from scanner.io import numeric, period_codes
+        dated = mode.endswith("dated")
+        use = cols if dated else cols[:-1]
+
         def run():
             n = 0
-            for b in table.batches(cols, batch_rows):
-                for c in b.columns[:-1]:
-                    c.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+            for b in table.batches(use, batch_rows):
+                for c in use[:-1] if dated else use:
+                    numeric(b, c, folder, "tracked")        # float64, as the pass converts them
+                if dated:
+                    period_codes(b, "visit", folder)
                 n += b.num_rows
             return n
         rows, secs, cpu = bd.timed(run)
@@ -125,8 +139,9 @@ def main() -> None:
              "with the load of other jobs (last column: 1/5/15-minute load averages when the "
              "step ran); CPU time (this process and its forked worker) moves less.",
              "", "| rows | step | wall (s) | CPU (s) | peak RSS (MB) | wall vs read | "
-             "CPU vs read | CPU vs plain pass | load |",
-             "|---:|---|---:|---:|---:|---:|---:|---:|---|"]
+             "CPU vs read | baseline (same columns read and converted) | wall vs baseline | "
+             "CPU vs baseline | CPU vs plain pass | load |",
+             "|---:|---|---:|---:|---:|---:|---:|---|---:|---:|---:|---|"]
     for n in map(int, a.rows):
         folder = bd.generate(bd.DATA / f"scan_dated_{n}", n, *SHAPE, dated=True)
         bd.child(Path(__file__), "read", folder, a.batch_rows)      # warm the page cache
@@ -145,13 +160,18 @@ def main() -> None:
             peak = f"{r['peak_rss_mb']:.0f}"
             if r.get("child_peak_rss_mb", 0) > 1:
                 peak += f" (+ worker {r['child_peak_rss_mb']:.0f})"
+            b = got.get(BASELINE.get(mode, ""), {})
+            rel = (f"{BASELINE[mode]} | {r['seconds'] / b['seconds']:.1f}× | "
+                   f"{r['cpu_seconds'] / b['cpu_seconds']:.1f}×" if b else "— | — | —")
             lines.append(f"| {n:,} | {mode} | {r['seconds']:.2f} | {r['cpu_seconds']:.2f} | "
                          f"{peak} | {r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}× | "
-                         f"{r['cpu_seconds'] / plain:.2f}× | {r['load']} |")
+                         f"{rel} | {r['cpu_seconds'] / plain:.2f}× | {r['load']} |")
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",
               "", "Reproduce: `python benchmarks/bench_scan.py --rows " +
-              " ".join(f"{int(n)}" for n in a.rows) + "`."]
+              " ".join(f"{int(n)}" for n in a.rows) +
+              ("" if list(a.modes) == list(MODES) else
+               " --modes " + " ".join(f'"{m}"' if " " in m else m for m in a.modes)) + "`."]
     print(bd.write_section("bench_scan", "\n".join(lines)))
 
 

@@ -135,6 +135,9 @@ def open_table(source, name: str | None = None, text_columns=()) -> Table:
 
         def batches(cols, rows, dataset=dataset):
             try:
+                if fmt == "parquet":
+                    yield from _parquet_batches(dataset, cols, rows)
+                    return
                 # Bounded read-ahead keeps peak memory at a few batches, whatever the file size.
                 for b in dataset.to_batches(columns=cols, batch_size=rows, batch_readahead=2,
                                             fragment_readahead=1):
@@ -146,6 +149,23 @@ def open_table(source, name: str | None = None, text_columns=()) -> Table:
                                  "and that each column holds one type.") from None
         return Table(str(path), columns, batches)
     return _from_pandas_reader(path, fmt)
+
+
+def _parquet_batches(dataset, cols, rows):
+    """Parquet files one by one, row group by row group: the dataset scanner decodes ahead of a
+    slow consumer (about 500 MB held for a 10M-row folder), a file reader only what is asked
+    for.  A file whose column types differ from the folder's is read through the dataset, which
+    converts them, so every batch has the same types either way."""
+    import pyarrow.parquet as pq
+    want = dataset.schema
+    for f in dataset.files:
+        pf = pq.ParquetFile(f)
+        have = pf.schema_arrow
+        if all(c in have.names and have.field(c).type == want.field(c).type for c in cols):
+            yield from pf.iter_batches(batch_size=rows, columns=cols)
+        else:
+            yield from ds.dataset(f, format="parquet", schema=want).to_batches(
+                columns=cols, batch_size=rows)
 
 
 def _is_pandas(obj) -> bool:

@@ -230,13 +230,14 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if screen is not None:      # registry-wide screen: full evaluation only where stage 1 passes
         from .events.screen import first_stage
         cands, screen_p, screen["pairs"] = first_stage(cands, pooled, spec)
-    rows = evaluate_all(cands, pooled, binned.stats, spec, progress,
-                        workers=1 if engine == "spark" else None)
+    rows, searches = evaluate_and_search(cands, pooled, binned.stats, spec, progress,
+                                         workers=1 if engine == "spark" else None,
+                                         search=spec.discover)
     for row in rows:
         explain_nan(row)
     extra_p, search = [], {"n_grid_points": 0, "pairs": []}
     if spec.discover:
-        extra_p, search = discovery_step(binned.stats, rows, spec, progress)
+        extra_p, search = discovery_step(binned.stats, rows, spec, progress, searches=searches)
         for row in rows:           # discovered rows: the bound on the half the jump came from
             if row["origin"] == "discovered" and "binning_error" not in row:
                 st = binned.stats[row["running"]]
@@ -278,8 +279,12 @@ def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> li
 
 
 def _evaluate_group(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
-                    total: int | None = None) -> list:
-    """Rows of a list of candidates, in order (one density cache for the group)."""
+                    total: int | None = None, search=()) -> list:
+    """Rows of a list of candidates, in order (one density cache for the group); with
+    ``search`` (running variables) also their discovery searches: (rows, searches)."""
+    if search:
+        return (_evaluate_group(cands, pooled, stats, spec, progress, total),
+                pair_searches(stats, spec, set(search)))
     rows, density_cache = [], {}
     for c in cands:
         row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
@@ -316,15 +321,23 @@ def workers_default() -> int:
     return max(1, min(2, os.cpu_count() or 1))
 
 
-def split_by_running(cands, k: int) -> list[list[int]]:
-    """Candidate positions in ``k`` groups of whole running variables, balanced by count."""
+def split_by_running(cands, k: int, extra: dict | None = None) -> list[list[int]]:
+    """Candidate positions in ``k`` groups of whole running variables, balanced by count
+    (plus ``extra[running]``, the weight of other work on a running variable)."""
     by = {}
     for i, c in enumerate(cands):
         by.setdefault(c.running, []).append(i)
+    extra = extra or {}
     groups = [[] for _ in range(k)]
-    for idx in sorted(by.values(), key=len, reverse=True):
-        min(groups, key=len).extend(idx)
+    load = [0] * k
+    for r, idx in sorted(by.items(), key=lambda kv: len(kv[1]) + extra.get(kv[0], 0), reverse=True):
+        j = min(range(k), key=lambda g: (load[g], len(groups[g])))
+        groups[j].extend(idx)
+        load[j] += len(idx) + extra.get(r, 0)
     return [sorted(g) for g in groups if g]
+
+
+SEARCH_WEIGHT = 12   # one discovery search costs about as much as this many candidates (profiled)
 
 
 def evaluate_all(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
@@ -336,40 +349,86 @@ def evaluate_all(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None
     copying them) and send their rows back through a pipe; with one worker, too few candidates
     or no ``fork`` on the platform, everything runs here.
     """
+    return evaluate_and_search(cands, pooled, stats, spec, progress, workers)[0]
+
+
+def evaluate_and_search(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=None,
+                        workers: int | None = None, search: bool = False):
+    """:func:`evaluate_all`, and with ``search`` the discovery searches of every running
+    variable × treatment (:func:`pair_searches`) run in the same processes, each beside the
+    candidates of its running variable.  Returns (rows, searches or None)."""
+    with one_blas_thread():
+        return _evaluate_and_search(cands, pooled, stats, spec, progress, workers, search)
+
+
+def one_blas_thread():
+    """A context in which the linear algebra library uses one thread.
+
+    The candidate loop already runs in one process per core; the BLAS library's own threads on
+    top of that (two per process on two cores) spin-wait for each other, which measured 5× the
+    wall time and 10× the CPU time of one thread for the discovery search's Cholesky factors on
+    this shared machine.  One thread also makes the factors, and so the simulated critical
+    values, independent of the number of cores (they differ in the last bits otherwise).
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:                     # a declared dependency; without it, as before
+        import contextlib
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def _evaluate_and_search(cands, pooled, stats, spec, progress, workers, search):
     import multiprocessing as mp
     workers = workers_default() if workers is None else workers
-    groups = split_by_running(cands, workers) if len(cands) >= MIN_PARALLEL else [list(range(len(cands)))]
+    runs = [r.column for r in spec.running] if search else []
+    extra = {r.column: SEARCH_WEIGHT * len(r.treatments or spec.treatments) for r in spec.running
+             } if search else {}
+    weight = len(cands) + sum(extra.values())
+    groups = split_by_running(cands, workers, extra) if weight >= MIN_PARALLEL else [list(range(len(cands)))]
     if len(groups) < 2 or "fork" not in mp.get_all_start_methods():
-        return _evaluate_group(cands, pooled, stats, spec, progress, len(cands))
+        rows = _evaluate_group(cands, pooled, stats, spec, progress, len(cands))
+        return rows, (pair_searches(stats, spec) if search else None)
+    # Running variables without candidates search in the last group.
+    owner = {cands[i].running: j for j, g in enumerate(groups) for i in g}
+    mine = [[r for r in runs if owner.get(r, len(groups) - 1) == j] for j in range(len(groups))]
     ctx = mp.get_context("fork")
     pipes, procs = [], []
-    for g in groups[1:]:
+    for g, srch in zip(groups[1:], mine[1:]):
         recv, send = ctx.Pipe(duplex=False)
-        proc = ctx.Process(target=_child, args=(send, [cands[i] for i in g], pooled, stats, spec),
-                           daemon=True)
+        proc = ctx.Process(target=_child, args=(send, [cands[i] for i in g], pooled, stats, spec,
+                                                srch), daemon=True)
         proc.start()
         send.close()
         pipes.append(recv)
         procs.append(proc)
     rows: list = [None] * len(cands)
-    for i, row in zip(groups[0], _evaluate_group([cands[i] for i in groups[0]], pooled, stats,
-                                                 spec, progress, len(cands))):
+    got0 = _evaluate_group([cands[i] for i in groups[0]], pooled, stats, spec, progress,
+                           len(cands), mine[0])
+    found = {}
+    if mine[0]:
+        got0, s0 = got0
+        found.update(s0)
+    for i, row in zip(groups[0], got0):
         rows[i] = row
-    for g, recv, proc in zip(groups[1:], pipes, procs):
+    for g, srch, recv, proc in zip(groups[1:], mine[1:], pipes, procs):
         ok, got = recv.recv()
         proc.join()
         if not ok:
             raise got
+        if srch:
+            got, s1 = got
+            found.update(s1)
         for i, row in zip(g, got):
             rows[i] = row
         if progress:
             progress("estimate", len(g), len(cands))
-    return rows
+    return rows, (found if search else None)
 
 
-def _child(send, cands, pooled, stats, spec) -> None:
+def _child(send, cands, pooled, stats, spec, search=()) -> None:
     try:
-        send.send((True, _evaluate_group(cands, pooled, stats, spec)))
+        send.send((True, _evaluate_group(cands, pooled, stats, spec, search=search)))
     except BaseException as exc:  # noqa: BLE001 - handed to the parent, which raises it
         send.send((False, exc))
     finally:
@@ -498,89 +557,4 @@ def _design(fit) -> str:
     return "sharp" if lo <= 0.02 and hi >= 0.98 else "fuzzy"
 
 
-# ---------------------------------------------------------------------------------- discovery
-_CONFIRM_KEYS = ("jump", "se", "ci_low", "ci_high", "interval", "p_value", "conventional_p",
-                 "bias_bound", "z", "bandwidth", "n_left", "n_right", "distinct_left",
-                 "distinct_right", "left", "right", "reason")
-
-
-def discovery_step(stats: dict, rows: list, spec: ScanSpec, progress=None,
-                   screen: bool = False) -> tuple[list, dict]:
-    """Search every running variable × treatment for undeclared cutoffs (scanner.breaks).
-
-    With ``spec.confirm`` (default) the search runs on half 0 of the seeded split and every
-    break it finds is estimated and tested on half 1 (Card, Mas & Rothstein 2008), each break on
-    its own.  A break next to a declared or round candidate of the same pair is reported on that
-    candidate (``best_fit_cutoff``) instead of a new row.  ``screen`` is for simulation studies
-    (see scanner.breaks.search_pair).
-
-    A discovered row's ``jump``, ``se``, ``ci_low``/``ci_high`` and ``p_value`` all come from
-    the held-out half: the p-value and interval allow for the worst-case smoothing bias
-    (``interval`` = "bias-bounded"), and ``confirm_half`` repeats exactly those fields.
-    Appends discovered rows to ``rows``; returns the p-values of the search tests that produced
-    no row — every step of the sequential search is one test in the q-value family (see
-    scanner.score): a step whose break became a row is counted by that row's held-out p-value;
-    a step whose break was attached to a declared/round candidate, and the last step that found
-    nothing more, by their search-adjusted p-values.
-    """
-    from .breaks import near_candidate, search_pair
-    split = spec.confirm and any((st.half >= 0).any() for st in stats.values())
-    extra_p, pairs, n_grid, cache1 = [], [], 0, {}
-    k = 0
-    for r in spec.running:
-        st = stats[r.column]
-        find = st.restrict(half=0).pooled() if split else st.pooled()
-        test = st.restrict(half=1).pooled() if split else st.pooled()
-        for t in (r.treatments or spec.treatments):
-            k += 1
-            ps = search_pair(find, t, spec.alpha, spec.kernel, spec.min_rows, seed=spec.seed + k,
-                             screen=screen)
-            n_grid += ps.n_grid_points
-            pairs.append(ps.to_dict())
-            own = [x for x in rows if x["running"] == r.column and x["treatment"] == t
-                   and x["origin"] in ("declared", "round")]
-            for pk in ps.peaks:
-                j = near_candidate(pk, [x["cutoff"] for x in own], [x["origin"] for x in own])
-                loc = dict(location=pk.location, location_ci_low=pk.ci_low,
-                           location_ci_high=pk.ci_high, location_ci_low_open=pk.ci_low_open,
-                           search_p=pk.search_p, search_step=pk.step, discovery_half=pk.to_dict())
-                if j is not None:
-                    own[j].update(best_fit_cutoff=pk.location, **loc)
-                    extra_p.append(pk.search_p)
-                    continue
-                rows.append(_confirmed_row(test, Candidate(r.column, t, pk.location, "discovered"),
-                                           pk, spec, cache1, split, loc))
-            extra_p.extend(x["search_p"] for x in ps.tests[len(ps.peaks):])
-            if progress:
-                progress("discover", 1, None)
-    return extra_p, {"n_grid_points": n_grid, "n_scans": len(pairs), "split": bool(split),
-                     "split_by": (spec.unit or "row position") if split else None,
-                     "seed": spec.seed, "pairs": pairs,
-                     "n_search_tests": sum(len(p["steps"]) for p in pairs)}
-
-
-def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split: bool,
-                   loc: dict) -> dict:
-    """Estimate and test one discovered break on the held-out half.
-
-    A search seeks out curvature that looks like a jump, so the test allows for the worst-case
-    smoothing bias B̄ (scanner.discover.bias_bound): p = P(|N(b, 1)| ≥ |t|) and the interval
-    jump ± cv·se with cv the 95% quantile of |N(b, 1)|, b = B̄/se (Armstrong & Kolesár 2020,
-    the fixed-length interval; Kolesár & Rothe 2018), so the interval and p tell one story.
-    """
-    from scipy import stats as sps
-    from .discover import bias_bound
-    row = evaluate(test, cand, spec, cache)
-    row.update(loc, split=bool(split))
-    bb = bias_bound(test, cand.treatment, cand.cutoff, row["bandwidth"], spec.kernel)
-    row.update(conventional_p=row["p_value"], bias_bound=bb.bound, curvature_bound=bb.curvature)
-    pb = bb.p_value(row["jump"], row["se"])
-    if np.isfinite(pb):
-        cv = float(sps.foldnorm.ppf(0.95, bb.bound / row["se"]))
-        row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],
-                   ci_high=row["jump"] + cv * row["se"], interval="bias-bounded")
-    if not split:
-        # Same rows for search and estimate: only the search-adjusted p is honest.
-        row["p_value"] = max(row["p_value"], pk.search_p)
-    row["confirm_half"] = {key: row.get(key) for key in _CONFIRM_KEYS} if split else None
-    return row
+from .search_step import discovery_step, pair_searches  # noqa: E402  (they call evaluate)

@@ -16,15 +16,16 @@ over a sample of the first rows or Parquet min/max statistics because the result
 on the set of values: a table sorted by the running variable, a stray outlier, a different
 batch size or a Spark partitioning cannot change the grid.  An outlier costs one bin.
 
-Speed.  Per batch every tracked column is turned into float64 once; the sums for all columns are
-one sparse one-hot product per running variable (scipy, a single pass in C), with a plain
-``np.bincount`` path kept for checking (``plan.kernel = "bincount"``).  Group keys use hash
-factorisation (exact values) or dense offsets (grid keys) instead of sorting.  There is no
-compiled kernel: the sparse product already runs the scatter-add loop in C.  A numba loop that
-fuses the sums of all running variables into one pass over the rows was measured
-(``benchmarks/bench_numba_pass.py``): same sums, about 0.1 s saved per million rows (~10% of the
-pass), less than numba's import and compile time in a fresh process, while the group codes and
-the addend matrix it does not replace cost more than the sums — so it did not earn a dependency.
+Speed.  The default kernel (``plan.kernel = "compiled"``, :mod:`scanner.engines.compiled`) adds
+every row straight into the running totals with two numba loops per running variable and batch,
+after putting the batch's rows in order of their (period, half) key so that the totals touched at
+one time stay in the processor's cache; the running variables of a batch are folded in two
+threads (the loops release the GIL).  Group codes of exact values and grid keys come from dense
+integer offsets (compiled too), with hash factorisation where keys are too spread out.  The numpy
+kernels are kept for checking and for machines without numba: one sparse one-hot product per
+running variable (``"sparse"``, scipy) or one ``np.bincount`` per sum (``"bincount"``); all three
+give the same sums to 1e-9 (tested).  numba's import and the loading of the cached machine code
+cost about a second per process, which the pass earns back from about a million rows.
 The cost of the pass against plain reading is in ``benchmarks/results/scale.md``.
 """
 from __future__ import annotations
@@ -189,6 +190,23 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
     return g, np.asarray(uniq), nb
 
 
+def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0):
+    """:func:`_codes` with compiled loops: the same groups and keys; and the number of decimals
+    that made the values whole (tried first next time; any that works gives the same keys)."""
+    from . import compiled
+    if dense:
+        g, uniq, nb, fits = compiled.dense_codes(key, ok)
+        return (g, uniq, nb) if fits else _codes(key, ok, True), hint
+    for d in dict.fromkeys((hint, 0, 1, 2, 3)):
+        k, whole = compiled.decimal_ints(key, ok, 10.0 ** d)
+        if whole:
+            g, uniq, nb, fits = compiled.dense_codes(k, ok)
+            if fits:
+                return (g, uniq / 10.0 ** d, nb), d
+            break
+    return _codes(key, ok, False), hint
+
+
 def keyed(period: np.ndarray, half: np.ndarray):
     """One small integer per row for its (period, half) keys: (code, number of codes, first period).
 
@@ -284,6 +302,7 @@ class Accumulator:
             self.state, self.grid = "exact", None
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
+        self.decimals = 0
 
     @property
     def stats(self) -> BinnedStats:
@@ -318,7 +337,7 @@ class Accumulator:
         set of exact bins.
         """
         key, dense, parts = self.key(x, ok)
-        out = _codes(key, ok, dense)
+        out = self._codes(key, ok, dense)
         f = self.plan.fine_keys
         if self.state == "exact" and out[2] + self.sums.n_keys > f:
             vals = np.union1d(out[1], self.sums.bin_keys)
@@ -334,10 +353,16 @@ class Accumulator:
                                      self.forced)
                 self.state = "fine"
                 key, dense, parts = self.key(x, ok)
-                out = _codes(key, ok, dense)
+                out = self._codes(key, ok, dense)
         if parts > 1:       # part j of grid bin k has key k + j/SUB
             g, u, nb = out
             out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
+        return out
+
+    def _codes(self, key, ok, dense):
+        if _kernel(self.plan.kernel) != "compiled":
+            return _codes(key, ok, dense)
+        out, self.decimals = _codes_compiled(key, ok, dense, self.decimals)
         return out
 
     def add(self, raw) -> None:
@@ -350,6 +375,38 @@ class Accumulator:
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
                                  *self.grid, self.forced)
+
+    def add_rows(self, codes, x: np.ndarray, extra, Y: np.ndarray, pa, pb) -> None:
+        """Add a batch's rows straight into the totals (compiled kernel, :mod:`.compiled`).
+
+        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys; ``Y`` the
+        tracked columns as a (columns, rows) float64 array; ``pa``/``pb`` the pairs' column
+        positions.
+        """
+        from . import compiled
+        g, ukey, nb = codes
+        if nb:
+            if extra is None:
+                ext, span, p0 = _NO_EXT, 1, 0
+            else:
+                ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
+            if nb * span <= LUT_MAX:
+                group, first = compiled.local_groups(g, nb, ext, span)
+            else:       # too many combinations for a dense table: hash them
+                import pandas as pd
+                live = g < nb
+                comp = g[live] * span + (ext[live] if ext.size else 0)
+                codes_, first = pd.factorize(comp)
+                group = np.full(g.size, -1, np.int64)
+                group[live] = codes_
+            b, e = np.divmod(np.asarray(first, np.int64), span)
+            r = np.arange(span) // 3
+            slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
+                                           np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
+                                           (np.arange(span) % 3 - 1).astype(np.int8), e)
+            compiled.add_rows(group, slot, x, Y, pa, pb, self.sums.M)
+            self.sums.touch()
+        self.add(None)
 
     def finish(self) -> BinnedStats:
         st = self.stats
@@ -385,50 +442,121 @@ class Accumulator:
         return out
 
 
+_NO_EXT = np.zeros(0, np.int64)
+LUT_MAX = 1 << 22         # dense (bin, period-half) look-up table of one batch: at most 32 MB
+
+
 def _base(key: np.ndarray) -> np.ndarray:
     """Grid bin index of fixed-width keys (dropping the part of a split bin)."""
     return np.floor(key).astype(np.int64)
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
-    """One streaming pass over ``table`` (a :class:`scanner.io.Table`)."""
+    """One streaming pass over ``table`` (a :class:`scanner.io.Table`).
+
+    With the compiled kernel the running variables of a batch are folded in two threads (the
+    loops release the GIL; each thread owns whole running variables, so the totals do not
+    depend on the split); ``CUTSCAN_WORKERS=1`` keeps one.
+    """
     acc = {r: Accumulator(r, plan) for r in plan.running}
     missing = dict.fromkeys(plan.running, 0)
     nonfinite = dict.fromkeys(plan.running, 0)
+    kernel = _kernel(plan.kernel)
+    pool = None
+    if kernel == "compiled" and len(plan.running) > 1 and _threads() > 1:
+        from concurrent.futures import ThreadPoolExecutor
+        pool = ThreadPoolExecutor(_threads())
     rows = 0
-    for batch in table.batches(plan.needed, plan.batch_rows):
-        m = batch.num_rows
-        if m == 0:
-            continue
-        cols = {c: numeric(batch, c, table.name, _role(c, plan)) for c in plan.columns}
-        for t in plan.treatments:
-            check_binary(cols[t], t, table.name)
-        packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
-        dated = plan.date in plan.needed if plan.date else False
-        quarter = period_codes(batch, plan.date, table.name) if dated else None
-        half = None
-        if plan.split_seed is not None:
-            if plan.split_unit:
-                half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
+    try:
+        for batch in table.batches(plan.needed, plan.batch_rows):
+            m = batch.num_rows
+            if m == 0:
+                continue
+            dated = plan.date in plan.needed if plan.date else False
+            quarter = period_codes(batch, plan.date, table.name) if dated else None
+            half = None
+            if plan.split_seed is not None:
+                if plan.split_unit:
+                    half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
+                else:
+                    half = half_split(np.arange(rows, rows + m), plan.split_seed)
+            details = [plan.period_of(r) for r in plan.running]
+            by_detail = {d: _extra(d, quarter, half, m) for d in set(details)}
+            common = max(set(details), key=details.count)
+            if kernel == "compiled" and by_detail[common] is not None and _plain(batch):
+                # Rows in order of their (period, half) code: see compiled.order_by.  (Text
+                # columns are parsed in file order, so their messages quote the first values.)
+                from . import compiled
+                perm = compiled.order_by(*by_detail[common][:2])
+                batch = batch.take(perm)
+                by_detail = {d: None if e is None else (e[0][perm],) + e[1:]
+                             for d, e in by_detail.items()}
+            cols = {c: numeric(batch, c, table.name, _role(c, plan)) for c in plan.columns}
+            for t in plan.treatments:
+                check_binary(cols[t], t, table.name)
+            if kernel == "compiled":
+                Y = np.empty((len(plan.columns), m))
+                for j, c in enumerate(plan.columns):
+                    Y[j] = cols[c]
+                pos = {c: j for j, c in enumerate(plan.columns)}
+                pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
+                pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
             else:
-                half = half_split(np.arange(rows, rows + m), plan.split_seed)
-        by_detail = {d: _extra(d, quarter, half, m) for d in {plan.period_of(r) for r in plan.running}}
-        extras = {r: by_detail[plan.period_of(r)] for r in plan.running}
-        for r in plan.running:
-            extra = extras[r]
-            x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
-            ok = np.isfinite(x)
-            isn = np.isnan(x)
-            missing[r] += int(isn.sum())
-            nonfinite[r] += int(m - ok.sum() - isn.sum())
-            a = acc[r]
-            codes = a.codes(x, ok)
-            a.add(fold_raw(codes, x, ok, extra, packed, a.template, plan.kernel)
-                  if codes[2] else None)
-        rows += m
-        if progress:
-            progress(m)
+                packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
+
+            def one(r):
+                extra = by_detail[plan.period_of(r)]
+                x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
+                ok = np.isfinite(x)
+                isn = np.isnan(x)
+                a = acc[r]
+                codes = a.codes(x, ok)
+                if kernel == "compiled":
+                    a.add_rows(codes, x, extra, Y, pa, pb)
+                else:
+                    a.add(fold_raw(codes, x, ok, extra, packed, a.template, kernel)
+                          if codes[2] else None)
+                nan = int(isn.sum())
+                return nan, int(m - ok.sum() - nan)
+            got = list(pool.map(one, plan.running)) if pool else [one(r) for r in plan.running]
+            for r, (nan, inf) in zip(plan.running, got):
+                missing[r] += nan
+                nonfinite[r] += inf
+            rows += m
+            if progress:
+                progress(m)
+    finally:
+        if pool is not None:
+            pool.shutdown()
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
+
+
+def _plain(batch) -> bool:
+    """True when every column of ``batch`` is numeric, boolean or a date (no text to parse)."""
+    import pyarrow as pa
+    return all(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
+               or pa.types.is_date(t) or pa.types.is_timestamp(t) or pa.types.is_null(t)
+               for t in batch.schema.types)
+
+
+def _threads() -> int:
+    """Threads for the compiled pass: ``CUTSCAN_WORKERS`` if set, else up to 2 (the cores)."""
+    import os
+    env = os.environ.get("CUTSCAN_WORKERS")
+    if env and env.strip().isdigit():
+        return max(1, int(env))
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+def _kernel(name: str) -> str:
+    """The kernel to run: "compiled" falls back to "sparse" where numba cannot be imported."""
+    if name != "compiled":
+        return name
+    try:
+        from . import compiled  # noqa: F401
+    except ImportError:
+        return "sparse"
+    return name
 
 
 def _extra(detail: str, quarter, half, m: int):

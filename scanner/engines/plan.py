@@ -25,7 +25,8 @@ class BinPlan:
     split_seed : seed of the half-sample key, or None for no split.
     max_exact, max_bins, fine_keys : grid rule, see :mod:`scanner.engines.grid`.
     batch_rows : rows per record batch (memory knob; results do not depend on it).
-    kernel : "sparse" (one scipy product per running variable) or "bincount" (plain numpy).
+    kernel : "compiled" (numba loops, the default; "sparse" where numba is missing), "sparse"
+        (one scipy product per running variable) or "bincount" (plain numpy): the same sums.
     split_unit : unit-id column; when set, the half is a seeded hash of the unit id (all rows of
         a unit fall in the same half, whatever the row order), else of the row position.
     edges : per running variable, forced edges ``(cutoff, right_closed)`` known before the pass
@@ -51,7 +52,7 @@ class BinPlan:
     max_bins: int = MAX_BINS
     fine_keys: int = FINE_KEYS
     batch_rows: int = BATCH_ROWS
-    kernel: str = "sparse"
+    kernel: str = "compiled"
     edges: dict = field(default_factory=dict)
     round_edges: bool = False
     periods: dict = field(default_factory=dict)

@@ -3,8 +3,9 @@
 Adding a batch's BinnedStats to the totals used to mean concatenating both and re-sorting every
 (bin, period, half) key — with period and half keys, hundreds of thousands of keys per running
 variable and batch.  Here every (bin key, period, half) seen so far owns a slot (a row of one
-float64 matrix); a batch's groups find their slots with two hash look-ups and are added with one
-indexed ``+=``.  Nothing is sorted until the totals are read (:meth:`SlotSums.stats`), so the cost
+float64 matrix); a batch's groups find their slots with two hash look-ups (:meth:`SlotSums.slots`)
+and are added with one indexed ``+=``, or the compiled kernel adds each row straight into its
+group's slot (:mod:`scanner.engines.compiled`).  Nothing is sorted until the totals are read (:meth:`SlotSums.stats`), so the cost
 of a batch grows with the number of its groups, not with the totals, and memory with the
 (bin, period, half) combinations that actually occur.  Counts are held as float64, exact up to
 2^53 rows.
@@ -95,9 +96,22 @@ class SlotSums:
         """Add sums given as keys and one matrix in this module's layout (see :func:`_matrix`)."""
         if key.size == 0:
             return
+        slot = self.slots(key, period, half)       # may grow self.M
+        self.M[slot] += M
+
+    def slots(self, key, period, half) -> np.ndarray:
+        """Slot (row of ``self.M``) of each distinct (key, period, half); new ones start at 0."""
+        at = np.arange(np.size(key))
+        return self.slots_grouped(key, at, period, half, at)
+
+    def slots_grouped(self, ukey, b, eper, ehalf, e) -> np.ndarray:
+        """:meth:`slots` of groups given as bin ``ukey[b]`` and period-half ``(eper, ehalf)[e]``
+        (looks up each distinct bin and period once, not once per group)."""
+        if b.size == 0:
+            return np.zeros(0, np.int64)
         self._cache = None
-        code = (self._bin_index(key) * _STRIDE + self._period_index(period) * 3
-                + (half.astype(np.int64) + 1))
+        code = (self._bin_index(ukey)[b] * _STRIDE
+                + (self._period_index(eper) * 3 + (ehalf.astype(np.int64) + 1))[e])
         slot = self._codes.get_indexer(code)
         new = slot < 0
         if new.any():
@@ -105,11 +119,16 @@ class SlotSums:
             self._grow(self.size + m)
             at = np.arange(self.size, self.size + m)
             slot[new] = at
-            self.key[at], self.period[at], self.half[at] = key[new], period[new], half[new]
+            self.key[at] = ukey[b[new]]
+            self.period[at], self.half[at] = eper[e[new]], ehalf[e[new]]
             self.code[at] = code[new]
             self.size += m
             self._codes = self._pd.Index(self.code[:self.size])
-        self.M[slot] += M
+        return slot
+
+    def touch(self) -> None:
+        """Forget the cached :meth:`stats` (the slots were added to in place)."""
+        self._cache = None
 
     def stats(self) -> BinnedStats:
         """The totals as BinnedStats, bins sorted by (key, period, half)."""
