@@ -56,8 +56,9 @@ def data(persons: int) -> Path:
     from scanner.events.demo_long import write_long
     folder = DATA / f"events_{persons}"
     if not (folder / "_complete").exists():
+        # About 0.37 planted events per person; the noise makes up 10 events per person.
         write_long(folder, n_persons=persons, extra_tests=17, extra_codes=47, visits=1.0,
-                   noise_events=9 * persons + persons // 2)
+                   noise_events=10 * persons - 37 * persons // 100)
         (folder / "_complete").write_text("ok\n")
     return folder
 

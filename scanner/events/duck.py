@@ -7,6 +7,8 @@ through the usual binning pass.  Drop counts are one aggregate query over the sa
 from __future__ import annotations
 
 import tempfile
+
+import numpy as np
 from pathlib import Path
 
 from ..errors import InputError
@@ -105,11 +107,52 @@ class Registry:
         for name, sel in view_sql(lay, "duckdb", rels).items():
             con.execute(f"CREATE VIEW {name} AS {sel}")
 
+    limit = None        # at most this many rows from batches() (the data-quality profile)
+
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
-        reader = self.con.cursor().sql(scan_sql(self.lay, "duckdb", "analysis", cols)
-                                       ).to_arrow_reader(rows)
+        sql = scan_sql(self.lay, "duckdb", "analysis", cols)
+        if self.limit is not None:
+            sql += f" LIMIT {int(self.limit)}"
+        reader = self.con.cursor().sql(sql).to_arrow_reader(rows)
         yield from reader
+
+    def bin(self, table, plan):
+        """The binning pass inside DuckDB (:mod:`scanner.events.bins_sql`): only per-bin sums
+        leave the database.  ``table`` is the cleaned scan table over this registry; its
+        data-quality profile (the first rows of the scan order, the running variables and
+        covariates only) is read first, as the streaming pass would, and its cleaning then runs
+        as SQL.  None when the plan needs the streaming pass (joint pair sums, unit columns)."""
+        from .bins_sql import bin_registry
+        cl = getattr(table, "cleaning", None)
+        if cl is not None and (cl.units or cl.value_maps or cl.decimal):
+            return None
+        if cl is not None and cl.planner is not None and not cl.planned:
+            self._profile(table, cl)
+        return bin_registry(lambda sql: self.con.execute(sql).fetchnumpy(), self.lay, plan, cl,
+                            "duckdb", "analysis")
+
+    def _profile(self, table, cl) -> None:
+        """Run the cleaning's profile on the first ``cl.profile_rows`` rows of the scan order,
+        leaving its counters as they were (the aggregate query counts every row)."""
+        import copy
+        names = ("coded", "mapped", "sentinel_hits", "converted", "unit_missing", "out_of_range",
+                 "watched")
+        saved = {n: copy.deepcopy(getattr(cl, n)) for n in names}
+        self.limit = cl.profile_rows
+        try:
+            it = table.batches(list(cl.profile_columns), cl.profile_rows)
+            next(it, None)
+            it.close()
+            if not cl.planned:          # no rows at all
+                cl.planned = True
+                cl.planner({c: np.zeros(0) for c in cl.profile_columns})
+        finally:
+            self.limit = None
+            for n, v in saved.items():
+                d = getattr(cl, n)
+                d.clear()
+                d.update(v)
 
     def dropped(self) -> list[dict]:
         """Rows left out, per running variable (and uptake): ``data.dropped`` entries."""
