@@ -129,11 +129,19 @@ def _score_rows(lay: Layout, ids: list, d: Dialect) -> str:
             f"WHERE {' AND '.join(cond)}) m) r{join} WHERE _k = 1")
 
 
+def _bucket(day: str, span: int) -> str:
+    """Bucket of ``span`` days holding a day number (floor division, also for negative days)."""
+    return f"CAST(floor(({day}) / CAST({int(span)} AS DOUBLE)) AS BIGINT)"
+
+
 def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     """The query building the analysis rows of a long-format layout.
 
     Events reach the index rows through one range join: ``evj`` holds each (person, day,
-    uptake) once — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
+    uptake) once, with its bucket of ``hi - lo + 1`` days (the span every uptake window and
+    look-back fits in); an index row's span touches at most two buckets, so the join on
+    (person, bucket) meets only the events near the index date instead of all of a person's
+    events — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
     (index row, uptake), gives each uptake's hit and look-back flags; they are folded into one
     bit mask per 62 uptakes and index row.  One join for all uptakes, and masks rather than a
     column per uptake in the aggregate, keep a screen of many event codes to one pass over the
@@ -144,18 +152,23 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     ups = lay.uptakes
     lo = min(u.first_day for u in ups)
     hi = max(u.days[1] for u in ups)
+    span = hi - lo + 1
     ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
             f"idx AS {d.materialized}(SELECT *, {d.row_id()} AS _rid FROM idx0)",
-            "evj AS (SELECT DISTINCT person, day, j FROM ("
+            f"evj AS (SELECT person, day, j, {_bucket('day', span)} AS bk FROM ("
+            "SELECT DISTINCT person, day, j FROM ("
             "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
-            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
+            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x) y)",
+            # Each index row looks at days day+lo .. day+hi: at most two buckets of that span.
+            f"ib AS (SELECT i._rid, i.person, i.day, {_bucket(f'i.day + ({lo})', span)} + t.t AS bk "
+            "FROM idx i CROSS JOIN (SELECT 0 AS t UNION ALL SELECT 1 AS t) t)"]
     # Hits per (index row, uptake), then one BIGINT bit mask per 62 uptakes and index row.
     uw = " UNION ALL ".join(f"SELECT {j} AS j, {u.days[0]} AS a, {u.days[1]} AS b, "
                             f"{u.prior_days or 0} AS k" for j, u in enumerate(ups))
     ctes.append(f"hl AS (SELECT i._rid, e.j, "
                 f"max(CASE WHEN e.day BETWEEN i.day + w.a AND i.day + w.b THEN 1 ELSE 0 END) AS hit, "
                 f"max(CASE WHEN w.k > 0 AND e.day BETWEEN i.day - w.k AND i.day - 1 THEN 1 ELSE 0 END) "
-                f"AS prior FROM idx i JOIN evj e ON e.person = i.person "
+                f"AS prior FROM ib i JOIN evj e ON e.person = i.person AND e.bk = i.bk "
                 f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) "
                 f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j)")
     masks = []
@@ -169,20 +182,31 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
         ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
                     "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
                     "GROUP BY i._rid)")
-    cols = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
-    for j, u in enumerate(ups):
-        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
+    # Masks and observed-window flags once per row (a screen's uptakes share one window), then
+    # one cheap bit test per uptake.
+    windows = sorted({(u.first_day, u.days[1]) for u in ups})
+    inner = ["i._score", "i._rid", "i.person", "i.day", "i.x"] + [f"i.{q(c)}" for c in lay.covariates]
+    for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
+        inner += [f"coalesce(h.h{g}, 0) AS _h{g}", f"coalesce(h.p{g}, 0) AS _p{g}"]
+    for m, (f0, b) in enumerate(windows):
+        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({f0}) AND c.p1 >= i.day + ({b}))"
                 if observed else "TRUE")
+        inner.append(f"CASE WHEN {seen} THEN 1 ELSE 0 END AS _s{m}")
+    inner.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
+    cols = ["_score", "_rid", "person AS _person", "day AS _day", "x AS _x"]
+    for j, u in enumerate(ups):
+        m = windows.index((u.first_day, u.days[1]))
         g, k = divmod(j, MASK_BITS)
-        prior = f"{d.bit(f'coalesce(h.p{g}, 0)', k)} = 1" if u.prior_days else "FALSE"
-        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN NOT {seen} THEN {UNSEEN} "
-                    f"ELSE {d.bit(f'coalesce(h.h{g}, 0)', k)} END AS TINYINT) AS _u{j}")
-    cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
-    cols += [f"i.{q(c)}" for c in lay.covariates]
+        prior = f"{d.bit(f'_p{g}', k)} = 1" if u.prior_days else "FALSE"
+        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN _s{m} = 0 THEN {UNSEEN} "
+                    f"ELSE {d.bit(f'_h{g}', k)} END AS TINYINT) AS _u{j}")
+    cols.append("_noobs")
+    cols += [q(c) for c in lay.covariates]
     joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
-    return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
+    return ("WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM ("
+            f"SELECT {', '.join(inner)} FROM idx i{joins}) r")
 
 
 def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
