@@ -171,6 +171,18 @@ def test_missing_column_is_named(tmp_path):
         Registry(lay, tmp_path, {"meas": meas, "events": ev})
 
 
+def write_small(spec, meas, ev, data="", running="", tail=""):
+    """Write measurements, events and a one-score, one-uptake spec (extra lines per table)."""
+    meas.to_parquet(spec.parent / "m.parquet")
+    ev.to_parquet(spec.parent / "e.parquet")
+    spec.write_text(
+        'title = "long"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n' + data +
+        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n' + running +
+        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
+        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n' + tail +
+        '[search]\ndiscover = false\n')
+
+
 def test_scan_end_to_end_finds_planted_jump(tmp_path):
     """A planted uptake jump of 0.5 at HbA1c 6.5 % in the long layout is found and usable."""
     rng = np.random.default_rng(7)
@@ -182,14 +194,7 @@ def test_scan_end_to_end_finds_planted_jump(tmp_path):
     took = rng.random(n) < p
     ev = pd.DataFrame({"pid": meas.pid[took], "when": meas.on[took] + pd.to_timedelta(
         rng.integers(0, 170, took.sum()), "D"), "code": "MTF"})
-    meas.to_parquet(tmp_path / "m.parquet")
-    ev.to_parquet(tmp_path / "e.parquet")
-    (tmp_path / "spec.toml").write_text(
-        'title = "long"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n'
-        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n'
-        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
-        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n'
-        '[search]\ndiscover = false\n')
+    write_small(tmp_path / "spec.toml", meas, ev)
     out = run_cli("scan", tmp_path / "spec.toml", "--out", tmp_path / "out")
     assert out.returncode == 0, out.stderr
     import json
@@ -477,16 +482,8 @@ def test_scan_bins_in_duckdb_equal_streaming_with_cleaning(tmp_path, monkeypatch
     rng = np.random.default_rng(2)
     meas.loc[rng.random(len(meas)) < 0.03, "value"] = 999.0
     meas["female"] = np.where(rng.random(len(meas)) < 0.05, 999, meas.female)
-    meas.to_parquet(tmp_path / "m.parquet")
-    ev.to_parquet(tmp_path / "e.parquet")
-    (tmp_path / "s.toml").write_text(
-        'title = "t"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n'
-        'missing_by_column = { female = [999] }\n'
-        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n'
-        'quantity = "hba1c"\nunit = "%"\n'
-        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
-        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n'
-        '[covariates]\ncolumns = ["female"]\n[search]\ndiscover = false\n')
+    write_small(tmp_path / "s.toml", meas, ev, data='missing_by_column = { female = [999] }\n',
+                running='quantity = "hba1c"\nunit = "%"\n', tail='[covariates]\ncolumns = ["female"]\n')
     inside = scanner.scan(tmp_path / "s.toml")
     monkeypatch.setattr(Reg, "bin", lambda self, table, plan: None)
     stream = scanner.scan(tmp_path / "s.toml")

@@ -13,7 +13,7 @@ from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, scan_sql, view_sql
+from .sql import DIALECTS, analysis_steps, dropped_entries, dropped_sql, literal, scan_sql, view_sql
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -75,8 +75,17 @@ class Registry:
             self.build()
 
     def build(self) -> None:
-        """Create the analysis rows (a table in the private database)."""
-        self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb"))
+        """Create the analysis rows (a table in the private database).
+
+        Each step of the query is a table of its own: every join and aggregate then has the
+        whole memory limit and spills on its own, where one large query would hold several
+        join tables at once."""
+        steps, final = analysis_steps(self.lay, "duckdb")
+        for name, sel in steps:
+            self.con.execute(f"CREATE TABLE {name} AS {sel}")
+        self.con.execute("CREATE TABLE analysis AS " + final)
+        for name, _ in reversed(steps):
+            self.con.execute(f"DROP TABLE {name}")
         self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
             list(self.lay.treatments) + list(self.lay.covariates)
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]

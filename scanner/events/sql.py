@@ -134,8 +134,9 @@ def _bucket(day: str, span: int) -> str:
     return f"CAST(floor(({day}) / CAST({int(span)} AS DOUBLE)) AS BIGINT)"
 
 
-def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
-    """The query building the analysis rows of a long-format layout.
+def analysis_steps(lay: Layout, dialect: str = "duckdb") -> tuple[list, str]:
+    """The query building the analysis rows of a long-format layout, in steps: a list of
+    (name, SELECT) whose results later steps read by name, and the final SELECT.
 
     Events reach the index rows through one range join: ``evj`` holds each (person, day,
     uptake) once, with its bucket of ``hi - lo + 1`` days (the span every uptake window and
@@ -153,35 +154,35 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     lo = min(u.first_day for u in ups)
     hi = max(u.days[1] for u in ups)
     span = hi - lo + 1
-    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
-            f"idx AS {d.materialized}(SELECT *, {d.row_id()} AS _rid FROM idx0)",
-            f"evj AS (SELECT person, day, j, {_bucket('day', span)} AS bk FROM ("
-            "SELECT DISTINCT person, day, j FROM ("
-            "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
-            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x) y)",
-            # Each index row looks at days day+lo .. day+hi: at most two buckets of that span.
-            f"ib AS (SELECT i._rid, i.person, i.day, {_bucket(f'i.day + ({lo})', span)} + t.t AS bk "
-            "FROM idx i CROSS JOIN (SELECT 0 AS t UNION ALL SELECT 1 AS t) t)"]
+    idx0 = " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay))
+    ctes = [("idx", f"SELECT *, {d.row_id()} AS _rid FROM ({idx0}) i0"),
+            ("evj", f"SELECT person, day, j, {_bucket('day', span)} AS bk FROM ("
+             "SELECT DISTINCT person, day, j FROM ("
+             "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
+             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x) y")]
+    # Each index row looks at days day+lo .. day+hi: at most two buckets of that span.
+    ib = (f"(SELECT i._rid, i.person, i.day, {_bucket(f'i.day + ({lo})', span)} + t.t AS bk "
+          "FROM idx i CROSS JOIN (SELECT 0 AS t UNION ALL SELECT 1 AS t) t)")
     # Hits per (index row, uptake), then one BIGINT bit mask per 62 uptakes and index row.
     uw = " UNION ALL ".join(f"SELECT {j} AS j, {u.days[0]} AS a, {u.days[1]} AS b, "
                             f"{u.prior_days or 0} AS k" for j, u in enumerate(ups))
-    ctes.append(f"hl AS (SELECT i._rid, e.j, "
+    ctes.append(("hl", f"SELECT i._rid, e.j, "
                 f"max(CASE WHEN e.day BETWEEN i.day + w.a AND i.day + w.b THEN 1 ELSE 0 END) AS hit, "
                 f"max(CASE WHEN w.k > 0 AND e.day BETWEEN i.day - w.k AND i.day - 1 THEN 1 ELSE 0 END) "
-                f"AS prior FROM ib i JOIN evj e ON e.person = i.person AND e.bk = i.bk "
+                f"AS prior FROM {ib} i JOIN evj e ON e.person = i.person AND e.bk = i.bk "
                 f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) "
-                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j)")
+                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j"))
     masks = []
     for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
         sel = f"CASE WHEN j >= {g * MASK_BITS} AND j < {(g + 1) * MASK_BITS}"
         masks.append(f"bit_or({sel} AND hit = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS h{g}")
         masks.append(f"bit_or({sel} AND prior = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS p{g}")
-    ctes.append(f"hits AS (SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid)")
+    ctes.append(("hits", f"SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid"))
     observed = lay.periods or lay.omop
     if observed:
-        ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
-                    "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
-                    "GROUP BY i._rid)")
+        ctes.append(("cov", "SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
+                     "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
+                     "GROUP BY i._rid"))
     # Masks and observed-window flags once per row (a screen's uptakes share one window), then
     # one cheap bit test per uptake.
     windows = sorted({(u.first_day, u.days[1]) for u in ups})
@@ -205,8 +206,15 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
-    return ("WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM ("
-            f"SELECT {', '.join(inner)} FROM idx i{joins}) r")
+    return ctes, f"SELECT {', '.join(cols)} FROM (SELECT {', '.join(inner)} FROM idx i{joins}) r"
+
+
+def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
+    """:func:`analysis_steps` as one query (common table expressions), as Spark SQL runs it."""
+    d = DIALECTS[dialect]
+    steps, final = analysis_steps(lay, dialect)
+    return "WITH " + ",\n".join(f"{n} AS {d.materialized if n == 'idx' else ''}({sel})"
+                                 for n, sel in steps) + "\n" + final
 
 
 def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
