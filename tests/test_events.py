@@ -428,8 +428,12 @@ def test_bins_inside_duckdb_equal_streaming_pass(kw):
     try:
         plan = BinPlan(running=("hba1c", "ldl"), columns=("mtf", "any_late", "female"),
                        treatments=("mtf", "any_late"), **kw)
+        keep = {}
         got = bin_registry(lambda s: reg.con.execute(s).fetchnumpy(), lay, plan, None, "duckdb",
-                           "analysis")
+                           "analysis", keep)
+        # The drop counts taken in the same aggregate equal the registry's own query.
+        from scanner.events.sql import dropped_entries
+        assert dropped_entries(lay, keep["dropped_rows"]) == reg.dropped() != []
         cols = ["pid", "on", "hba1c", "ldl", "mtf", "any_late", "female"]
         want = bin_table(open_table(pa.Table.from_batches(list(reg.batches(cols, 100_000)))), plan)
         for r in ("hba1c", "ldl"):

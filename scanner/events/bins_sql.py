@@ -132,28 +132,31 @@ def column_exprs(lay, dialect: str) -> dict:
 
 
 def counts_sql(lay, plan, cl, dialect: str, table: str) -> tuple[str, list]:
-    """One aggregate over the kept rows: per running variable its own rows, missing and
-    infinite values after cleaning, and what each cleaning step did (codes, sentinels, range)."""
+    """One aggregate per running variable over all its rows: the drop counts of
+    :func:`scanner.events.sql.dropped_sql`, and among the kept rows the missing and infinite
+    values after cleaning and what each cleaning step did (codes, sentinels, range)."""
+    from .sql import dropped_parts
     cols = column_exprs(lay, dialect)
-    parts, cleaners = ["count(*) AS _rows"], []
+    parts, cleaners, xs = dropped_parts(lay), [], []
     for k, s in enumerate(lay.scores):
         if s.name not in plan.running:
             continue
         cr = Cleaner(s.name, cl)
-        x = f"(CASE WHEN _score = {k} THEN _x END)"
-        v = cr.stages(x)[2]
-        parts += [f"sum(CASE WHEN _score = {k} THEN 1 ELSE 0 END) AS own{k}",
-                  f"sum(CASE WHEN _score = {k} AND {_nan(v)} THEN 1 ELSE 0 END) AS nan{k}",
-                  f"sum(CASE WHEN _score = {k} AND NOT {_nan(v)} AND abs({v}) = "
-                  f"CAST('Infinity' AS DOUBLE) THEN 1 ELSE 0 END) AS inf{k}"]
+        xs.append(f"WHEN {k} THEN {cr.stages('_x')[2]}")
+        x = f"(CASE WHEN _noobs = 0 AND _score = {k} THEN _x END)"
         parts += [f"{agg} AS {alias}" for alias, agg in cr.counts(x, f"r{k}")]
         cleaners.append((cr, f"r{k}"))
+    v = f"(CASE _score {' '.join(xs)} END)" if xs else "CAST(NULL AS DOUBLE)"
+    parts += [f"sum(CASE WHEN _noobs = 0 AND {_nan(v)} THEN 1 ELSE 0 END) AS nan",
+              f"sum(CASE WHEN _noobs = 0 AND NOT {_nan(v)} AND abs({v}) = "
+              f"CAST('Infinity' AS DOUBLE) THEN 1 ELSE 0 END) AS inf"]
     for i, c in enumerate(plan.columns):
         if c in cols:
             cr = Cleaner(c, cl)
-            parts += [f"{agg} AS {alias}" for alias, agg in cr.counts(cols[c], f"c{i}")]
+            e = f"(CASE WHEN _noobs = 0 THEN {cols[c]} END)"
+            parts += [f"{agg} AS {alias}" for alias, agg in cr.counts(e, f"c{i}")]
             cleaners.append((cr, f"c{i}"))
-    return f"SELECT {', '.join(parts)} FROM {table} WHERE _noobs = 0", cleaners
+    return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score", cleaners
 
 
 def _period(lay, plan, dialect: str) -> str:
@@ -190,8 +193,10 @@ def rows_sql(lay, plan, cl, dialect: str, table: str) -> str:
     sel = ["_score AS s", f"CASE _score {xs} END AS x", f"{_period(lay, plan, dialect)} AS period",
            f"{_half(plan)} AS half"]
     for i, c in enumerate(plan.columns):
-        v = Cleaner(c, cl).stages(cols[c])[2]
-        sel.append(f"CASE WHEN {_finite(v)} THEN {v} END AS c{i}")
+        cr = Cleaner(c, cl)
+        v = cr.stages(cols[c])[2]
+        plain = c in lay.treatments and not (cr.codes or cr.sent or cr.range)
+        sel.append(f"{v} AS c{i}" if plain else f"CASE WHEN {_finite(v)} THEN {v} END AS c{i}")
     inner = f"SELECT {', '.join(sel)} FROM {table} WHERE _noobs = 0 AND _score IN ({ks})"
     return f"SELECT * FROM ({inner}) r0 WHERE {_finite('x')}"
 
@@ -231,11 +236,12 @@ def key_expr(grid_pd, forced) -> str:
     return f"CAST(k AS DOUBLE) + ({parts}) / {_num(grid.SUB)}", k
 
 
-def bins_sql(rows: str, keys: dict, n_cols: int) -> str:
+def bins_sql(rows: str, keys: dict, n_cols: int, binary=()) -> str:
     """GROUP BY (running variable, key, period, half) with the sums of BinnedStats.
 
     ``keys`` maps a running variable's number to its key expression (``"x"`` for exact bins, or
-    :func:`key_expr`).
+    :func:`key_expr`); columns numbered in ``binary`` are 0/1, so their Σy² is their Σy and is
+    not summed.
     """
     whens, ks = [], []
     for k, e in keys.items():
@@ -249,8 +255,9 @@ def bins_sql(rows: str, keys: dict, n_cols: int) -> str:
     keyed = f"SELECT *{kcol} FROM ({rows}) r"
     aggs = ["count(*) AS n", "sum(x) AS sx", "sum(x * x) AS sxx"]
     for i in range(n_cols):
-        aggs += [f"count(c{i}) AS cnt_{i}", f"coalesce(sum(c{i}), 0) AS s1_{i}",
-                 f"coalesce(sum(c{i} * c{i}), 0) AS s2_{i}"]
+        aggs += [f"count(c{i}) AS cnt_{i}", f"coalesce(sum(c{i}), 0) AS s1_{i}"]
+        if i not in binary:
+            aggs.append(f"coalesce(sum(c{i} * c{i}), 0) AS s2_{i}")
     return (f"SELECT s, key, period, half, {', '.join(aggs)} FROM ("
             f"SELECT *, CASE s {' '.join(whens)} END AS key FROM ({keyed}) r1) r2 "
             "GROUP BY s, key, period, half")
@@ -271,18 +278,20 @@ def stats_from(arrays: dict, template, n_cols: int):
     def mat(prefix, dtype=float):
         if n_cols == 0:
             return np.zeros((key.size, 0), dtype)
-        return np.column_stack([col(f"{prefix}_{i}", dtype) for i in range(n_cols)])
+        return np.column_stack([col(f"{prefix}_{i}" if f"{prefix}_{i}" in arrays else f"s1_{i}", dtype)
+                                for i in range(n_cols)])         # a 0/1 column: Σy² = Σy
     return replace(template, key=key[order], period=period[order], half=half[order],
                    n=col("n", np.int64), sx=col("sx"), sxx=col("sxx"), cnt=mat("cnt", np.int64),
                    s1=mat("s1"), s2=mat("s2"), pn=None)   # no pairs: sized by __post_init__
 
 
-def bin_registry(con_query, lay, plan, cl, dialect: str, table: str):
+def bin_registry(con_query, lay, plan, cl, dialect: str, table: str, keep: dict | None = None):
     """The binning pass of :mod:`scanner.engines` over the analysis rows, inside the engine.
 
     ``con_query(sql)`` runs a query and returns its result as a dict of numpy columns.  Returns a
     :class:`~scanner.engines.plan.BinResult`, or None when the plan needs what this path does
-    not compute (joint pair sums).
+    not compute (joint pair sums).  ``keep`` receives ``dropped_rows`` (the rows of
+    :func:`scanner.events.sql.dropped_sql`, from the same aggregate).
     """
     from ..bins import BinnedStats
     from ..engines.local import Accumulator
@@ -290,9 +299,18 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str):
     if plan.pairs:
         return None
     sql_counts, cleaners = counts_sql(lay, plan, cl, dialect, table)
-    got = {k: v[0] for k, v in con_query(sql_counts).items()}
+    per = con_query(sql_counts)
+    if keep is not None:
+        width = 3 + 2 * len(lay.uptakes)
+        names = list(per)[:width]
+        keep["dropped_rows"] = [tuple(per[c][i] for c in names) for i in range(len(per["_score"]))]
+    got = {k: np.nansum(np.asarray(v, float)) for k, v in per.items() if k != "_score"}
     for cr, tag in cleaners:
         cr.record(cl, got, tag)
+    own = dict.fromkeys(range(len(lay.scores)), 0)
+    own.update({int(k): int(n - m) for k, n, m in zip(per["_score"], per["n"], per["noobs"])})
+    nan = dict(zip(map(int, per["_score"]), map(int, per["nan"])))
+    inf = dict(zip(map(int, per["_score"]), map(int, per["inf"])))
     rows = rows_sql(lay, plan, cl, dialect, table)
     number = {s.name: k for k, s in enumerate(lay.scores)}
     dist = con_query(distinct_sql(rows))
@@ -326,7 +344,8 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str):
                                           grid.width_of(*acc.grid), 0.0, acc.forced)
     stats = {}
     if keys:
-        res = con_query(bins_sql(rows, keys, len(plan.columns)))
+        binary = {i for i, c in enumerate(plan.columns) if c in lay.treatments}
+        res = con_query(bins_sql(rows, keys, len(plan.columns), binary))
         s = np.asarray(res["s"], np.int64)
         for r in plan.running:
             k = number[r]
@@ -336,8 +355,7 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str):
                 accs[r].stats = stats_from(part, accs[r].template, len(plan.columns))
     for r in plan.running:
         stats[r] = accs[r].finish().validate()
-    rows_read = int(got["_rows"])
-    missing = {r: rows_read - int(got[f"own{number[r]}"] or 0) + int(got[f"nan{number[r]}"] or 0)
-               for r in plan.running}
-    nonfinite = {r: int(got[f"inf{number[r]}"] or 0) for r in plan.running}
+    rows_read = sum(own.values())
+    missing = {r: rows_read - own[number[r]] + nan.get(number[r], 0) for r in plan.running}
+    nonfinite = {r: inf.get(number[r], 0) for r in plan.running}
     return BinResult(stats, rows_read, missing, nonfinite)

@@ -56,6 +56,7 @@ class Registry:
     def __init__(self, lay: Layout, base: Path, data: dict | None = None, build: bool = True):
         import duckdb
         self.lay = lay
+        self._counts: dict = {}
         self._tmp = tempfile.TemporaryDirectory(prefix="cutscan-duckdb-")
         # A database file in a private temporary folder: the analysis rows may exceed memory,
         # and every batch reader gets its own cursor on the same database.
@@ -117,10 +118,13 @@ class Registry:
             con.execute(f"CREATE VIEW {name} AS {sel}")
 
     limit = None        # at most this many rows from batches() (the data-quality profile)
+    last_score = None   # and only rows of running variables up to this number
 
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
         sql = scan_sql(self.lay, "duckdb", "analysis", cols)
+        if self.last_score is not None:
+            sql = sql.replace("WHERE _noobs = 0", f"WHERE _noobs = 0 AND _score <= {int(self.last_score)}")
         if self.limit is not None:
             sql += f" LIMIT {int(self.limit)}"
         reader = self.con.cursor().sql(sql).to_arrow_reader(rows)
@@ -139,7 +143,7 @@ class Registry:
         if cl is not None and cl.planner is not None and not cl.planned:
             self._profile(table, cl)
         return bin_registry(lambda sql: self.con.execute(sql).fetchnumpy(), self.lay, plan, cl,
-                            "duckdb", "analysis")
+                            "duckdb", "analysis", self._counts)
 
     def _profile(self, table, cl) -> None:
         """Run the cleaning's profile on the first ``cl.profile_rows`` rows of the scan order,
@@ -148,6 +152,16 @@ class Registry:
         names = ("coded", "mapped", "sentinel_hits", "converted", "unit_missing", "out_of_range",
                  "watched")
         saved = {n: copy.deepcopy(getattr(cl, n)) for n in names}
+        # The rows come in the order (score, person, day): the scores whose rows cannot be among
+        # the first profile_rows are left out before sorting.
+        per = self.con.execute("SELECT _score, count(*) FROM analysis WHERE _noobs = 0 "
+                               "GROUP BY _score ORDER BY _score").fetchall()
+        before, self.last_score = 0, None
+        for k, n in per:
+            self.last_score = k
+            before += n
+            if before >= cl.profile_rows:
+                break
         self.limit = cl.profile_rows
         try:
             it = table.batches(list(cl.profile_columns), cl.profile_rows)
@@ -157,15 +171,19 @@ class Registry:
                 cl.planned = True
                 cl.planner({c: np.zeros(0) for c in cl.profile_columns})
         finally:
-            self.limit = None
+            self.limit = self.last_score = None
             for n, v in saved.items():
                 d = getattr(cl, n)
                 d.clear()
                 d.update(v)
 
     def dropped(self) -> list[dict]:
-        """Rows left out, per running variable (and uptake): ``data.dropped`` entries."""
-        return dropped_entries(self.lay, self.con.execute(dropped_sql(self.lay)).fetchall())
+        """Rows left out, per running variable (and uptake): ``data.dropped`` entries (counted
+        by the binning aggregate when it ran)."""
+        rows = self._counts.get("dropped_rows")
+        if rows is None:
+            rows = self.con.execute(dropped_sql(self.lay)).fetchall()
+        return dropped_entries(self.lay, rows)
 
     def index_rows(self) -> dict:
         """Index rows per running variable (before observed-time drops)."""

@@ -309,11 +309,17 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
 def dropped_sql(lay: Layout, table: str = "analysis") -> str:
     """One aggregate over the analysis rows: per running variable, the rows dropped whole and,
     per uptake, those with earlier use and those whose window was not observed."""
+    return f"SELECT {', '.join(dropped_parts(lay))} FROM {table} GROUP BY _score ORDER BY _score"
+
+
+def dropped_parts(lay: Layout) -> list[str]:
+    """The select list of :func:`dropped_sql` (score, rows, rows dropped whole, then per uptake
+    earlier use and unobserved window)."""
     parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
     for j in range(len(lay.uptakes)):
         parts += [f"sum(CASE WHEN _noobs = 0 AND _u{j} = {PRIOR} THEN 1 ELSE 0 END) AS p{j}",
                   f"sum(CASE WHEN _noobs = 0 AND _u{j} = {UNSEEN} THEN 1 ELSE 0 END) AS w{j}"]
-    return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score"
+    return parts
 
 
 def dropped_entries(lay: Layout, rows) -> list[dict]:
