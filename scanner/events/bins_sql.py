@@ -119,14 +119,11 @@ class Cleaner:
             cl.out_of_range[self.name] = cl.out_of_range.get(self.name, 0) + int(got[f"{tag}_oor"] or 0)
 
 
-def _uptake_expr(j: int) -> str:
-    return f"CASE WHEN _u{j} < 2 THEN CAST(_u{j} AS DOUBLE) END"
-
-
 def column_exprs(lay, dialect: str) -> dict:
     """Raw SQL value of each analysis column the scan tracks (uptakes 0/1/NULL, covariates)."""
     q = DIALECTS[dialect].q
-    out = {u.name: _uptake_expr(j) for j, u in enumerate(lay.uptakes)}
+    from .sql import uptake_value
+    out = {u.name: uptake_value(lay, j, dialect) for j, u in enumerate(lay.uptakes)}
     out.update({c: f"CAST({q(c)} AS DOUBLE)" for c in lay.covariates})
     return out
 
@@ -137,7 +134,7 @@ def counts_sql(lay, plan, cl, dialect: str, table: str) -> tuple[str, list]:
     values after cleaning and what each cleaning step did (codes, sentinels, range)."""
     from .sql import dropped_parts
     cols = column_exprs(lay, dialect)
-    parts, cleaners, xs = dropped_parts(lay), [], []
+    parts, cleaners, xs = dropped_parts(lay, dialect), [], []
     for k, s in enumerate(lay.scores):
         if s.name not in plan.running:
             continue

@@ -8,10 +8,10 @@ string-type expressions differ (:data:`DIALECTS`).  The semantics are documented
 
 The query reads three relations the runner registers: ``meas`` (measurement rows), ``ev``
 (event rows) and, with observed time, ``obs`` (person, period start, period end).  Its result
-has one row per index row: the person, the index date, one column per running variable (the
-value on that variable's own index rows, NULL on the others), one 0/1/NULL column per uptake,
-the covariates, and ``_score`` (which running variable the row belongs to) and the flags the
-drop counts are computed from.
+(the compact analysis table) has one row per index row: the person, the index day, the value
+``_x`` of the running variable numbered ``_score``, the uptakes as bit masks of hits and of
+earlier use with one observed-window flag per distinct window, the covariates and ``_noobs``
+(index day outside observed time).  :func:`scan_sql` turns it into the rows the scan reads.
 """
 from __future__ import annotations
 
@@ -183,30 +183,44 @@ def analysis_steps(lay: Layout, dialect: str = "duckdb") -> tuple[list, str]:
         ctes.append(("cov", "SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
                      "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
                      "GROUP BY i._rid"))
-    # Masks and observed-window flags once per row (a screen's uptakes share one window), then
-    # one cheap bit test per uptake.
-    windows = sorted({(u.first_day, u.days[1]) for u in ups})
-    inner = ["i._score", "i._rid", "i.person", "i.day", "i.x"] + [f"i.{q(c)}" for c in lay.covariates]
+    # The table keeps the bit masks and one observed-window flag per distinct window (a screen's
+    # uptakes share one), not a column per uptake: writing a thousand-pair screen's status
+    # columns cost more than the reads that decode them (uptake_parts).
+    inner = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
     for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
         inner += [f"coalesce(h.h{g}, 0) AS _h{g}", f"coalesce(h.p{g}, 0) AS _p{g}"]
-    for m, (f0, b) in enumerate(windows):
+    for m, (f0, b) in enumerate(windows(lay)):
         seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({f0}) AND c.p1 >= i.day + ({b}))"
                 if observed else "TRUE")
-        inner.append(f"CASE WHEN {seen} THEN 1 ELSE 0 END AS _s{m}")
+        inner.append(f"CAST(CASE WHEN {seen} THEN 1 ELSE 0 END AS TINYINT) AS _s{m}")
     inner.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
-    cols = ["_score", "_rid", "person AS _person", "day AS _day", "x AS _x"]
-    for j, u in enumerate(ups):
-        m = windows.index((u.first_day, u.days[1]))
-        g, k = divmod(j, MASK_BITS)
-        prior = f"{d.bit(f'_p{g}', k)} = 1" if u.prior_days else "FALSE"
-        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN _s{m} = 0 THEN {UNSEEN} "
-                    f"ELSE {d.bit(f'_h{g}', k)} END AS TINYINT) AS _u{j}")
-    cols.append("_noobs")
-    cols += [q(c) for c in lay.covariates]
+    inner += [f"i.{q(c)}" for c in lay.covariates]
     joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
-    return ctes, f"SELECT {', '.join(cols)} FROM (SELECT {', '.join(inner)} FROM idx i{joins}) r"
+    return ctes, f"SELECT {', '.join(inner)} FROM idx i{joins}"
+
+
+def windows(lay: Layout) -> list:
+    """Distinct (first day, last day) every uptake looks at, relative to the index date."""
+    return sorted({(u.first_day, u.days[1]) for u in lay.uptakes})
+
+
+def uptake_parts(lay: Layout, j: int, dialect: str = "duckdb") -> tuple[str, str, str]:
+    """(earlier use, window not observed, hit) of uptake ``j`` as conditions/0-1 expressions
+    over the compact analysis table."""
+    d = DIALECTS[dialect]
+    u = lay.uptakes[j]
+    g, k = divmod(j, MASK_BITS)
+    prior = f"{d.bit(f'_p{g}', k)} = 1" if u.prior_days else "FALSE"
+    unseen = f"_s{windows(lay).index((u.first_day, u.days[1]))} = 0"
+    return prior, unseen, d.bit(f"_h{g}", k)
+
+
+def uptake_value(lay: Layout, j: int, dialect: str = "duckdb") -> str:
+    """Uptake ``j`` as the scan sees it: 0/1, NULL after earlier use or an unobserved window."""
+    prior, unseen, hit = uptake_parts(lay, j, dialect)
+    return f"CASE WHEN {prior} OR {unseen} THEN NULL ELSE CAST({hit} AS DOUBLE) END"
 
 
 def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
@@ -221,22 +235,20 @@ def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
     """The analysis rows as the scan reads them, from the compact table of :func:`analysis_sql`.
 
     The compact table holds one value column for all running variables (``_x`` with the
-    running variable's number in ``_score``) and one small status code per uptake (0/1, or
-    earlier use, or window not observed); here they become one column per running variable
+    running variable's number in ``_score``) and the uptakes as bit masks of hits and earlier
+    use with observed-window flags (:func:`uptake_parts`); here they become one column per running variable
     (NULL on the other variables' rows) and 0/1/NULL uptakes, for the kept rows in a fixed order.
     ``columns`` picks and orders the output columns (default: all).
     """
     q = DIALECTS[dialect].q
     expr = {lay.person: "_person", lay.date: DIALECTS[dialect].from_day("_day")}
     expr.update({s.name: f"CASE WHEN _score = {k} THEN _x END" for k, s in enumerate(lay.scores)})
-    expr.update({u.name: f"CASE WHEN _u{j} < 2 THEN CAST(_u{j} AS DOUBLE) END"
-                 for j, u in enumerate(lay.uptakes)})
+    expr.update({u.name: uptake_value(lay, j, dialect) for j, u in enumerate(lay.uptakes)})
     expr.update({c: q(c) for c in lay.covariates})
     cols = ", ".join(f"{expr[c]} AS {q(c)}" for c in (columns or expr))
     return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _score, _person, _day"
 
 
-PRIOR, UNSEEN = 2, 3        # uptake status codes besides 0/1
 MASK_BITS = 62              # uptakes per BIGINT bit mask (sign bit and one spare left alone)
 
 
@@ -306,19 +318,20 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
 
 
 
-def dropped_sql(lay: Layout, table: str = "analysis") -> str:
+def dropped_sql(lay: Layout, table: str = "analysis", dialect: str = "duckdb") -> str:
     """One aggregate over the analysis rows: per running variable, the rows dropped whole and,
     per uptake, those with earlier use and those whose window was not observed."""
-    return f"SELECT {', '.join(dropped_parts(lay))} FROM {table} GROUP BY _score ORDER BY _score"
+    return f"SELECT {', '.join(dropped_parts(lay, dialect))} FROM {table} GROUP BY _score ORDER BY _score"
 
 
-def dropped_parts(lay: Layout) -> list[str]:
+def dropped_parts(lay: Layout, dialect: str = "duckdb") -> list[str]:
     """The select list of :func:`dropped_sql` (score, rows, rows dropped whole, then per uptake
     earlier use and unobserved window)."""
     parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
     for j in range(len(lay.uptakes)):
-        parts += [f"sum(CASE WHEN _noobs = 0 AND _u{j} = {PRIOR} THEN 1 ELSE 0 END) AS p{j}",
-                  f"sum(CASE WHEN _noobs = 0 AND _u{j} = {UNSEEN} THEN 1 ELSE 0 END) AS w{j}"]
+        prior, unseen, _ = uptake_parts(lay, j, dialect)
+        parts += [f"sum(CASE WHEN _noobs = 0 AND {prior} THEN 1 ELSE 0 END) AS p{j}",
+                  f"sum(CASE WHEN _noobs = 0 AND NOT ({prior}) AND {unseen} THEN 1 ELSE 0 END) AS w{j}"]
     return parts
 
 
