@@ -71,8 +71,40 @@ def _cpu() -> float:
     return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
-def run_child(folder: str, which: str) -> None:
+def _phases() -> dict:
+    """Wrap the scan's steps to add up their wall and CPU time (``--phases``)."""
+    import functools
+    import importlib
+    import scanner.events.duck as duck
+    import scanner.events.screen as screen
+    scan_mod = importlib.import_module("scanner.scan")
+    took: dict = {}
+
+    def wrap(owner, name, label):
+        f = getattr(owner, name)
+
+        @functools.wraps(f)
+        def timed(*a, **k):
+            t, c = time.perf_counter(), _cpu()
+            try:
+                return f(*a, **k)
+            finally:
+                w0, c0 = took.get(label, (0.0, 0.0))
+                took[label] = (w0 + time.perf_counter() - t, c0 + _cpu() - c)
+        setattr(owner, name, timed)
+    for owner, name, label in ((screen, "expand", "kinds and codes"),
+                               (scan_mod, "open_for_scan", "analysis rows"),
+                               (duck.Registry, "bin", "bins in DuckDB"),
+                               (screen, "first_stage", "stage 1"),
+                               (scan_mod, "evaluate_all", "stage 2"),
+                               (scan_mod, "discovery_step", "discovery")):
+        wrap(owner, name, label)
+    return took
+
+
+def run_child(folder: str, which: str, phases: bool = False) -> None:
     import scanner
+    took = _phases() if phases else {}
     spec = Path(folder) / f"bench_{which}.toml"
     spec.write_text(SCREEN if which == "screen" else PAIR)
     load0 = os.getloadavg()[0]
@@ -85,7 +117,7 @@ def run_child(folder: str, which: str) -> None:
     # workers; peak RSS of this process and of the largest worker (which shares its pages).
     print(json.dumps({"wall": wall, "cpu": cpu, "load": [load0, os.getloadavg()[0]],
                       "peak_mb": peak_rss_mb(), "child_mb": child_peak_rss_mb(),
-                      "candidates": len(res.rows),
+                      "phases": took, "candidates": len(res.rows),
                       "pairs": len(s.get("pairs", [])) or 1,
                       "stage1": sum(p["tested"] for p in s.get("pairs", [])),
                       "index_rows": sum(x["rows"] for x in res.data.get("index_rows", []))}))
@@ -95,9 +127,11 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--persons", type=int, default=1_000_000)
     ap.add_argument("--child", nargs=2)
+    ap.add_argument("--phases", action="store_true",
+                    help="time the screen's steps (wall and CPU of this process and its workers)")
     a = ap.parse_args()
     if a.child:
-        return run_child(*a.child)
+        return run_child(*a.child, phases=a.phases)
     folder = data(a.persons)
     import pyarrow.parquet as pq
     n_m = pq.ParquetFile(folder / "lab_results.parquet").metadata.num_rows
@@ -107,14 +141,20 @@ def main() -> None:
              "| run | pairs | stage-1 tests | index rows | candidates | wall (s) | CPU (s) | "
              "load (start → end) | peak RSS (MB) | worker peak RSS (MB) |",
              "|---|---:|---:|---:|---:|---:|---:|---|---:|---:|"]
+    steps = []
     for which in ("pair", "screen"):
-        r = child(Path(__file__), folder, which)
+        r = child(Path(__file__), folder, which, *(["--phases"] if a.phases else []))
+        if which == "screen":
+            steps = [f"{k} {w:.1f} s wall / {c:.1f} s CPU" for k, (w, c) in r["phases"].items()]
         lines.append(f"| {which} | {r['pairs']:,} | {r['stage1']:,} | {r['index_rows']:,} | "
                      f"{r['candidates']:,} | {r['wall']:.1f} | {r['cpu']:.1f} | "
                      f"{r['load'][0]:.1f} → {r['load'][1]:.1f} | {r['peak_mb']:.0f} | "
                      f"{r['child_mb']:.0f} |")
+    if steps:
+        lines += ["", "Screen steps: " + "; ".join(steps) + "."]
     lines += ["", "Command: `python benchmarks/bench_events.py --persons "
-              f"{a.persons}` (DuckDB builds the analysis rows; defaults on)."]
+              f"{a.persons}{' --phases' if a.phases else ''}` (DuckDB builds the analysis rows "
+              "and their bins; defaults on)."]
     publish("events", lines)
 
 
