@@ -203,7 +203,11 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     if spec.keep == "first" and engine == "local":
         table, deduped, no_unit = keep_first(table, spec, plan.needed)
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
-    binned = bin_table(table, plan, engine=engine, progress=tick)
+    registry = getattr(table, "registry", None)
+    # Long-format registries: the bins are GROUP BY sums inside DuckDB (scanner.events.bins_sql).
+    binned = registry.bin(table, plan) if registry is not None and engine == "local" else None
+    if binned is None:
+        binned = bin_table(table, plan, engine=engine, progress=tick)
     for r in spec.running:
         if binned.stats[r.column].total == 0:
             raise InputError(f"{getattr(table, 'name', 'table')}: running variable '{r.column}' "

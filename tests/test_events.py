@@ -171,6 +171,18 @@ def test_missing_column_is_named(tmp_path):
         Registry(lay, tmp_path, {"meas": meas, "events": ev})
 
 
+def write_small(spec, meas, ev, data="", running="", tail=""):
+    """Write measurements, events and a one-score, one-uptake spec (extra lines per table)."""
+    meas.to_parquet(spec.parent / "m.parquet")
+    ev.to_parquet(spec.parent / "e.parquet")
+    spec.write_text(
+        'title = "long"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n' + data +
+        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n' + running +
+        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
+        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n' + tail +
+        '[search]\ndiscover = false\n')
+
+
 def test_scan_end_to_end_finds_planted_jump(tmp_path):
     """A planted uptake jump of 0.5 at HbA1c 6.5 % in the long layout is found and usable."""
     rng = np.random.default_rng(7)
@@ -182,14 +194,7 @@ def test_scan_end_to_end_finds_planted_jump(tmp_path):
     took = rng.random(n) < p
     ev = pd.DataFrame({"pid": meas.pid[took], "when": meas.on[took] + pd.to_timedelta(
         rng.integers(0, 170, took.sum()), "D"), "code": "MTF"})
-    meas.to_parquet(tmp_path / "m.parquet")
-    ev.to_parquet(tmp_path / "e.parquet")
-    (tmp_path / "spec.toml").write_text(
-        'title = "long"\n[data]\nsource = "m.parquet"\nperson = "pid"\ndate = "on"\n'
-        '[[running]]\nname = "hba1c"\ncolumn = "value"\nwhere = { test = "HBA1C" }\n'
-        '[events]\nsource = "e.parquet"\ndate = "when"\ncode = "code"\n'
-        '[[events.uptake]]\nname = "mtf"\ncodes = ["MTF"]\ndays = [0, 180]\n'
-        '[search]\ndiscover = false\n')
+    write_small(tmp_path / "spec.toml", meas, ev)
     out = run_cli("scan", tmp_path / "spec.toml", "--out", tmp_path / "out")
     assert out.returncode == 0, out.stderr
     import json
@@ -319,6 +324,20 @@ def test_spark_sql_equals_duckdb(tmp_path):
         s2 = bin_table(sp.frame, plan, engine="spark").stats["hba1c"]
         from .test_engines import assert_same_stats
         assert_same_stats(s1, s2)
+        # The in-engine binning SQL is portable: run as Spark SQL it gives DuckDB's bins.
+        from scanner.events.bins_sql import bin_registry
+        plan = BinPlan(running=("hba1c",), columns=("mtf", "any_late", "female"),
+                       treatments=("mtf", "any_late"), date="on", split_seed=7, split_unit="pid",
+                       edges={"hba1c": ((6.5, True),)}, max_exact=20, max_bins=10)
+
+        def spark_query(sql):
+            df = spark.sql(sql).toPandas()
+            return {c: df[c].to_numpy() for c in df.columns}
+        a = bin_registry(lambda q: duck.con.execute(q).fetchnumpy(), lay, plan, None, "duckdb", "analysis")
+        b = bin_registry(spark_query, lay, plan, None, "spark", "_analysis")
+        assert a.stats["hba1c"].kind == "width" and (a.stats["hba1c"].half >= 0).all()
+        assert_same_stats(a.stats["hba1c"], b.stats["hba1c"])
+        assert (a.rows_read, a.missing) == (b.rows_read, b.missing)
         sp.close()
     finally:
         duck.close()
@@ -381,3 +400,139 @@ def test_cli_long_demo(tmp_path):
     assert {"treated before", "window not observed"} <= reasons
     assert sorted(p.name for p in (tmp_path / "o" / "input").glob("*.parquet")) == [
         "dispensing.parquet", "enrolment.parquet", "lab_results.parquet"]
+
+
+# ---------------------------------------------------------------- bins inside the engine
+def _two_scores(n=1500, seed=5):
+    """The test registry with a second, continuous running variable (LDL + uniform noise), so
+    one design has exact bins and the other crosses the fine-key limit."""
+    meas, ev, periods = registry(seed=seed, n=n)
+    noise = np.random.default_rng(1).random(len(meas))
+    meas["value"] = np.where(meas.test == "LDL", meas.value + noise, meas.value)
+    raw = {**SPEC, "running": SPEC["running"] + [{"name": "ldl", "column": "value",
+                                                  "where": {"test": "LDL"}}],
+           "data": {**SPEC["data"], "periods": "p.parquet", "period_start": "start",
+                    "period_end": "end"}}
+    lay = parse_layout(raw, "<t>", ("female",))
+    return meas, ev, periods, lay
+
+
+BIN_PLANS = {
+    "exact": {},
+    "quarters": {"date": "on"},
+    "years and quarters": {"date": "on", "periods": {"hba1c": "year"}},
+    "power grid, forced edges": {"fine_keys": 50, "max_exact": 40, "max_bins": 30,
+                                 "edges": {"ldl": ((6.55, True), (7.0, False)),
+                                           "hba1c": ((6.5, True),)}},
+    "user width": {"bin_width": {"hba1c": 0.3}, "edges": {"hba1c": ((6.5, True),)}},
+}
+
+
+@pytest.mark.parametrize("kw", list(BIN_PLANS.values()), ids=list(BIN_PLANS))
+def test_bins_inside_duckdb_equal_streaming_pass(kw):
+    """GROUP BY sums in DuckDB give the BinnedStats of streaming the same rows through the
+    local engine (exact support, power-of-ten grid with forced edges, a user width, period
+    keys): counts and keys exactly, sums to 1e-9; row accounting equal."""
+    from scanner.engines import BinPlan, bin_table
+    from scanner.events.bins_sql import bin_registry
+    from scanner.io import open_table
+    from .test_engines import assert_same_stats
+    meas, ev, periods, lay = _two_scores()
+    reg = Registry(lay, __import__("pathlib").Path("."), {"meas": meas, "events": ev, "periods": periods})
+    try:
+        plan = BinPlan(running=("hba1c", "ldl"), columns=("mtf", "any_late", "female"),
+                       treatments=("mtf", "any_late"), **kw)
+        keep = {}
+        got = bin_registry(lambda s: reg.con.execute(s).fetchnumpy(), lay, plan, None, "duckdb",
+                           "analysis", keep)
+        # The drop counts taken in the same aggregate equal the registry's own query.
+        from scanner.events.sql import dropped_entries
+        assert dropped_entries(lay, keep["dropped_rows"]) == reg.dropped() != []
+        cols = ["pid", "on", "hba1c", "ldl", "mtf", "any_late", "female"]
+        want = bin_table(open_table(pa.Table.from_batches(list(reg.batches(cols, 100_000)))), plan)
+        for r in ("hba1c", "ldl"):
+            assert_same_stats(got.stats[r], want.stats[r])
+        assert got.rows_read == want.rows_read and got.missing == want.missing
+        assert got.nonfinite == want.nonfinite
+        if "fine_keys" in kw:      # the continuous score went through the power-of-ten grid
+            assert got.stats["ldl"].kind == "width" and got.stats["ldl"].n_bins <= 30 + 2
+    finally:
+        reg.close()
+
+
+def test_halves_inside_duckdb_follow_person_hash():
+    """With a half-sample seed, each half's bins equal exact bins of the pandas reference rows
+    of the persons whose md5('<seed>:<person>') ends in an odd (half 1) or even hex digit."""
+    from scanner.engines import BinPlan
+    from scanner.engines.local import exact_bins
+    from scanner.events.bins_sql import bin_registry, person_half
+    from .test_engines import assert_same_stats
+    meas, ev, periods = registry(seed=4, n=800)
+    want, _ = reference(meas, ev, periods, "first", True)
+    lay = parse_layout({**SPEC, "data": {**SPEC["data"], "periods": "p.parquet",
+                                         "period_start": "start", "period_end": "end"}},
+                       "<t>", ("female",))
+    reg = Registry(lay, __import__("pathlib").Path("."), {"meas": meas, "events": ev, "periods": periods})
+    try:
+        plan = BinPlan(running=("hba1c",), columns=("mtf", "any_late", "female"),
+                       treatments=("mtf", "any_late"), split_seed=20261203, split_unit="pid")
+        st = bin_registry(lambda s: reg.con.execute(s).fetchnumpy(), lay, plan, None, "duckdb",
+                          "analysis").stats["hba1c"]
+    finally:
+        reg.close()
+    half = np.array([person_half(p, 20261203) for p in want.pid])
+    assert 0.4 < half.mean() < 0.6
+    cols = {c: want[c].to_numpy(float) for c in ("mtf", "any_late", "female")}
+    ref = exact_bins("hba1c", want.value.to_numpy(float), cols, half=half)
+    for h in (0, 1):
+        assert_same_stats(st.restrict(half=h), ref.restrict(half=h))
+    assert person_half("a", 1) != person_half("a", 2) or person_half("b", 1) != person_half("b", 2)
+
+
+def test_scan_bins_in_duckdb_equal_streaming_with_cleaning(tmp_path, monkeypatch):
+    """A whole scan with a declared missing code (999 on a covariate) and a sentinel spike
+    (999.0 HbA1c, outside the plausible range, found by the profile): the in-DuckDB bins, the
+    cleaning counts and the warnings equal those of the streaming pass."""
+    import scanner
+    from scanner.events.duck import Registry as Reg
+    from .test_engines import assert_same_stats
+    meas, ev, periods = registry(seed=8, n=3000)
+    rng = np.random.default_rng(2)
+    meas.loc[rng.random(len(meas)) < 0.03, "value"] = 999.0
+    meas["female"] = np.where(rng.random(len(meas)) < 0.05, 999, meas.female)
+    write_small(tmp_path / "s.toml", meas, ev, data='missing_by_column = { female = [999] }\n',
+                running='quantity = "hba1c"\nunit = "%"\n', tail='[covariates]\ncolumns = ["female"]\n')
+    inside = scanner.scan(tmp_path / "s.toml")
+    monkeypatch.setattr(Reg, "bin", lambda self, table, plan: None)
+    stream = scanner.scan(tmp_path / "s.toml")
+    assert_same_stats(inside.stats["hba1c"], stream.stats["hba1c"])
+    assert inside.data == stream.data
+    assert inside.warnings == stream.warnings
+    kinds = {w["kind"] for w in inside.warnings}
+    assert "sentinel_values" in kinds, kinds
+    assert inside.data["missing_codes"][0]["values"] > 50          # the code was counted
+    assert [d["rows"] for d in inside.data["dropped"] if "plausible" in d["reason"]][0] > 20
+
+
+def test_stage_one_p_values_same_in_two_processes():
+    """Stage 1 shared among two forked processes gives the p-values of one process, in order;
+    the planted jump (0.5 uptake at 6.5) has a tiny p-value and a no-jump cutoff does not."""
+    from scanner.candidates import Candidate
+    from scanner.engines.local import exact_bins
+    from scanner.events.screen import stage_one_ps
+    from scanner.spec import parse_spec
+    rng = np.random.default_rng(12)
+    n = 8000
+    x = np.round(rng.normal(6.4, 0.6, n), 1)
+    d = (rng.random(n) < np.where(x >= 6.5, 0.6, 0.1)).astype(float)
+    z = (rng.random(n) < 0.3).astype(float)
+    st = exact_bins("hba1c", x, {"mtf": d, "other": z})
+    spec = parse_spec({"data": {"source": "x.parquet"}, "running": [{"column": "hba1c"}],
+                       "treatments": {"columns": ["mtf", "other"]}})
+    cands = [Candidate("hba1c", t, c, "round") for c in (5.8, 6.0, 6.2, 6.5, 6.8, 7.0) * 4
+             for t in ("mtf", "other")]
+    one = stage_one_ps(cands, {"hba1c": st}, spec, workers=1)
+    two = stage_one_ps(cands, {"hba1c": st}, spec, workers=2)
+    np.testing.assert_array_equal(one, two)
+    assert one[cands.index(Candidate("hba1c", "mtf", 6.5, "round"))] < 1e-12
+    assert np.isfinite(one).all() and (one > 0.01).sum() > len(one) / 3

@@ -47,7 +47,11 @@ def _draw(rng, n, mean, sd, dec):
 
 def generate(n_persons: int = 60_000, seed: int = 11, extra_tests: int = 0, extra_codes: int = 0,
              visits: float = 2.5, noise_events: int | None = None):
-    """Measurements, events and enrolment periods (pandas DataFrames) with planted truth."""
+    """Measurements, events and enrolment periods (pandas DataFrames) with planted truth.
+
+    ``noise_events``: the exact number of noise events, all inside the ten years (default: a
+    number scaled with the event codes, of which those falling outside are dropped).
+    """
     rng = np.random.default_rng(seed)
     pid = np.arange(n_persons)
     start = rng.integers(0, 5 * 365, n_persons)
@@ -85,7 +89,12 @@ def generate(n_persons: int = 60_000, seed: int = 11, extra_tests: int = 0, extr
     codes = ["NM-MTF", "NM-STAT", "NM-RENAL"] + [f"RX{k:03d}" for k in range(extra_codes)]
     n_noise = int(n_persons * (1 + 0.15 * extra_codes)) if noise_events is None else noise_events
     p = rng.integers(0, n_persons, n_noise)
-    e_parts.append(pd.DataFrame({"person_id": p, "day": start[p] + rng.integers(-200, 3000, n_noise),
+    if noise_events is None:
+        day = start[p] + rng.integers(-200, 3000, n_noise)
+    else:   # an exact count: days drawn inside the ten years, so none is dropped below
+        lo, hi = np.maximum(start[p] - 200, 0), np.minimum(start[p] + 3000, END_DAYS)
+        day = lo + (rng.random(n_noise) * (hi - lo + 1)).astype(np.int64)
+    e_parts.append(pd.DataFrame({"person_id": p, "day": day,
                                  "code": rng.choice(codes[3:] or codes, n_noise)}))
     meas = pd.concat(m_parts, ignore_index=True)
     ev = pd.concat(e_parts, ignore_index=True)

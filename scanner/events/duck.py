@@ -7,11 +7,13 @@ through the usual binning pass.  Drop counts are one aggregate query over the sa
 from __future__ import annotations
 
 import tempfile
+
+import numpy as np
 from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_sql, dropped_entries, dropped_sql, literal, scan_sql, view_sql
+from .sql import DIALECTS, analysis_steps, dropped_entries, dropped_sql, literal, scan_sql, view_sql
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -54,6 +56,7 @@ class Registry:
     def __init__(self, lay: Layout, base: Path, data: dict | None = None, build: bool = True):
         import duckdb
         self.lay = lay
+        self._counts: dict = {}
         self._tmp = tempfile.TemporaryDirectory(prefix="cutscan-duckdb-")
         # A database file in a private temporary folder: the analysis rows may exceed memory,
         # and every batch reader gets its own cursor on the same database.
@@ -73,8 +76,17 @@ class Registry:
             self.build()
 
     def build(self) -> None:
-        """Create the analysis rows (a table in the private database)."""
-        self.con.execute("CREATE TABLE analysis AS " + analysis_sql(self.lay, "duckdb"))
+        """Create the analysis rows (a table in the private database).
+
+        Each step of the query is a table of its own: every join and aggregate then has the
+        whole memory limit and spills on its own, where one large query would hold several
+        join tables at once."""
+        steps, final = analysis_steps(self.lay, "duckdb")
+        for name, sel in steps:
+            self.con.execute(f"CREATE TABLE {name} AS {sel}")
+        self.con.execute("CREATE TABLE analysis AS " + final)
+        for name, _ in reversed(steps):
+            self.con.execute(f"DROP TABLE {name}")
         self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
             list(self.lay.treatments) + list(self.lay.covariates)
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
@@ -105,15 +117,73 @@ class Registry:
         for name, sel in view_sql(lay, "duckdb", rels).items():
             con.execute(f"CREATE VIEW {name} AS {sel}")
 
+    limit = None        # at most this many rows from batches() (the data-quality profile)
+    last_score = None   # and only rows of running variables up to this number
+
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
-        reader = self.con.cursor().sql(scan_sql(self.lay, "duckdb", "analysis", cols)
-                                       ).to_arrow_reader(rows)
+        sql = scan_sql(self.lay, "duckdb", "analysis", cols)
+        if self.last_score is not None:
+            sql = sql.replace("WHERE _noobs = 0", f"WHERE _noobs = 0 AND _score <= {int(self.last_score)}")
+        if self.limit is not None:
+            sql += f" LIMIT {int(self.limit)}"
+        reader = self.con.cursor().sql(sql).to_arrow_reader(rows)
         yield from reader
 
+    def bin(self, table, plan):
+        """The binning pass inside DuckDB (:mod:`scanner.events.bins_sql`): only per-bin sums
+        leave the database.  ``table`` is the cleaned scan table over this registry; its
+        data-quality profile (the first rows of the scan order, the running variables and
+        covariates only) is read first, as the streaming pass would, and its cleaning then runs
+        as SQL.  None when the plan needs the streaming pass (joint pair sums, unit columns)."""
+        from .bins_sql import bin_registry
+        cl = getattr(table, "cleaning", None)
+        if cl is not None and (cl.units or cl.value_maps or cl.decimal):
+            return None
+        if cl is not None and cl.planner is not None and not cl.planned:
+            self._profile(table, cl)
+        return bin_registry(lambda sql: self.con.execute(sql).fetchnumpy(), self.lay, plan, cl,
+                            "duckdb", "analysis", self._counts)
+
+    def _profile(self, table, cl) -> None:
+        """Run the cleaning's profile on the first ``cl.profile_rows`` rows of the scan order,
+        leaving its counters as they were (the aggregate query counts every row)."""
+        import copy
+        names = ("coded", "mapped", "sentinel_hits", "converted", "unit_missing", "out_of_range",
+                 "watched")
+        saved = {n: copy.deepcopy(getattr(cl, n)) for n in names}
+        # The rows come in the order (score, person, day): the scores whose rows cannot be among
+        # the first profile_rows are left out before sorting.
+        per = self.con.execute("SELECT _score, count(*) FROM analysis WHERE _noobs = 0 "
+                               "GROUP BY _score ORDER BY _score").fetchall()
+        before, self.last_score = 0, None
+        for k, n in per:
+            self.last_score = k
+            before += n
+            if before >= cl.profile_rows:
+                break
+        self.limit = cl.profile_rows
+        try:
+            it = table.batches(list(cl.profile_columns), cl.profile_rows)
+            next(it, None)
+            it.close()
+            if not cl.planned:          # no rows at all
+                cl.planned = True
+                cl.planner({c: np.zeros(0) for c in cl.profile_columns})
+        finally:
+            self.limit = self.last_score = None
+            for n, v in saved.items():
+                d = getattr(cl, n)
+                d.clear()
+                d.update(v)
+
     def dropped(self) -> list[dict]:
-        """Rows left out, per running variable (and uptake): ``data.dropped`` entries."""
-        return dropped_entries(self.lay, self.con.execute(dropped_sql(self.lay)).fetchall())
+        """Rows left out, per running variable (and uptake): ``data.dropped`` entries (counted
+        by the binning aggregate when it ran)."""
+        rows = self._counts.get("dropped_rows")
+        if rows is None:
+            rows = self.con.execute(dropped_sql(self.lay)).fetchall()
+        return dropped_entries(self.lay, rows)
 
     def index_rows(self) -> dict:
         """Index rows per running variable (before observed-time drops)."""

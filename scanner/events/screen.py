@@ -84,13 +84,57 @@ def stage_one_p(stats, cand, spec) -> float:
         return float("nan")
 
 
+def stage_one_ps(cands, pooled: dict, spec, workers: int | None = None) -> np.ndarray:
+    """:func:`stage_one_p` of every candidate, shared among ``workers`` forked processes.
+
+    Each p-value depends only on its own candidate and the (read-only) bins, so the values are
+    the same whatever the split; the forked processes read the bins without copying them and
+    send their p-values back through a pipe.  One worker, few candidates or no ``fork``: here.
+    """
+    import multiprocessing as mp
+    from ..scan import MIN_PARALLEL, workers_default
+    k = workers_default() if workers is None else workers
+    n = len(cands)
+    if k < 2 or n < MIN_PARALLEL or "fork" not in mp.get_all_start_methods():
+        return np.array([stage_one_p(pooled[c.running], c, spec) for c in cands], dtype=float)
+    ctx = mp.get_context("fork")
+    groups = [list(range(i, n, k)) for i in range(k)]       # interleaved: balanced work
+    pipes, procs = [], []
+    for g in groups[1:]:
+        recv, send = ctx.Pipe(duplex=False)
+        proc = ctx.Process(target=_stage_one_child, args=(send, [cands[i] for i in g], pooled, spec),
+                           daemon=True)
+        proc.start()
+        send.close()
+        pipes.append(recv)
+        procs.append(proc)
+    ps = np.full(n, np.nan)
+    ps[groups[0]] = [stage_one_p(pooled[cands[i].running], cands[i], spec) for i in groups[0]]
+    for g, recv, proc in zip(groups[1:], pipes, procs):
+        ok, got = recv.recv()
+        proc.join()
+        if not ok:
+            raise got
+        ps[g] = got
+    return ps
+
+
+def _stage_one_child(send, cands, pooled, spec) -> None:
+    try:
+        send.send((True, [stage_one_p(pooled[c.running], c, spec) for c in cands]))
+    except BaseException as exc:  # noqa: BLE001 - handed to the parent, which raises it
+        send.send((False, exc))
+    finally:
+        send.close()
+
+
 def first_stage(cands, pooled: dict, spec):
     """Stage 1 of a screen: which candidates get the full evaluation.
 
     Returns (kept candidates, stage-1 p-values of the others, summary per pair).
     """
     from ..score import bh_qvalues
-    ps = np.array([stage_one_p(pooled[c.running], c, spec) for c in cands], dtype=float)
+    ps = stage_one_ps(cands, pooled, spec)
     q = bh_qvalues(list(ps))
     keep = [(c.origin == "declared") or (np.isfinite(qv) and qv < spec.alpha)
             for c, qv in zip(cands, q)]

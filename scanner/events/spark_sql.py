@@ -66,7 +66,7 @@ class SparkRegistry:
         self.frame = spark.sql(scan_sql(lay, "spark", "_analysis"))
 
     def dropped(self) -> list[dict]:
-        rows = [tuple(r) for r in self.spark.sql(dropped_sql(self.lay, "_analysis")).collect()]
+        rows = [tuple(r) for r in self.spark.sql(dropped_sql(self.lay, "_analysis", "spark")).collect()]
         return dropped_entries(self.lay, rows)
 
     def index_rows(self) -> dict:

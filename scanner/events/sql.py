@@ -8,10 +8,10 @@ string-type expressions differ (:data:`DIALECTS`).  The semantics are documented
 
 The query reads three relations the runner registers: ``meas`` (measurement rows), ``ev``
 (event rows) and, with observed time, ``obs`` (person, period start, period end).  Its result
-has one row per index row: the person, the index date, one column per running variable (the
-value on that variable's own index rows, NULL on the others), one 0/1/NULL column per uptake,
-the covariates, and ``_score`` (which running variable the row belongs to) and the flags the
-drop counts are computed from.
+(the compact analysis table) has one row per index row: the person, the index day, the value
+``_x`` of the running variable numbered ``_score``, the uptakes as bit masks of hits and of
+earlier use with one observed-window flag per distinct window, the covariates and ``_noobs``
+(index day outside observed time).  :func:`scan_sql` turns it into the rows the scan reads.
 """
 from __future__ import annotations
 
@@ -129,11 +129,20 @@ def _score_rows(lay: Layout, ids: list, d: Dialect) -> str:
             f"WHERE {' AND '.join(cond)}) m) r{join} WHERE _k = 1")
 
 
-def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
-    """The query building the analysis rows of a long-format layout.
+def _bucket(day: str, span: int) -> str:
+    """Bucket of ``span`` days holding a day number (floor division, also for negative days)."""
+    return f"CAST(floor(({day}) / CAST({int(span)} AS DOUBLE)) AS BIGINT)"
+
+
+def analysis_steps(lay: Layout, dialect: str = "duckdb") -> tuple[list, str]:
+    """The query building the analysis rows of a long-format layout, in steps: a list of
+    (name, SELECT) whose results later steps read by name, and the final SELECT.
 
     Events reach the index rows through one range join: ``evj`` holds each (person, day,
-    uptake) once — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
+    uptake) once, with its bucket of ``hi - lo + 1`` days (the span every uptake window and
+    look-back fits in); an index row's span touches at most two buckets, so the join on
+    (person, bucket) meets only the events near the index date instead of all of a person's
+    events — codes matched through the code map ``uc``/``ucp`` — and the join, grouped by
     (index row, uptake), gives each uptake's hit and look-back flags; they are folded into one
     bit mask per 62 uptakes and index row.  One join for all uptakes, and masks rather than a
     column per uptake in the aggregate, keep a screen of many event codes to one pass over the
@@ -144,67 +153,102 @@ def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
     ups = lay.uptakes
     lo = min(u.first_day for u in ups)
     hi = max(u.days[1] for u in ups)
-    ctes = ["idx0 AS (" + " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay)) + ")",
-            f"idx AS {d.materialized}(SELECT *, {d.row_id()} AS _rid FROM idx0)",
-            "evj AS (SELECT DISTINCT person, day, j FROM ("
-            "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
-            "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x)"]
+    span = hi - lo + 1
+    idx0 = " UNION ALL ".join(_score_rows(lay, g, d) for g in _score_groups(lay))
+    ctes = [("idx", f"SELECT *, {d.row_id()} AS _rid FROM ({idx0}) i0"),
+            ("evj", f"SELECT person, day, j, {_bucket('day', span)} AS bk FROM ("
+             "SELECT DISTINCT person, day, j FROM ("
+             "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
+             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x) y")]
+    # Each index row looks at days day+lo .. day+hi: at most two buckets of that span.
+    ib = (f"(SELECT i._rid, i.person, i.day, {_bucket(f'i.day + ({lo})', span)} + t.t AS bk "
+          "FROM idx i CROSS JOIN (SELECT 0 AS t UNION ALL SELECT 1 AS t) t)")
     # Hits per (index row, uptake), then one BIGINT bit mask per 62 uptakes and index row.
     uw = " UNION ALL ".join(f"SELECT {j} AS j, {u.days[0]} AS a, {u.days[1]} AS b, "
                             f"{u.prior_days or 0} AS k" for j, u in enumerate(ups))
-    ctes.append(f"hl AS (SELECT i._rid, e.j, "
+    ctes.append(("hl", f"SELECT i._rid, e.j, "
                 f"max(CASE WHEN e.day BETWEEN i.day + w.a AND i.day + w.b THEN 1 ELSE 0 END) AS hit, "
                 f"max(CASE WHEN w.k > 0 AND e.day BETWEEN i.day - w.k AND i.day - 1 THEN 1 ELSE 0 END) "
-                f"AS prior FROM idx i JOIN evj e ON e.person = i.person "
+                f"AS prior FROM {ib} i JOIN evj e ON e.person = i.person AND e.bk = i.bk "
                 f"AND e.day BETWEEN i.day + ({lo}) AND i.day + ({hi}) "
-                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j)")
+                f"JOIN ({uw}) w ON w.j = e.j GROUP BY i._rid, e.j"))
     masks = []
     for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
         sel = f"CASE WHEN j >= {g * MASK_BITS} AND j < {(g + 1) * MASK_BITS}"
         masks.append(f"bit_or({sel} AND hit = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS h{g}")
         masks.append(f"bit_or({sel} AND prior = 1 THEN {d.shl(1, f'j - {g * MASK_BITS}')} ELSE 0 END) AS p{g}")
-    ctes.append(f"hits AS (SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid)")
+    ctes.append(("hits", f"SELECT _rid, {', '.join(masks)} FROM hl GROUP BY _rid"))
     observed = lay.periods or lay.omop
     if observed:
-        ctes.append("cov AS (SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
-                    "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
-                    "GROUP BY i._rid)")
-    cols = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
-    for j, u in enumerate(ups):
-        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({u.first_day}) AND c.p1 >= i.day + ({u.days[1]}))"
+        ctes.append(("cov", "SELECT i._rid, min(o.start_day) AS p0, max(o.end_day) AS p1 FROM idx i "
+                     "JOIN obs o ON o.person = i.person AND i.day BETWEEN o.start_day AND o.end_day "
+                     "GROUP BY i._rid"))
+    # The table keeps the bit masks and one observed-window flag per distinct window (a screen's
+    # uptakes share one), not a column per uptake: writing a thousand-pair screen's status
+    # columns cost more than the reads that decode them (uptake_parts).
+    inner = ["i._score", "i._rid", "i.person AS _person", "i.day AS _day", "i.x AS _x"]
+    for g in range((len(ups) + MASK_BITS - 1) // MASK_BITS):
+        inner += [f"coalesce(h.h{g}, 0) AS _h{g}", f"coalesce(h.p{g}, 0) AS _p{g}"]
+    for m, (f0, b) in enumerate(windows(lay)):
+        seen = (f"(c.p0 IS NOT NULL AND c.p0 <= i.day + ({f0}) AND c.p1 >= i.day + ({b}))"
                 if observed else "TRUE")
-        g, k = divmod(j, MASK_BITS)
-        prior = f"{d.bit(f'coalesce(h.p{g}, 0)', k)} = 1" if u.prior_days else "FALSE"
-        cols.append(f"CAST(CASE WHEN {prior} THEN {PRIOR} WHEN NOT {seen} THEN {UNSEEN} "
-                    f"ELSE {d.bit(f'coalesce(h.h{g}, 0)', k)} END AS TINYINT) AS _u{j}")
-    cols.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
-    cols += [f"i.{q(c)}" for c in lay.covariates]
+        inner.append(f"CAST(CASE WHEN {seen} THEN 1 ELSE 0 END AS TINYINT) AS _s{m}")
+    inner.append("CASE WHEN c.p0 IS NULL THEN 1 ELSE 0 END AS _noobs" if observed else "0 AS _noobs")
+    inner += [f"i.{q(c)}" for c in lay.covariates]
     joins = " LEFT JOIN hits h ON h._rid = i._rid"
     if observed:
         joins += " LEFT JOIN cov c ON c._rid = i._rid"
-    return "WITH " + ",\n".join(ctes) + f"\nSELECT {', '.join(cols)} FROM idx i{joins}"
+    return ctes, f"SELECT {', '.join(inner)} FROM idx i{joins}"
+
+
+def windows(lay: Layout) -> list:
+    """Distinct (first day, last day) every uptake looks at, relative to the index date."""
+    return sorted({(u.first_day, u.days[1]) for u in lay.uptakes})
+
+
+def uptake_parts(lay: Layout, j: int, dialect: str = "duckdb") -> tuple[str, str, str]:
+    """(earlier use, window not observed, hit) of uptake ``j`` as conditions/0-1 expressions
+    over the compact analysis table."""
+    d = DIALECTS[dialect]
+    u = lay.uptakes[j]
+    g, k = divmod(j, MASK_BITS)
+    prior = f"{d.bit(f'_p{g}', k)} = 1" if u.prior_days else "FALSE"
+    unseen = f"_s{windows(lay).index((u.first_day, u.days[1]))} = 0"
+    return prior, unseen, d.bit(f"_h{g}", k)
+
+
+def uptake_value(lay: Layout, j: int, dialect: str = "duckdb") -> str:
+    """Uptake ``j`` as the scan sees it: 0/1, NULL after earlier use or an unobserved window."""
+    prior, unseen, hit = uptake_parts(lay, j, dialect)
+    return f"CASE WHEN {prior} OR {unseen} THEN NULL ELSE CAST({hit} AS DOUBLE) END"
+
+
+def analysis_sql(lay: Layout, dialect: str = "duckdb") -> str:
+    """:func:`analysis_steps` as one query (common table expressions), as Spark SQL runs it."""
+    d = DIALECTS[dialect]
+    steps, final = analysis_steps(lay, dialect)
+    return "WITH " + ",\n".join(f"{n} AS {d.materialized if n == 'idx' else ''}({sel})"
+                                 for n, sel in steps) + "\n" + final
 
 
 def scan_sql(lay: Layout, dialect: str, table: str, columns=None) -> str:
     """The analysis rows as the scan reads them, from the compact table of :func:`analysis_sql`.
 
     The compact table holds one value column for all running variables (``_x`` with the
-    running variable's number in ``_score``) and one small status code per uptake (0/1, or
-    earlier use, or window not observed); here they become one column per running variable
+    running variable's number in ``_score``) and the uptakes as bit masks of hits and earlier
+    use with observed-window flags (:func:`uptake_parts`); here they become one column per running variable
     (NULL on the other variables' rows) and 0/1/NULL uptakes, for the kept rows in a fixed order.
     ``columns`` picks and orders the output columns (default: all).
     """
     q = DIALECTS[dialect].q
     expr = {lay.person: "_person", lay.date: DIALECTS[dialect].from_day("_day")}
     expr.update({s.name: f"CASE WHEN _score = {k} THEN _x END" for k, s in enumerate(lay.scores)})
-    expr.update({u.name: f"CASE WHEN _u{j} < 2 THEN CAST(_u{j} AS DOUBLE) END"
-                 for j, u in enumerate(lay.uptakes)})
+    expr.update({u.name: uptake_value(lay, j, dialect) for j, u in enumerate(lay.uptakes)})
     expr.update({c: q(c) for c in lay.covariates})
     cols = ", ".join(f"{expr[c]} AS {q(c)}" for c in (columns or expr))
     return f"SELECT {cols} FROM {table} WHERE _noobs = 0 ORDER BY _score, _person, _day"
 
 
-PRIOR, UNSEEN = 2, 3        # uptake status codes besides 0/1
 MASK_BITS = 62              # uptakes per BIGINT bit mask (sign bit and one spare left alone)
 
 
@@ -274,14 +318,21 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
 
 
 
-def dropped_sql(lay: Layout, table: str = "analysis") -> str:
+def dropped_sql(lay: Layout, table: str = "analysis", dialect: str = "duckdb") -> str:
     """One aggregate over the analysis rows: per running variable, the rows dropped whole and,
     per uptake, those with earlier use and those whose window was not observed."""
+    return f"SELECT {', '.join(dropped_parts(lay, dialect))} FROM {table} GROUP BY _score ORDER BY _score"
+
+
+def dropped_parts(lay: Layout, dialect: str = "duckdb") -> list[str]:
+    """The select list of :func:`dropped_sql` (score, rows, rows dropped whole, then per uptake
+    earlier use and unobserved window)."""
     parts = ["_score", "count(*) AS n", "sum(_noobs) AS noobs"]
     for j in range(len(lay.uptakes)):
-        parts += [f"sum(CASE WHEN _noobs = 0 AND _u{j} = {PRIOR} THEN 1 ELSE 0 END) AS p{j}",
-                  f"sum(CASE WHEN _noobs = 0 AND _u{j} = {UNSEEN} THEN 1 ELSE 0 END) AS w{j}"]
-    return f"SELECT {', '.join(parts)} FROM {table} GROUP BY _score ORDER BY _score"
+        prior, unseen, _ = uptake_parts(lay, j, dialect)
+        parts += [f"sum(CASE WHEN _noobs = 0 AND {prior} THEN 1 ELSE 0 END) AS p{j}",
+                  f"sum(CASE WHEN _noobs = 0 AND NOT ({prior}) AND {unseen} THEN 1 ELSE 0 END) AS w{j}"]
+    return parts
 
 
 def dropped_entries(lay: Layout, rows) -> list[dict]:
