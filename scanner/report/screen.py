@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import html
 
-from ..score import format_p
+from ..textfmt import format_p
 from .disclosure import is_small
 
 
