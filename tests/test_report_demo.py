@@ -11,6 +11,7 @@ import os
 import re
 import shutil
 import subprocess
+import sys
 import tempfile
 from html import unescape
 from pathlib import Path
@@ -20,7 +21,7 @@ import pytest
 
 from scanner.report.disclosure import COUNT_PATTERN, META_INT_KEYS
 
-from .conftest import run_cli
+from .conftest import ROOT, run_cli
 
 MIN_CELL = 11
 PERSON_ID = re.compile(r"NM\d{7}")
@@ -143,3 +144,14 @@ def test_report_wording_of_tiny_p_values_and_the_reported_interval(demo):
     kind = json.loads((demo / "results.json").read_text())["candidates"][0]["interval"]
     assert f"reported ({kind})" in first_card and first_card.count(">conventional<") == 1
     assert ">None<" not in html              # a missing value shows as a dash
+
+
+def test_rebuilding_a_report_does_not_load_the_estimators():
+    # `cutscan report` rebuilds from results.json: importing scipy.stats and the estimators
+    # (about 1.5 s) would more than double its time (benchmarks/bench_report.py, target 2 s).
+    code = ("import sys, scanner.report.html, scanner.report.outputs; "
+            "print(sorted(m for m in ('scipy.stats', 'scanner.estimate', 'statsmodels') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         env=dict(os.environ, PYTHONPATH=str(ROOT)), check=True).stdout
+    assert out.strip() == "[]"
