@@ -80,3 +80,18 @@ def test_piped_terminal_gets_one_line_per_candidate_with_interval(tmp_path):
     c = res["candidates"][0]
     assert f"[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c['interval']}" in body[0]
     assert " F " in body[0] and " q " in body[0]
+
+
+def test_markdown_names_the_centre_of_a_robust_interval(out):
+    # A robust bias-corrected interval is centred on the bias-corrected jump (Calonico,
+    # Cattaneo & Titiunik 2014), not on the conventional one: results.md, like the terminal and
+    # the report, names that centre, so an estimate never stands alone outside its interval.
+    res = json.loads((out / "results.json").read_text())
+    md = (out / "results.md").read_text()
+    shown = {int(line.split("|")[1]) for line in md.splitlines() if line[:2] == "| "
+             and line.split("|")[1].strip().isdigit()}
+    robust = [c for c in res["candidates"] if c["interval"] == "robust" and c["rank"] in shown]
+    assert robust
+    for c in robust:
+        assert (f"{c['jump']:+.3f}, bias-corrected {c['jump_bc']:+.3f} "
+                f"[{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] robust") in md

@@ -63,6 +63,17 @@ def write_bins_csv(results: dict, path: Path) -> None:
             w.writerow({k: ("" if v is None else v) for k, v in r.items()})
 
 
+def jump_and_interval(c: dict, none: str = "n/a") -> str:
+    """The conventional jump with the reported interval and its kind; a robust interval is
+    centred on the bias-corrected jump (Calonico, Cattaneo & Titiunik 2014), so that centre is
+    named beside it — otherwise the estimate can sit outside its own interval."""
+    centre = (f", bias-corrected {_num(c.get('jump_bc'), '+.3f', none)}"
+              if c.get("interval") == "robust" else "")
+    ci = ("" if c.get("ci_low") is None else
+          f"{centre} [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
+    return f"{_num(c.get('jump'), '+.3f', none)}{ci}"
+
+
 def _num(v, fmt, none="n/a"):
     return none if v is None else format(v, fmt)
 
@@ -88,15 +99,15 @@ def markdown(results: dict, top: int = 5) -> str:
     if not shown:
         lines += ["No candidate showed a jump in uptake after adjusting for the number of tests.", ""]
     else:
-        lines += ["| # | running variable | treatment | cutoff | origin | jump in uptake [95% CI] | "
+        lines += ["| # | running variable | treatment | cutoff | origin | jump in uptake "
+                  "(conventional, bias-corrected) [95% CI] | "
                   "rows left / right of cutoff (within bandwidth) | density p | balance p | verdict |",
                   "|---|---|---|---|---|---|---|---|---|---|"]
         for c in shown:
-            ci = "" if c["ci_low"] is None else f" [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}]"
             origin = c.get("rule_id") or c["origin"]
             lines.append(
                 f"| {c['rank']} | {c['running']} | {c['treatment']} | {c['cutoff']:g} | {origin} | "
-                f"{_num(c['jump'], '+.3f')}{ci} | {_num(c['n_left'], ',', 'suppressed')} / "
+                f"{jump_and_interval(c)} | {_num(c['n_left'], ',', 'suppressed')} / "
                 f"{_num(c['n_right'], ',', 'suppressed')} | {_p(c.get('density_p'))} "
                 f"({density_label(c.get('density_method'))}) | "
                 f"{_p(c.get('balance_p'))} | {c['verdict']}"

@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import OutputError
-from .exports import format_p
+from .exports import format_p, jump_and_interval
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
 HELD_SIGNALS = (signal.SIGINT, signal.SIGTERM)   # held back while folders are created or moved
@@ -395,16 +395,11 @@ def plain_lines(results: dict, top: int = 20) -> str:
     lines = [f"{results['title']}: {n} candidates, {results['n_tested']} tests in the q-value "
              f"family{_family(results)}, best {min(top, n)} shown"]
     for c in results["candidates"][:top]:
-        # The robust interval is centred on the bias-corrected jump: show that centre with it.
-        centre = (f", bias-corrected {_num(c.get('jump_bc'), '+.3f')}"
-                  if c.get("interval") == "robust" else "")
-        ci = ("" if c.get("ci_low") is None else
-              f"{centre} [{c['ci_low']:+.3f}, {c['ci_high']:+.3f}] {c.get('interval') or 'conventional'}")
         f = c.get("first_stage_f")
         fs = "—" if f is None else (">9999" if f > 9999 else f"{f:.0f}")
         flags = " ".join(c.get("flags") or []) or "-"
         lines.append(f"{c['rank']:>3}  {c['running']} → {c['treatment']} at {c['cutoff']:g} "
-                     f"({c.get('rule_id') or c['origin']})  jump {_num(c['jump'], '+.3f')}{ci}  "
+                     f"({c.get('rule_id') or c['origin']})  jump {jump_and_interval(c, '—')}  "
                      f"F {fs}  q {format_p(c['q_value'], '—')}  score {_num(c['score'], '.0f')}  "
                      f"{c['verdict']}  flags: {flags}")
     return "\n".join(lines)
