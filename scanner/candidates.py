@@ -13,11 +13,12 @@ divides the rows as any value in (a, b] does:
   value (0 on a half-integer lattice is the split between −0.5 and 0.5); of several round values
   in one split the roundest is kept;
 * a **declared** value between recorded values (typically a rule converted from another unit,
-  190 mg/dL = 4.91337 mmol/L) is applied to the recorded values the way a protocol written in
-  the recording unit states it: the value is rounded to the nearest recorded value v (halves
-  upwards), and the rule's inequality is applied at v — x ≥ v eligible for ``at_or_above`` /
-  ``below`` rules (right-closed), x > v for ``above`` / ``at_or_below``.  The candidate's cutoff
-  is v.
+  190 mg/dL = 4.91337 mmol/L) is applied literally to the recorded values: every inequality,
+  strict or not, puts a on one side and b on the other, so the candidate is the split (a, b).
+  Its cutoff is the recorded value that states that split with the rule's own inequality — b
+  for right-closed rules (x ≥ b), a for the others (x > a).  Rounding the declared value to
+  the nearest recorded value first would move the split by a whole step whenever the value
+  sits at or past the midpoint (a rule "above 6.5" on values 6.4, 6.6 would exclude 6.6).
 
 Either way the row records ``cutoff_declared`` (the value before placement) and ``split_low`` /
 ``split_high``, the recorded values on either side of the split used, so a cutoff off the
@@ -171,8 +172,8 @@ def split_of(stats: BinnedStats, c: float, right_closed: bool = True):
 def on_lattice(cand: Candidate, stats: BinnedStats) -> Candidate:
     """The candidate placed on the recorded values, with the lattice fields filled (module docstring).
 
-    Declared cutoffs between two recorded values move to the nearest recorded value (halves
-    upwards), where the rule's inequality is applied; round cutoffs keep their value.  A cutoff
+    Declared cutoffs between two recorded values a < c < b become the split (a, b), stated as
+    x ≥ b (right-closed rules) or x > a; round cutoffs keep their value.  A cutoff
     on a recorded value, off an exact support, or outside the recorded range is left as it is
     (lattice fields filled where a split exists).
     """
@@ -187,7 +188,7 @@ def on_lattice(cand: Candidate, stats: BinnedStats) -> Candidate:
     if cand.origin == "declared" and not on_support and sup[0] < c < sup[-1]:
         j = int(np.searchsorted(sup, c))
         a, b = float(sup[j - 1]), float(sup[j])
-        placed = b if (c - a) >= (b - c) - tol else a
+        placed = b if cand.right_closed else a
     elif on_support:
         placed = float(sup[np.argmin(np.abs(sup - c))])
     split = split_of(st, placed, cand.right_closed)

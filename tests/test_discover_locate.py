@@ -114,16 +114,20 @@ def test_round_numbers_between_recorded_values_are_examined():
 
 
 def test_declared_cutoff_between_recorded_values_is_applied_on_them():
-    # 190 mg/dL is 4.91337 mmol/L (x 0.02586, from memory) on values recorded to 0.1: applied
-    # at the nearest recorded value 4.9 with the rule's inequality (x ≥ 4.9 for at_or_above,
-    # x > 4.9 for above), both values on the row.
+    # 190 mg/dL is 4.91337 mmol/L (x 0.02586, from memory) on values recorded to 0.1. Applied
+    # literally to the recorded values, any inequality puts 4.9 below the line and 5.0 on or
+    # above it: the split (4.9, 5.0), stated as x ≥ 5.0 (at_or_above) or x > 4.9 (above).
     vals = np.round(np.arange(3.0, 7.0, 0.1), 1)
     st = binned(_lattice(vals, lambda x: 0.1 + 0 * x, lambda x: 0.1 + 0 * x, 5, 50), "x", ["d"], ["d"])
     ge = on_lattice(Candidate("x", "d", 4.91337, "declared"), st)
-    assert (ge.cutoff, ge.cutoff_declared, ge.split_low, ge.split_high) == (4.9, 4.91337, 4.8, 4.9)
+    assert (ge.cutoff, ge.cutoff_declared, ge.split_low, ge.split_high) == (5.0, 4.91337, 4.9, 5.0)
     gt = on_lattice(Candidate("x", "d", 4.91337, "declared", right_closed=False), st)
     assert (gt.cutoff, gt.split_low, gt.split_high) == (4.9, 4.9, 5.0)
-    up = on_lattice(Candidate("x", "d", 4.95, "declared"), st)      # a half: upwards
+    # A rule "above 4.95" treats 5.0 and not 4.9; rounding 4.95 up to 5.0 first and then
+    # applying "> 5.0" (the earlier placement) moved the split a whole step, to (5.0, 5.1).
+    half = on_lattice(Candidate("x", "d", 4.95, "declared", right_closed=False), st)
+    assert (half.cutoff, half.split_low, half.split_high) == (4.9, 4.9, 5.0)
+    up = on_lattice(Candidate("x", "d", 4.95, "declared"), st)
     assert (up.cutoff, up.split_low, up.split_high) == (5.0, 4.9, 5.0)
 
 

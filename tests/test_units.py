@@ -124,7 +124,7 @@ def test_scan_matches_a_percent_rule_to_an_ifcc_column(tmp_path):
     row = res.rows[0]
     assert row["rule_id"] == "dx"
     assert_allclose(row["cutoff_declared"], (6.5 - 2.15) / 0.0915, rtol=1e-12)   # IFCC–NGSP master equation
-    # 47.54 falls between the recorded whole numbers: applied at the nearest one, x ≥ 48.
+    # 47.54 falls between the recorded whole numbers 47 and 48: applied literally, x ≥ 48.
     assert row["cutoff"] == 48.0 and (row["split_low"], row["split_high"]) == (47.0, 48.0)
     assert row["jump"] > 0.4 and any("47.5" in n for n in res.notes)
 
