@@ -125,17 +125,20 @@ def _run_scan(spec_path, out, force, min_cell, top, quiet, data=None) -> int:
             print(plain_lines(results, spec.top))
         console.print(f"[dim]{CAUTION}[/]")
         console.print(f"Wrote {out}/results.json, candidates.csv, report.html, results.md and bins.csv")
-    print_warnings(result.warnings, result.notes)
+    print_warnings(result.warnings, result.notes, spec.min_cell)
     return 0
 
 
-def print_warnings(warnings, notes=()) -> None:
-    """Every warning, after the table, on stderr (also with --quiet): one paragraph each."""
+def print_warnings(warnings, notes=(), min_cell: int = 11) -> None:
+    """Every warning, after the table, on stderr (also with --quiet): one paragraph each, with
+    small counts suppressed as in the files."""
+    from .report.disclosure import scrub_text
     for w in warnings:
-        print(f"cutscan: warning [{w['kind']}]: {w['message']}", file=sys.stderr)
+        print(f"cutscan: warning [{w['kind']}]: {scrub_text(w['message'], min_cell)}",
+              file=sys.stderr)
     for n in notes:
         text = n[len("warning: "):] if n.startswith("warning: ") else n
-        print(f"cutscan: note: {text}", file=sys.stderr)
+        print(f"cutscan: note: {scrub_text(text, min_cell)}", file=sys.stderr)
 
 
 def _spark_session(spec):

@@ -159,3 +159,19 @@ def test_reconcile_removes_differencing_between_figures():
     out, changed = reconcile(up2, dens, 0.0, 11)
     assert [b["n"] for b in out] == [30, 75] and changed == 1
     assert abs(out[1]["height"] - 75 / (100 * 1.3)) < 1e-12 and out[1]["x_low"] == 0.5
+
+
+def test_counts_written_in_sentences_are_suppressed_too():
+    # US CMS cell-size suppression policy: no count from 1 to 10 is shown, also when a warning,
+    # note or reason writes it into a sentence ("8 rows hold 999"). Large counts and decimals stay.
+    from scanner.report.disclosure import scrub
+    res = {"warnings": [{"kind": "sentinel_values", "column": "egfr", "count": 8,
+                         "message": "column 'egfr': 8 rows hold 999; 1 row at 4.9, 1,204 rows at 5"}],
+           "notes": ["3 persons appear twice"],
+           "candidates": [{"reasons": ["rows left: 10 rows; bandwidth 2.5 rows"]}]}
+    out, _ = scrub(res, 11)
+    assert out["warnings"][0]["message"] == ("column 'egfr': fewer than 11 rows hold 999; fewer "
+                                             "than 11 rows at 4.9, 1,204 rows at 5")
+    assert out["warnings"][0]["count"] is None
+    assert out["notes"] == ["fewer than 11 persons appear twice"]
+    assert out["candidates"][0]["reasons"] == ["rows left: fewer than 11 rows; bandwidth 2.5 rows"]

@@ -133,9 +133,29 @@ def is_binary(s1, s2) -> bool:
     return bool(np.allclose(s1, s2) and np.allclose(s1, np.round(s1)))
 
 
+# Counts written into sentences ("8 rows hold 999"): the same rule applies to them.
+COUNT_IN_TEXT = re.compile(r"(?<![\d.,])(\d{1,3}(?:,\d{3})+|\d+) (rows?|cells?|persons?|people|visits?)\b")
+TEXT_KEYS = {"message", "notes", "reasons", "reason"}
+PLURAL = {"row": "rows", "cell": "cells", "person": "persons", "visit": "visits"}
+
+
+def scrub_text(text: str, min_cell: int) -> str:
+    """``text`` with every count of rows, cells, persons or visits from 1 to ``min_cell − 1``
+    written as "fewer than ``min_cell``"."""
+    def small(m):
+        k = int(m.group(1).replace(",", ""))
+        noun = PLURAL.get(m.group(2), m.group(2))
+        return f"fewer than {min_cell} {noun}" if is_small(k, min_cell) else m.group(0)
+    return COUNT_IN_TEXT.sub(small, text)
+
+
 def scrub(obj, min_cell: int, path: str = "", found: list | None = None):
-    """Replace every small integer under a count-named key by None; return (obj, paths)."""
+    """Replace every small integer under a count-named key by None, and small counts written in
+    messages, notes and reasons by "fewer than ``min_cell``"; return (obj, paths)."""
     found = [] if found is None else found
+    if isinstance(obj, str):
+        key = re.sub(r"\[\d*\]$", "", path.rsplit(".", 1)[-1])
+        return (scrub_text(obj, min_cell) if key in TEXT_KEYS else obj), found
     if isinstance(obj, dict):
         out = {}
         for k, v in obj.items():
