@@ -550,7 +550,8 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
                    balance_method=bal.method)
     else:
         row.update(balance_p=float("nan"), balance=[], balance_worst=None, balance_method=None)
-    row.update(design_checks(stats, cand, spec, fit, d, density_cache))
+    # Binary-ness from the raw data: the floored d of a 0/1 column no longer looks 0/1.
+    row.update(design_checks(stats, cand, spec, fit, d, density_cache, binary=variation.binary))
     return row
 
 

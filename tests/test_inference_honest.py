@@ -188,6 +188,34 @@ def test_intervals_of_share_jumps_stay_in_bounds_and_impossible_shares_are_flagg
     assert "from 0.00 to" in r["reasons"][0]               # displayed level within [0, 1]
 
 
+
+def test_impossible_share_is_flagged_when_the_other_side_has_no_variation():
+    # Compliance shares (Imbens & Angrist 1994, Econometrica 62(2); Angrist, Imbens & Rubin 1996,
+    # JASA 91(434)): never-takers = 1 − p_in, so a fitted uptake limit above 1 is no share.
+    # Left: nobody treated (a constant side, so its variance is floored); right: uptake exactly 1
+    # up to 1.6 then 1.08 − 0.05u (invented, exact counts on an integer lattice), so the local
+    # line overshoots 1.  The 0/1 check must use the raw data: the floored left side would no
+    # longer look 0/1 and the overshoot went out as a never-taker share of −3%.
+    m, h = 400, 10.0
+    xs = np.arange(-30, 31, dtype=float)
+    ones = np.round(m * np.where(xs >= 0, np.clip(1.08 - 0.05 * xs, 0, 1), 0)).astype(int)
+    x = np.repeat(xs, m)
+    d = np.concatenate([(np.arange(m) < k).astype(float) for k in ones])
+    res = scan(_spec(bandwidth=h), data=pd.DataFrame({"x": x, "d": d}))
+    r = next(r for r in res.rows if r["cutoff"] == 0.0)
+    assert r["variation"]["constant_left"] and r["variation"]["binary"]
+    # The right limit against a row-level triangular-kernel WLS fit (statsmodels).
+    w = np.clip(1 - np.abs(x) / h, 0, None) * (x >= 0)
+    keep = w > 0
+    ref = sm.WLS(d[keep], sm.add_constant(x[keep]), weights=w[keep]).fit()
+    assert_allclose(r["right"], ref.params[0], rtol=1e-9)
+    assert r["right"] > 1.03                                # the fit overshoots 1 ...
+    assert "impossible" in r["flags"]                       # ... beyond noise: a flag
+    assert "outside [0, 1]" in r["impossible_share"]
+    for k in ("share_always", "share_never", "share_compliers"):
+        assert np.isnan(r[k]) or 0 <= r[k] <= 1, (k, r[k])
+    assert not any("binds for 10" in s for s in r["reasons"])
+
 # ------------------------------------------------------------------ the headline record
 def test_headline_is_frozen_and_agrees_with_the_row():
     rng = np.random.default_rng(9)

@@ -22,7 +22,7 @@ from dataclasses import dataclass, asdict
 
 import numpy as np
 
-from ..estimate.local import Z95, SideData, _is_binary, fit_jump
+from ..estimate.local import Z95, SideData, fit_jump, is_binary
 
 
 @dataclass(frozen=True)
@@ -52,13 +52,18 @@ def _one_sided_se(stats, data: SideData, fit, right: bool, kernel, degree, right
 
 def compliance_profile(stats, data: SideData, fit, eligible_side: str | None = None,
                        kernel: str = "triangular", degree: int = 1,
-                       right_closed: bool = True) -> Compliance:
+                       right_closed: bool = True, binary: bool | None = None) -> Compliance:
     """Always-taker, never-taker and complier shares at the cutoff from a first-stage fit.
 
     Parameters
     ----------
     data : the treatment's SideData at the cutoff; ``fit`` : its JumpFit.
     eligible_side : the rule's eligible side ("below", "at_or_above", ...) or None.
+    binary : whether the treatment is 0/1, decided on the raw data (``Variation.binary``).
+        Needed when ``data`` went through ``floor_variance``: the floor raises Σy² on a
+        constant side, so a 0/1 column would no longer look binary and the impossibility check
+        and clipping would be skipped exactly when one side has no variation.  None: decide
+        from ``data`` (correct only for unfloored data).
 
     Returns
     -------
@@ -79,11 +84,13 @@ def compliance_profile(stats, data: SideData, fit, eligible_side: str | None = N
     if p_in < p_out:
         reason = "uptake is lower on the eligible side: the shares assume monotonicity"
     side = "right" if right else "left"
-    bad = _impossible(p_in, se_in, p_out, se_out, fit.se, side) if _is_binary(data) else None
+    if binary is None:
+        binary = is_binary(data)
+    bad = _impossible(p_in, se_in, p_out, se_out, fit.se, side) if binary else None
     if bad:
         return Compliance(nan, nan, nan, float(se_out), float(se_in), float(fit.se), side,
                           bad, bad)
-    if _is_binary(data):
+    if binary:
         p_in, p_out = (min(max(v, 0.0), 1.0) for v in (p_in, p_out))
     return Compliance(float(p_out), float(1 - p_in), float(p_in - p_out), float(se_out),
                       float(se_in), float(fit.se), side, reason)

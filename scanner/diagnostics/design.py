@@ -22,8 +22,12 @@ def _heaps(stats, running, cache):
     return cache[key]
 
 
-def design_checks(stats, cand, spec, fit, data, cache: dict) -> dict:
-    """Everything after the first stage and covariate balance, as row fields."""
+def design_checks(stats, cand, spec, fit, data, cache: dict, binary: bool | None = None) -> dict:
+    """Everything after the first stage and covariate balance, as row fields.
+
+    ``binary`` (the raw data's ``Variation.binary``) says whether the treatment is 0/1; ``data``
+    may be variance-floored, which hides that.
+    """
     c, h, rc = cand.cutoff, fit.bandwidth, cand.right_closed
     row = {}
     tests, values, clean = _heaps(stats, cand.running, cache)
@@ -51,7 +55,8 @@ def design_checks(stats, cand, spec, fit, data, cache: dict) -> dict:
     row.update(placebo_p=pl.p_value, placebo_n=pl.n_placebos, placebo_exceed=pl.exceed,
                placebo_reason=pl.reason)
     # Compliance profile from the one-sided uptake limits.
-    cp = compliance_profile(stats, data, fit, cand.eligible_side, spec.kernel, spec.degree, rc)
+    cp = compliance_profile(stats, data, fit, cand.eligible_side, spec.kernel, spec.degree, rc,
+                            binary=binary)
     row.update(share_always=cp.share_always, share_never=cp.share_never,
                share_compliers=cp.share_compliers, share_always_se=cp.se_always,
                share_never_se=cp.se_never, share_compliers_se=cp.se_compliers,

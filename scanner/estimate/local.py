@@ -347,8 +347,12 @@ class Variation:
         return {**asdict(self), "none": self.none}
 
 
-def _is_binary(d: SideData) -> bool:
-    """Every row 0 or 1: then Σy² = Σy in every bin and 0 ≤ Σy ≤ n."""
+def is_binary(d: SideData) -> bool:
+    """Every row 0 or 1: then Σy² = Σy in every bin and 0 ≤ Σy ≤ n.
+
+    Decide this on the raw data only: :func:`floor_variance` raises Σy² on a constant side, so
+    floored data of a 0/1 column no longer pass (use ``Variation.binary`` then).
+    """
     n, s1, s2 = d.n, d.s1, d.s2
     return bool(np.all(s1 >= -CONST_TOL * n) and np.all(s1 <= n * (1 + CONST_TOL))
                 and np.all(np.abs(s2 - s1) <= CONST_TOL * np.maximum(n, 1)))
@@ -396,7 +400,7 @@ def floor_variance(d: SideData, h_left: float, h_right: float | None = None):
     """
     hr = h_left if h_right is None else h_right
     nan = float("nan")
-    binary = _is_binary(d)
+    binary = is_binary(d)
     if not (np.isfinite(h_left) and np.isfinite(hr) and h_left > 0 and hr > 0):
         return d, Variation(False, False, nan, nan, binary)
     masks = [(~d.right) & (np.abs(d.u) < h_left) & (d.n > 0),
