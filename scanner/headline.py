@@ -104,12 +104,21 @@ def clip_intervals(row: dict) -> None:
 
 
 def bias_bounded_interval(row: dict, alpha: float = 0.05) -> tuple[float, float]:
-    """``τ̂ ± cv(B̄/se)·se``: the interval a discovered row's bias-allowing p-value inverts."""
+    """``τ̂ ± cv(B̄/se)·se``: the interval a discovered row's bias-allowing p-value inverts
+    (Armstrong & Kolesár 2020, fixed-length interval); without a held-out half cv is at least
+    the search's sup-|t| critical value."""
     jump, se, bound = row.get("jump"), row.get("se"), row.get("bias_bound")
     if not (_finite(jump) and _finite(se) and _finite(bound) and se > 0):
         return float("nan"), float("nan")
     from .estimate.robust import honest_cv   # here, so the report can rebuild without scipy.stats
     cv = honest_cv(bound / se, alpha)
+    crit = (row.get("discovery_half") or {}).get("critical")
+    if not row.get("split") and _finite(crit):
+        # Searched and estimated on the same rows: the p-value is the larger of the bias-bounded
+        # and the search-adjusted one (search_step), so the interval takes the larger critical
+        # value too — the search's sup-|t| quantile at this level — and keeps telling the story
+        # the p-value tells.
+        cv = max(cv, float(crit))
     return float(jump - cv * se), float(jump + cv * se)
 
 

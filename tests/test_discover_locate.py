@@ -165,3 +165,22 @@ def test_mortgages_veteran_share_breaks(mortgages):
     assert (at0[0]["split_low"], at0[0]["split_high"]) == (-0.5, 0.5)
     # No break is placed inside the run of zeros (18.5 was reported before, with a + sign).
     assert not [r for r in rows if r["origin"] == "discovered" and r["cutoff"] > 14.5]
+
+
+def test_discovered_rows_without_a_held_out_half_tell_one_story():
+    # Searched and estimated on the same rows, the p-value is the larger of the bias-bounded and
+    # the search-adjusted one; the interval then uses the larger critical value too (the search's
+    # sup-|t| quantile), so it excludes zero only when the p-value is below alpha.
+    from scanner.scan import scan
+    df = _lattice(np.arange(0, 100), lambda x: 0.2 + 0.002 * x, lambda x: 0.45 + 0.002 * x, 37,
+                  400, 5)
+    res = scan({"running": [{"column": "x"}], "treatments": {"columns": ["d"]},
+                "search": {"round_numbers": False, "confirm": False}}, df)
+    rows = [r for r in res.rows if r["origin"] == "discovered"]
+    assert rows
+    for r in rows:
+        assert not r["split"]
+        crit = r["discovery_half"]["critical"]
+        assert r["ci_high"] - r["ci_low"] >= 2 * crit * r["se"] * (1 - 1e-12)
+        if r["ci_low"] > 0 or r["ci_high"] < 0:
+            assert r["p_value"] < 0.05
