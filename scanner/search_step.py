@@ -102,19 +102,23 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
 
     A search seeks out curvature that looks like a jump, so the test allows for the worst-case
     smoothing bias B̄ (scanner.discover.bias_bound): p = P(|N(b, 1)| ≥ |t|) and the interval
-    jump ± cv·se with cv the 95% quantile of |N(b, 1)|, b = B̄/se (Armstrong & Kolesár 2020,
+    jump ± cv·se with cv the 1 − alpha quantile of |N(b, 1)|, b = B̄/se (Armstrong & Kolesár 2020,
     the fixed-length interval; Kolesár & Rothe 2018), so the interval and p tell one story.
     """
     from scipy import stats as sps
     from .discover import bias_bound
+    from .estimate.robust import honest_cv
     from .scan import evaluate
     row = evaluate(test, cand, spec, cache)
     row.update(loc, split=bool(split))
     bb = bias_bound(test, cand.treatment, cand.cutoff, row["bandwidth"], spec.kernel)
-    row.update(conventional_p=row["p_value"], bias_bound=bb.bound, curvature_bound=bb.curvature)
+    # conventional: the jump's own t against N(0, 1), no allowance for the smoothing bias
+    t = row["jump"] / row["se"] if row["se"] > 0 else float("nan")
+    row.update(conventional_p=float(2 * sps.norm.sf(abs(t))), bias_bound=bb.bound,
+               curvature_bound=bb.curvature)
     pb = bb.p_value(row["jump"], row["se"])
     if np.isfinite(pb):
-        cv = float(sps.foldnorm.ppf(0.95, bb.bound / row["se"]))
+        cv = honest_cv(bb.bound / row["se"], spec.alpha)
         row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],
                    ci_high=row["jump"] + cv * row["se"], interval="bias-bounded")
     if not split:

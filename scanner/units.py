@@ -237,14 +237,6 @@ def plausible_range(quantity: str | None, unit: str | None) -> tuple[float, floa
     return (min(a, b), max(a, b))
 
 
-def other_units(quantity: str | None, unit: str | None) -> list[str]:
-    """Units of ``quantity`` other than ``unit`` whose plausible range is known."""
-    if not quantity or quantity not in PLAUSIBLE:
-        return []
-    mine = lookup(unit, quantity) if unit else lookup(PLAUSIBLE[quantity][2], quantity)
-    return [u for u in units_for(quantity) if lookup(u, quantity) != mine]
-
-
 def convert_array(values, from_unit: str, to_unit: str, quantity: str | None = None):
     """``convert`` for a numpy array (same affine map, applied element by element)."""
     import numpy as np
