@@ -148,4 +148,4 @@ def machine() -> str:
     import platform
     load = os.getloadavg()[0]
     return (f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores, "
-            f"load average {load:.1f} at start (the machine was shared with other jobs)")
+            f"load average {load:.1f} at start (a 1-minute average above 2 means other jobs shared the 2 cores)")
