@@ -253,14 +253,18 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
             k = cl.out_of_range.get(c, 0)
             lo, hi = f["keep"]
             a, b = f["other_range"]
+            kept = stats[c].total if c in stats else 0
+            share = kept / (kept + k) if kept + k else 1.0
+            most = (f"More than half the rows fit only {f['other']}: if the whole column is in "
+                    f"{f['other']}, set unit = \"{f['other']}\" there instead. " if share < 0.5 else "")
             out.append(warning("mixed_units", c,
-                f"column '{c}' seems to hold two units of {_running(spec, c).quantity}: most "
-                f"values fit {f['own']} (median {_g(f['median_own'])}, plausible {_g(lo)}–{_g(hi)}) "
-                f"but some fit only {f['other']} (median {_g(f['median_other'])}, plausible "
-                f"{_g(a)}–{_g(b)}). {_n(k)} outside {_g(lo)}–{_g(hi)} were set missing; values "
-                f"inside it are kept as {f['own']}. If a column holds each row's unit, name it "
-                f"with unit_column = \"...\" in the [[running]] table of '{c}' so rows are "
-                "converted instead.", k))
+                f"column '{c}' seems to hold two units of {_running(spec, c).quantity}: "
+                f"{share:.0%} of the values fit {f['own']} (median {_g(f['median_own'])}, "
+                f"plausible {_g(lo)}–{_g(hi)}) but the others fit only {f['other']} (median "
+                f"{_g(f['median_other'])}, plausible {_g(a)}–{_g(b)}). {_n(k)} outside "
+                f"{_g(lo)}–{_g(hi)} were set missing; values inside it are kept as {f['own']}. "
+                f"{most}If a column holds each row's unit, name it with unit_column = \"...\" in "
+                f"the [[running]] table of '{c}' so rows are converted instead.", k))
         elif f["kind"] == "wrong_unit":
             st = stats.get(c)
             lo, hi = f["range"]
