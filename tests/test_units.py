@@ -164,3 +164,25 @@ def test_sentinel_spikes(values, codes):
     from scanner.quality import sentinel_spikes
     got = sentinel_spikes(np.asarray(values(np.random.default_rng(1)), dtype=float))
     assert got == codes
+
+
+def test_mixed_units_says_when_most_rows_are_in_the_other_unit():
+    # 40% of a glucose column in mg/dL, 60% in mmol/L (x 18.016 mg/dL per mmol/L, from memory):
+    # the warning must not say "most values fit mg/dL" and must point to the unit key.
+    import numpy as np
+    import pandas as pd
+    from scanner.scan import scan
+    rng = np.random.default_rng(4)
+    mgdl = np.round(rng.normal(100, 15, 6000))
+    other = rng.random(mgdl.size) < 0.6
+    g = np.where(other, np.round(mgdl / 18.016, 1), mgdl)
+    d = (rng.random(g.size) < 0.3).astype(float)
+    res = scan({"running": [{"column": "g", "quantity": "fasting_glucose", "unit": "mg/dL"}],
+                "treatments": {"columns": ["d"]}, "search": {"round_numbers": False,
+                                                            "discover": False}},
+               pd.DataFrame({"g": g, "d": d}))
+    w = next(w for w in res.warnings if w["kind"] == "mixed_units")
+    share = round(100 * (1 - w["count"] / g.size))
+    assert f"{share}% of the values fit mg/dL" in w["message"] and share < 50
+    assert "More than half the rows fit only mmol/L" in w["message"]
+    assert 'set unit = "mmol/L"' in w["message"]
