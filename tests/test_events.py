@@ -622,3 +622,33 @@ def test_text_in_value_column_exits_2_via_cli(tmp_path):
     out = run_cli("scan", tmp_path / "spec.toml", "--out", tmp_path / "out")
     assert out.returncode == 2, out.stderr
     assert "m.parquet" in out.stderr and "value" in out.stderr and "Traceback" not in out.stderr
+
+
+@needs_spark
+@pytest.mark.spark
+def test_spark_numeric_filter_and_literal_prefix(tmp_path):
+    """The CASE running-variable number and the substring prefix match run as Spark SQL too."""
+    from scanner.engines.spark import local_session
+    from scanner.events.spark_sql import SparkRegistry
+    meas = pd.DataFrame({"pid": ["1", "2", "3", "4"], "on": [DAY0] * 4,
+                         "kind": [5.0, 7.0, 5.0, 7.0], "value": [1.0, 2.0, 3.0, 4.0]})
+    ev = pd.DataFrame({"pid": ["1", "2", "3", "4"], "when": [DAY0] * 4,
+                       "code": ["A_1X", "AB1X", "A1Z", "A_1"]})
+    meas.to_parquet(tmp_path / "m.parquet")
+    ev.to_parquet(tmp_path / "e.parquet")
+    raw = {"data": {"source": "m.parquet", "person": "pid", "date": "on"},
+           "running": [{"name": "a", "column": "value", "where": {"kind": 5}},
+                       {"name": "b", "column": "value", "where": {"kind": 7}}],
+           "events": {"source": "e.parquet", "date": "when", "code": "code",
+                      "uptake": [{"name": "u", "codes": ["A_1*"], "days": [0, 0]}]}}
+    lay = parse_layout(raw, "<t>", ())
+    spark = local_session("local[2]")
+    sp = SparkRegistry(spark, lay, tmp_path)
+    try:
+        got = sp.frame.select("pid", "a", "b", "u").toPandas().sort_values("pid")
+    finally:
+        sp.close()
+    np.testing.assert_array_equal(got.a.to_numpy(), np.where(meas.kind == 5, meas.value, np.nan))
+    np.testing.assert_array_equal(got.b.to_numpy(), np.where(meas.kind == 7, meas.value, np.nan))
+    np.testing.assert_array_equal(got.u.to_numpy(dtype=float),
+                                  ev.code.str.startswith("A_1").to_numpy(dtype=float))
