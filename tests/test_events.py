@@ -77,7 +77,9 @@ def reference(meas, ev, periods, index="first", observed=True):
         pri = j[(rel >= -(prior or 0)) & (rel <= -1)]["index"].unique() if prior else []
         col = pd.Series(0.0, index=idx.index)
         col[hit] = 1.0
-        first = -prior if prior else min(a, 0)
+        # Every day the uptake looks at: its window, the look-back and the index day itself.
+        looked = list(range(a, b + 1)) + (list(range(-prior, 0)) if prior else []) + [0]
+        first = min(looked)
         if observed:
             seen = (idx.s <= idx.day + first) & (idx.t >= idx.day + b)
             col[~seen.fillna(False).astype(bool)] = np.nan
@@ -536,3 +538,117 @@ def test_stage_one_p_values_same_in_two_processes():
     np.testing.assert_array_equal(one, two)
     assert one[cands.index(Candidate("hba1c", "mtf", 6.5, "round"))] < 1e-12
     assert np.isfinite(one).all() and (one > 0.01).sum() > len(one) / 3
+
+
+def _small(meas, ev, running, uptake):
+    raw = {"data": {"source": "m.parquet", "person": "pid", "date": "on"}, "running": running,
+           "events": {"source": "e.parquet", "date": "when", "code": "code", "uptake": uptake}}
+    lay = parse_layout(raw, "<test>", ())
+    reg = Registry(lay, __import__("pathlib").Path("."), {"meas": meas, "events": ev})
+    try:
+        return pa.Table.from_batches(list(reg.batches(reg.columns, 1000))).to_pandas()
+    finally:
+        reg.close()
+
+
+def test_window_before_index_with_lookback_is_refused():
+    # The look-back (days -5..-1) and a window from day -10 claim the same days: refused, naming
+    # the uptake and both keys; without the look-back an event on day -8 is uptake.
+    raw = {"data": {"source": "m.parquet", "person": "pid", "date": "on"},
+           "running": [{"name": "v", "column": "value"}],
+           "events": {"source": "e.parquet", "date": "when", "code": "code",
+                      "uptake": [{"name": "early", "codes": ["X"], "days": [-10, 10], "prior_days": 5}]}}
+    with pytest.raises(SpecError, match=r"events.uptake 'early'.*days.*prior_days"):
+        parse_layout(raw, "<test>", ())
+    meas = pd.DataFrame({"pid": ["1", "2", "3"], "on": [DAY0] * 3, "value": [1.0, 2.0, 3.0]})
+    ev = pd.DataFrame({"pid": ["1", "2", "3"], "code": ["X"] * 3,
+                       "when": DAY0 + pd.to_timedelta([-8, -11, 10], "D")})
+    got = _small(meas, ev, [{"name": "v", "column": "value"}],
+                 [{"name": "early", "codes": ["X"], "days": [-10, 10]}])
+    rel = (ev.when - DAY0).dt.days                 # independent: event day relative to the index
+    want = ev.assign(hit=((rel >= -10) & (rel <= 10)).astype(float)).set_index("pid").hit
+    np.testing.assert_array_equal(got.set_index("pid").early.loc[want.index].to_numpy(), want.to_numpy())
+
+
+def test_double_filter_column_keeps_every_running_variable():
+    # A numeric kind column (read as DOUBLE) holding 5.0 and 7.0 must match where = {kind = 5}
+    # and {kind = 7}; as text '5.0' <> '5' and every row was lost.
+    rng = np.random.default_rng(11)
+    n = 60
+    meas = pd.DataFrame({"pid": rng.integers(0, 20, n).astype(str),
+                         "on": DAY0 + pd.to_timedelta(rng.integers(0, 50, n), "D"),
+                         "kind": rng.choice([5.0, 7.0, 9.0], n), "value": np.round(rng.normal(0, 1, n), 2)})
+    ev = pd.DataFrame({"pid": ["0"], "when": [DAY0], "code": ["X"]})
+    got = _small(meas, ev, [{"name": "a", "column": "value", "where": {"kind": 5}},
+                            {"name": "b", "column": "value", "where": {"kind": 7}}],
+                 [{"name": "u", "codes": ["X"], "days": [0, 10]}])
+    for name, k in (("a", 5.0), ("b", 7.0)):
+        m = meas[meas.kind == k].sort_values(["pid", "on", "value"]).drop_duplicates("pid")
+        g = got[got[name].notna()].sort_values("pid")
+        assert len(m) > 5
+        assert list(g.pid) == list(m.sort_values("pid").pid)
+        np.testing.assert_array_equal(g[name].to_numpy(), m.sort_values("pid").value.to_numpy())
+
+
+def test_prefix_code_matches_percent_and_underscore_literally():
+    meas = pd.DataFrame({"pid": ["1", "2", "3", "4"], "on": [DAY0] * 4, "value": [1.0, 2.0, 3.0, 4.0]})
+    ev = pd.DataFrame({"pid": ["1", "2", "3", "4"], "when": [DAY0] * 4,
+                       "code": ["A_1X", "AB1X", "A1Z", "A_1"]})
+    got = _small(meas, ev, [{"name": "v", "column": "value"}],
+                 [{"name": "u", "codes": ["A_1*"], "days": [0, 0]}])
+    want = ev.set_index("pid").code.str.startswith("A_1").astype(float)
+    np.testing.assert_array_equal(got.set_index("pid").u.loc[want.index].to_numpy(), want.to_numpy())
+
+
+def test_text_in_value_column_is_an_input_error(tmp_path):
+    from scanner.errors import InputError
+    meas = pd.DataFrame({"pid": ["1", "2"], "on": [DAY0] * 2, "value": ["5.1", "<5"]})
+    ev = pd.DataFrame({"pid": ["1"], "when": [DAY0], "code": ["X"]})
+    with pytest.raises(InputError, match=r"m\.csv.*value.*<5.*missing"):
+        raw = {"data": {"source": str(tmp_path / "m.csv"), "person": "pid", "date": "on"},
+               "running": [{"name": "v", "column": "value"}],
+               "events": {"source": str(tmp_path / "e.csv"), "date": "when", "code": "code",
+                          "uptake": [{"name": "u", "codes": ["X"], "days": [0, 0]}]}}
+        meas.to_csv(tmp_path / "m.csv", index=False)
+        ev.to_csv(tmp_path / "e.csv", index=False)
+        Registry(parse_layout(raw, "<test>", ()), tmp_path).close()
+
+
+def test_text_in_value_column_exits_2_via_cli(tmp_path):
+    meas = pd.DataFrame({"pid": ["1", "2", "3"], "on": [DAY0] * 3, "test": "HBA1C",
+                         "value": ["6.1", "<5", "7.0"]})
+    ev = pd.DataFrame({"pid": ["1"], "when": [DAY0], "code": ["MTF"]})
+    write_small(tmp_path / "spec.toml", meas, ev)
+    out = run_cli("scan", tmp_path / "spec.toml", "--out", tmp_path / "out")
+    assert out.returncode == 2, out.stderr
+    assert "m.parquet" in out.stderr and "value" in out.stderr and "Traceback" not in out.stderr
+
+
+@needs_spark
+@pytest.mark.spark
+def test_spark_numeric_filter_and_literal_prefix(tmp_path):
+    """The CASE running-variable number and the substring prefix match run as Spark SQL too."""
+    from scanner.engines.spark import local_session
+    from scanner.events.spark_sql import SparkRegistry
+    meas = pd.DataFrame({"pid": ["1", "2", "3", "4"], "on": [DAY0] * 4,
+                         "kind": [5.0, 7.0, 5.0, 7.0], "value": [1.0, 2.0, 3.0, 4.0]})
+    ev = pd.DataFrame({"pid": ["1", "2", "3", "4"], "when": [DAY0] * 4,
+                       "code": ["A_1X", "AB1X", "A1Z", "A_1"]})
+    meas.to_parquet(tmp_path / "m.parquet")
+    ev.to_parquet(tmp_path / "e.parquet")
+    raw = {"data": {"source": "m.parquet", "person": "pid", "date": "on"},
+           "running": [{"name": "a", "column": "value", "where": {"kind": 5}},
+                       {"name": "b", "column": "value", "where": {"kind": 7}}],
+           "events": {"source": "e.parquet", "date": "when", "code": "code",
+                      "uptake": [{"name": "u", "codes": ["A_1*"], "days": [0, 0]}]}}
+    lay = parse_layout(raw, "<t>", ())
+    spark = local_session("local[2]")
+    sp = SparkRegistry(spark, lay, tmp_path)
+    try:
+        got = sp.frame.select("pid", "a", "b", "u").toPandas().sort_values("pid")
+    finally:
+        sp.close()
+    np.testing.assert_array_equal(got.a.to_numpy(), np.where(meas.kind == 5, meas.value, np.nan))
+    np.testing.assert_array_equal(got.b.to_numpy(), np.where(meas.kind == 7, meas.value, np.nan))
+    np.testing.assert_array_equal(got.u.to_numpy(dtype=float),
+                                  ev.code.str.startswith("A_1").to_numpy(dtype=float))

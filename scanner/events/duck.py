@@ -81,15 +81,33 @@ class Registry:
         Each step of the query is a table of its own: every join and aggregate then has the
         whole memory limit and spills on its own, where one large query would hold several
         join tables at once."""
+        import duckdb
         steps, final = analysis_steps(self.lay, "duckdb")
-        for name, sel in steps:
-            self.con.execute(f"CREATE TABLE {name} AS {sel}")
-        self.con.execute("CREATE TABLE analysis AS " + final)
+        try:
+            for name, sel in steps:
+                self.con.execute(f"CREATE TABLE {name} AS {sel}")
+            self.con.execute("CREATE TABLE analysis AS " + final)
+        except duckdb.ConversionException as e:
+            raise self._unreadable(e) from None
         for name, _ in reversed(steps):
             self.con.execute(f"DROP TABLE {name}")
         self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
             list(self.lay.treatments) + list(self.lay.covariates)
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
+
+    def _unreadable(self, e) -> InputError:
+        """A value or date the registry could not convert (text such as '<5' in a value
+        column): the file, the columns read as numbers or dates, and the fix."""
+        lay = self.lay
+        src = lay.source or (str(Path(self.name) / "measurement") if lay.omop else "measurements")
+        vals = ", ".join(dict.fromkeys(s.column for s in lay.scores))
+        detail = str(e).splitlines()[0] if str(e) else type(e).__name__
+        return InputError(
+            f"{src}: a value could not be read as a number or date ({detail}). Value column(s) "
+            f"{vals} must hold numbers and {lay.date} (and the events file's "
+            f"{lay.events_date or 'date'}) dates. Clean the column before the scan: text codes "
+            "such as '<5' must become a number or an empty cell (missing); the long layout "
+            "casts these columns in the database, before any spec cleaning can map codes.")
 
     def _register_files(self, base: Path, data: dict) -> None:
         lay, con = self.lay, self.con

@@ -16,7 +16,8 @@ Semantics, fixed here and in the README:
   day is day 0.  Otherwise 0.
 * **Earlier users.**  ``prior_days = k``: an index row with one of the uptake's codes on days
   ``index − k`` to ``index − 1`` has that uptake missing (it leaves that treatment's analyses
-  only), counted as ``treated before``.
+  only), counted as ``treated before``.  ``prior_days`` with a window starting before the index
+  day (``a < 0``) is refused: both would claim the same days.
 * **Observed time.**  With ``periods``, an uptake is known only when one observation period
   covers every day it looks at — ``index − prior_days`` (or ``index + a`` without a look-back)
   to ``index + b``; otherwise it is missing and counted as ``window not observed``.  Index rows
@@ -51,7 +52,7 @@ class Uptake:
     @property
     def first_day(self) -> int:
         """First day (relative to the index date) this uptake looks at."""
-        return -self.prior_days if self.prior_days else min(self.days[0], 0)
+        return min(-(self.prior_days or 0), self.days[0], 0)
 
 
 @dataclass(frozen=True)
@@ -148,6 +149,12 @@ def _uptake(u: dict, where: str, omop: bool) -> Uptake:
     prior = u.get("prior_days")
     if prior is not None and not (isinstance(prior, int) and not isinstance(prior, bool) and prior >= 1):
         raise _err(where, f"events.uptake '{name}': prior_days = {prior!r} must be a whole number ≥ 1.")
+    if prior is not None and days[0] < 0:
+        # The look-back (days -k .. -1) and a window starting before the index day would share
+        # days: one event would both make the person an earlier user and count as uptake.
+        raise _err(where, f"events.uptake '{name}': days = {days!r} starts before the index day "
+                   f"and prior_days = {prior} looks back over the same days; give days a first "
+                   "day ≥ 0 with prior_days, or drop prior_days to count earlier events as uptake.")
     return Uptake(name, tuple(str(c) for c in codes), tuple(concepts), (days[0], days[1]), prior)
 
 

@@ -73,15 +73,16 @@ def literal(v) -> str:
 
 
 def code_map(lay: Layout) -> dict:
-    """``uc`` (uptake j, exact code) and ``ucp`` (uptake j, LIKE prefix) as portable SELECTs.
+    """``uc`` (uptake j, exact code) and ``ucp`` (uptake j, code prefix) as portable SELECTs.
 
-    A trailing ``*`` in a code matches a prefix; ``%`` and ``_`` in codes are literal text.
+    A trailing ``*`` in a code matches a prefix, compared as text (``substring``, not ``LIKE``),
+    so ``%`` and ``_`` in codes are literal text.
     """
     exact, pref = [], []
     for j, u in enumerate(lay.uptakes):
         for c in u.codes:
             if c.endswith("*"):
-                pref.append(f"SELECT {j} AS j, {literal(c[:-1].replace('%', '').replace('_', '') + '%')} AS prefix")
+                pref.append(f"SELECT {j} AS j, {literal(c[:-1])} AS prefix")
             else:
                 exact.append(f"SELECT {j} AS j, {literal(c)} AS code")
     none = "SELECT -1 AS j, '' AS {0} WHERE 1 = 0"
@@ -116,10 +117,11 @@ def _score_rows(lay: Layout, ids: list, d: Dialect) -> str:
         col = q(s.where[0][0])
         vals = ", ".join(literal(lay.scores[i].where[0][1]) for i in ids)
         cond.append(f"{col} IN ({vals})")
-        kind = f"CAST({col} AS STRING)"
-        smap = " UNION ALL ".join(f"SELECT {i} AS _score, CAST({literal(lay.scores[i].where[0][1])} "
-                                  f"AS STRING) AS kind" for i in ids)
-        join, score = f" JOIN ({smap}) sm ON sm.kind = r.kind", "sm._score"
+        # The running variable's number straight from the filter column, compared in the column's
+        # own type (a DOUBLE column holding 5.0 equals the spec's 5; as text '5.0' <> '5').
+        whens = " ".join(f"WHEN {col} = {literal(lay.scores[i].where[0][1])} THEN {i}" for i in ids)
+        kind = f"CASE {whens} END"
+        join, score = "", "kind"
     part = "kind, person" if s.index == "first" else "kind, person, day"
     order = "day, x" + "".join(f", {q(c)}" for c in lay.covariates)
     return (f"SELECT {score} AS _score, person, day, x{covs} FROM ("
@@ -159,7 +161,8 @@ def analysis_steps(lay: Layout, dialect: str = "duckdb") -> tuple[list, str]:
             ("evj", f"SELECT person, day, j, {_bucket('day', span)} AS bk FROM ("
              "SELECT DISTINCT person, day, j FROM ("
              "SELECT e.person, e.day, u.j FROM ev e JOIN uc u ON e.code = u.code UNION ALL "
-             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u ON e.code LIKE u.prefix) x) y")]
+             "SELECT e.person, e.day, u.j FROM ev e JOIN ucp u "
+             "ON substring(e.code, 1, length(u.prefix)) = u.prefix) x) y")]
     # Each index row looks at days day+lo .. day+hi: at most two buckets of that span.
     ib = (f"(SELECT i._rid, i.person, i.day, {_bucket(f'i.day + ({lo})', span)} + t.t AS bk "
           "FROM idx i CROSS JOIN (SELECT 0 AS t UNION ALL SELECT 1 AS t) t)")
