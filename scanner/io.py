@@ -320,3 +320,23 @@ def period_codes(batch: pa.RecordBatch, column: str, source: str,
     quarters = pc.quarter(arr).to_numpy(zero_copy_only=False).astype(float)
     code = years * 4 + quarters - 1
     return np.where(np.isnan(code), -1, code).astype(np.int32)
+
+
+def prefetched(batches):
+    """The batches of an iterator, the next one read in a background thread meanwhile.
+
+    Reading and decoding a Parquet or CSV batch releases the GIL, so it overlaps with folding
+    the previous batch; one batch is held ahead (memory: one batch more).  Batches come in the
+    same order, and an error raised while reading is raised here, at the batch it belongs to.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+    it = iter(batches)
+    end = object()
+    with ThreadPoolExecutor(1) as ex:
+        ahead = ex.submit(next, it, end)
+        while True:
+            batch = ahead.result()
+            if batch is end:
+                return
+            ahead = ex.submit(next, it, end)
+            yield batch

@@ -279,6 +279,31 @@ def test_compiled_kernel_equals_numpy_kernels(keys, monkeypatch):
     assert ref.stats["skew"].kind == "width" and ref.stats["half"].kind == "width"
 
 
+def test_compiled_kernel_known_sums_per_batch(monkeypatch):
+    # The compiled pass skips sums it knows (y² = y of a 0/1 column; the count of a column with
+    # no missing value in the batch; a complete pair's joint count and sums): batches where
+    # the columns are complete and batches where they are not must give the numpy kernel's bins.
+    rng = np.random.default_rng(21)
+    n = 2400
+    df = pd.DataFrame({"x": rng.integers(0, 60, n) * 0.5, "d": (rng.random(n) < 0.4) * 1.0,
+                       "flag": (rng.random(n) < 0.3) * 1.0, "y": rng.normal(size=n)})
+    df.loc[1300::7, "flag"] = np.nan        # a 0/1 covariate missing only in later batches
+    df.loc[1900::5, "y"] = np.nan
+    df.loc[2100:2140, "d"] = np.nan
+    plan = dict(running=("x",), columns=("d", "flag", "y"), treatments=("d",),
+                pairs=(("d", "y"), ("flag", "y"), ("d", "flag")))
+    ref = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="bincount"))
+    monkeypatch.setenv("CUTSCAN_WORKERS", "1")
+    got = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="compiled"))
+    assert_same_stats(got.stats["x"], ref.stats["x"])
+    # and against pandas on the raw rows: Σflag² over finite rows, joint count of (flag, y)
+    g = df.groupby("x")
+    st = got.stats["x"]
+    assert_allclose(st.s2[:, 1], g.flag.apply(lambda v: (v.dropna() ** 2).sum()).to_numpy())
+    both = df.flag.notna() & df.y.notna()
+    assert_array_equal(st.pn[:, 1], both.groupby(df.x).sum().to_numpy())
+
+
 def test_compiled_kernel_without_dense_table(monkeypatch):
     # Too many (bin, period, half) combinations for the dense table: hashed instead, same bins.
     from scanner.engines import local

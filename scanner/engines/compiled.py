@@ -5,14 +5,15 @@ Two loops per running variable and batch, both over the rows in order:
 1. :func:`local_groups` gives each row the batch-local group of its (bin, period-half) pair
    through a dense look-up table of ``bins × period-half codes`` (both small ranges within a
    batch), numbering groups in order of first appearance;
-2. :func:`add_rows` adds every row's n, x, x², and for each tracked column its presence, y and
-   y² (and the joint sums of the column pairs) straight into the running totals' slot of its
-   group (:class:`scanner.engines.sums.SlotSums`).
+2. :func:`add_compact` adds every row's n, x, x² and its addends into its group's row of a
+   small per-batch matrix, which is then added to the running totals' slots
+   (:class:`scanner.engines.sums.SlotSums`) in one indexed ``+=``.
 
-Nothing of size rows × columns is built: the numpy kernels of :mod:`scanner.engines.local`
-first lay the batch out as an addend matrix and a one-hot product, which took more time than
-the sums themselves.  Each slot's sums are accumulated in row order, so the totals equal the
-numpy kernels' up to the order of floating-point additions (agreement to 1e-9 is tested).
+The addends are laid out once per batch by :func:`compact_rows`, shared by every running
+variable, and only those not known already: y² of a 0/1 column is y, and the count of a column
+with no missing value in the batch is the row count (:mod:`scanner.engines.compact`).  Each
+group's sums are accumulated in row order, so the totals equal the numpy kernels' up to the
+order of floating-point additions (agreement to 1e-9 is tested).
 The loops release the GIL, so two running variables can be folded at once in two threads.
 Compiled code is cached on disk (``cache=True``): only the first run on a machine compiles.
 """
@@ -53,45 +54,82 @@ def local_groups(g, nb, ext, span):
 
 
 @njit(nogil=True, cache=True)
-def add_rows(group, slot, x, Y, pa, pb, M):
-    """Add each row's sums to row ``slot[group[i]]`` of ``M`` (rows with group -1 are skipped).
+def column_facts(Y):
+    """Per tracked column of a batch: (no value missing, every finite value 0 or 1)."""
+    k, m = Y.shape
+    complete = np.ones(k, np.bool_)
+    binary = np.ones(k, np.bool_)
+    for j in range(k):
+        for i in range(m):
+            v = Y[j, i]
+            if v - v != 0.0:
+                complete[j] = False
+            elif v != 0.0 and v != 1.0:
+                binary[j] = False
+    return complete, binary
 
-    Layout of a row of ``M`` (k tracked columns, p pairs): n, Σx, Σx², then per column the
-    count of finite values, Σy, Σy², then per pair (a, b) over rows where both are finite:
-    n, Σa, Σb, Σa², Σb², Σab.  ``Y`` is (k, rows); a non-finite y counts as missing.
+
+@njit(nogil=True, cache=True)
+def compact_rows(Y, sq, cnt, pa, pb, full, W):
+    """Fill ``W`` (rows × w, row-major) with the addends of a batch that are not known already.
+
+    Columns, in order: y of every tracked column (0 where not finite); y² of the columns in
+    ``sq``; the finite indicator of the columns in ``cnt``; per pair q the product ab over rows
+    where both are finite, and when ``full[q]`` also that row's n, a, b, a², b².  Built once per
+    batch and shared by every running variable (see :mod:`scanner.engines.compact`).
+    """
+    k, m = Y.shape
+    for i in range(m):
+        for j in range(k):
+            v = Y[j, i]
+            W[i, j] = v if v - v == 0.0 else 0.0
+        c = k
+        for t in range(sq.size):
+            v = W[i, sq[t]]
+            W[i, c] = v * v
+            c += 1
+        for t in range(cnt.size):
+            v = Y[cnt[t], i]
+            W[i, c] = 1.0 if v - v == 0.0 else 0.0
+            c += 1
+        for q in range(pa.size):
+            a = Y[pa[q], i]
+            b = Y[pb[q], i]
+            both = a - a == 0.0 and b - b == 0.0
+            W[i, c] = a * b if both else 0.0
+            c += 1
+            if full[q]:
+                if both:
+                    W[i, c] = 1.0
+                    W[i, c + 1] = a
+                    W[i, c + 2] = b
+                    W[i, c + 3] = a * a
+                    W[i, c + 4] = b * b
+                else:
+                    for u in range(5):
+                        W[i, c + u] = 0.0
+                c += 5
+
+
+@njit(nogil=True, cache=True)
+def add_compact(group, x, W, Mc):
+    """Add each row's n, x, x² and its row of ``W`` to row ``group[i]`` of ``Mc`` (-1: skipped).
+
+    ``Mc`` is the batch's per-group matrix (groups are few and dense, so it stays in cache);
+    the caller adds it to the running totals' slots in one indexed ``+=``.
     """
     m = group.size
-    k = Y.shape[0]
-    p = pa.size
-    c0 = 3
-    c1 = 3 + k
-    c2 = 3 + 2 * k
-    q0 = 3 + 3 * k
+    w = W.shape[1]
     for i in range(m):
         gi = group[i]
         if gi < 0:
             continue
-        s = slot[gi]
         xi = x[i]
-        M[s, 0] += 1.0
-        M[s, 1] += xi
-        M[s, 2] += xi * xi
-        for j in range(k):
-            v = Y[j, i]
-            if v - v == 0.0:
-                M[s, c0 + j] += 1.0
-                M[s, c1 + j] += v
-                M[s, c2 + j] += v * v
-        for q in range(p):
-            a = Y[pa[q], i]
-            b = Y[pb[q], i]
-            if a - a == 0.0 and b - b == 0.0:
-                M[s, q0 + q] += 1.0
-                M[s, q0 + p + q] += a
-                M[s, q0 + 2 * p + q] += b
-                M[s, q0 + 3 * p + q] += a * a
-                M[s, q0 + 4 * p + q] += b * b
-                M[s, q0 + 5 * p + q] += a * b
+        Mc[gi, 0] += 1.0
+        Mc[gi, 1] += xi
+        Mc[gi, 2] += xi * xi
+        for j in range(w):
+            Mc[gi, 3 + j] += W[i, j]
 
 
 @njit(nogil=True, cache=True)

@@ -35,9 +35,11 @@ from dataclasses import replace
 import numpy as np
 
 from ..bins import BinnedStats
-from ..io import check_binary, numeric, period_codes
+from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
+from .codes import _codes, _codes_compiled
+from .compact import Addends
 from .sums import SlotSums, unpack
 
 
@@ -143,68 +145,6 @@ def _segment_sums(g: np.ndarray, nb: int, mat: np.ndarray, kernel: str) -> np.nd
     m = g.size
     one_hot = sp.csc_matrix((np.ones(m), g, np.arange(m + 1)), shape=(nb + 1, m))
     return np.asarray(one_hot @ mat)[:nb]
-
-
-def _decimal_codes(x: np.ndarray):
-    """Integer codes k with x == k / 10^d exactly for a short decimal support (d ≤ 3), or None.
-
-    Registry values are mostly integers or recorded to a fixed number of decimals; for those,
-    dense integer offsets replace hashing the floats (several times faster).
-    """
-    if x.size == 0 or not np.isfinite(x).all():
-        return None
-    for d in range(4):
-        s = 10.0 ** d
-        k = np.rint(x * s)
-        if np.abs(k).max() < 2 ** 52 and ((k / s) == x).all():
-            return k.astype(np.int64), s
-    return None
-
-
-def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
-    """Group codes 0..nb-1 for rows with ``ok``, nb for the rest; and the key of each group."""
-    import pandas as pd
-    kk = key[ok]
-    if not dense:
-        dec = _decimal_codes(kk)
-        if dec is not None and int(dec[0].max()) - int(dec[0].min()) <= 4 * dec[0].size + 1024:
-            g, uniq, nb = _codes(dec[0], np.ones(dec[0].size, bool), True)
-            out = np.full(key.size, nb, np.int64)
-            out[ok] = g
-            return out, uniq / dec[1], nb
-    if dense and kk.size:
-        lo, hi = int(kk.min()), int(kk.max())
-        if hi - lo <= 4 * kk.size + 1024:
-            used = np.zeros(hi - lo + 1, bool)
-            used[kk - lo] = True
-            uniq = np.flatnonzero(used) + lo
-            lookup = np.cumsum(used) - 1
-            codes = lookup[kk - lo]
-        else:
-            codes, uniq = pd.factorize(kk)
-    else:
-        codes, uniq = pd.factorize(kk)
-    nb = len(uniq)
-    g = np.full(key.size, nb, np.int64)
-    g[ok] = codes
-    return g, np.asarray(uniq), nb
-
-
-def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0):
-    """:func:`_codes` with compiled loops: the same groups and keys; and the number of decimals
-    that made the values whole (tried first next time; any that works gives the same keys)."""
-    from . import compiled
-    if dense:
-        g, uniq, nb, fits = compiled.dense_codes(key, ok)
-        return (g, uniq, nb) if fits else _codes(key, ok, True), hint
-    for d in dict.fromkeys((hint, 0, 1, 2, 3)):
-        k, whole = compiled.decimal_ints(key, ok, 10.0 ** d)
-        if whole:
-            g, uniq, nb, fits = compiled.dense_codes(k, ok)
-            if fits:
-                return (g, uniq / 10.0 ** d, nb), d
-            break
-    return _codes(key, ok, False), hint
 
 
 def keyed(period: np.ndarray, half: np.ndarray):
@@ -376,12 +316,11 @@ class Accumulator:
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
                                  *self.grid, self.forced)
 
-    def add_rows(self, codes, x: np.ndarray, extra, Y: np.ndarray, pa, pb) -> None:
-        """Add a batch's rows straight into the totals (compiled kernel, :mod:`.compiled`).
+    def add_rows(self, codes, x: np.ndarray, extra, addends) -> None:
+        """Add a batch's rows to the totals (compiled kernel, :mod:`.compiled`).
 
-        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys; ``Y`` the
-        tracked columns as a (columns, rows) float64 array; ``pa``/``pb`` the pairs' column
-        positions.
+        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys; ``addends`` the
+        batch's :class:`scanner.engines.compact.Addends`.
         """
         from . import compiled
         g, ukey, nb = codes
@@ -404,7 +343,9 @@ class Accumulator:
             slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
                                            np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
                                            (np.arange(span) % 3 - 1).astype(np.int8), e)
-            compiled.add_rows(group, slot, x, Y, pa, pb, self.sums.M)
+            Mc = np.zeros((b.size, 3 + addends.W.shape[1]))
+            compiled.add_compact(group, x, addends.W, Mc)
+            self.sums.M[slot] += Mc[:, addends.src]
             self.sums.touch()
         self.add(None)
 
@@ -467,8 +408,9 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         from concurrent.futures import ThreadPoolExecutor
         pool = ThreadPoolExecutor(_threads())
     rows = 0
+    buffer = None
     try:
-        for batch in table.batches(plan.needed, plan.batch_rows):
+        for batch in prefetched(table.batches(plan.needed, plan.batch_rows)):
             m = batch.num_rows
             if m == 0:
                 continue
@@ -501,6 +443,9 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
+                addends = Addends(Y, pa, pb, buffer, pool)
+                buffer = addends.buffer
+                del Y
             else:
                 packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
 
@@ -512,7 +457,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 a = acc[r]
                 codes = a.codes(x, ok)
                 if kernel == "compiled":
-                    a.add_rows(codes, x, extra, Y, pa, pb)
+                    a.add_rows(codes, x, extra, addends)
                 else:
                     a.add(fold_raw(codes, x, ok, extra, packed, a.template, kernel)
                           if codes[2] else None)
