@@ -14,7 +14,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..estimate.local import SideData, fit_jump
+from ..estimate.batch import jumps_at
+from ..estimate.local import SideData
 
 MAX_PER_SIDE = 15
 
@@ -58,21 +59,14 @@ def placebo_test(stats, data: SideData, cutoff: float, bandwidth: float, z_real:
             grid = np.arange(h, u.max() - h + 1e-12, h)
         else:
             grid = -np.arange(h, -u.min() - h + 1e-12, h)
-        for p in grid[:max_per_side]:
-            v = u - p
-            win = np.abs(v) < h
-            if win.sum() < 4:
-                continue
-            vw = v[win]
-            # Rows at the placebo cutoff belong to its right side, as at a real cutoff; u − p
-            # can miss 0 by a rounding error when the placebo cutoff is a support point (a
-            # decimal lattice), so "at" allows for that.
-            d = SideData(vw, n[win], s1[win], s2[win], vw >= -1e-9 * h)
-            at = float(np.round(cutoff + p, 12))
-            fit = fit_jump(stats, "", at, h, kernel, degree, data=d)
-            if np.isfinite(fit.z):
-                cuts.append(at)
-                zs.append(float(fit.z))
+        # All placebo fits of a side at once: the windows, weights and solves as arrays
+        # (scanner.estimate.batch; the numbers of one fit_jump per placebo).
+        points = grid[:max_per_side]
+        _, _, z = jumps_at(u, n, s1, s2, points, h, kernel, degree)
+        for p, zp in zip(points, z):
+            if np.isfinite(zp):
+                cuts.append(float(np.round(cutoff + p, 12)))
+                zs.append(float(zp))
     if not zs:
         return PlaceboResult(nan, 0, reason="no room for a placebo cutoff on either side")
     exceed = int((np.abs(zs) >= abs(z_real)).sum())

@@ -27,14 +27,19 @@ class Addends:
     ----------
     Y : (k, rows) float64 tracked columns of the batch.
     pa, pb : column positions of the pairs that need joint sums.
+    known : per column, True where it is known to be 0/1 already (treatments, checked on read).
     buffer : a float64 array to reuse for ``W`` when it is large enough (saves page faults).
     pool : a thread pool to fill ``W`` in two halves (the compiled loop releases the GIL).
     """
 
-    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, buffer=None, pool=None):
+    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, known, buffer=None,
+                 pool=None):
         from . import compiled
         k, m = Y.shape
-        full_col, binary = compiled.column_facts(Y)
+        # A column's sum is finite only when every value is (a huge sum that overflows merely
+        # counts the column as incomplete, which is never wrong).
+        full_col = np.isfinite(Y.sum(axis=1))
+        binary = compiled.binary_columns(Y, np.asarray(known, np.bool_))
         sq = np.flatnonzero(~binary).astype(np.int64)
         cnt = np.flatnonzero(~full_col).astype(np.int64)
         full_pair = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)

@@ -54,19 +54,20 @@ def local_groups(g, nb, ext, span):
 
 
 @njit(nogil=True, cache=True)
-def column_facts(Y):
-    """Per tracked column of a batch: (no value missing, every finite value 0 or 1)."""
+def binary_columns(Y, known):
+    """Per tracked column of a batch: every finite value is 0 or 1 (stops at the first other;
+    columns with ``known`` set were checked already)."""
     k, m = Y.shape
-    complete = np.ones(k, np.bool_)
     binary = np.ones(k, np.bool_)
     for j in range(k):
+        if known[j]:
+            continue
         for i in range(m):
             v = Y[j, i]
-            if v - v != 0.0:
-                complete[j] = False
-            elif v != 0.0 and v != 1.0:
+            if v - v == 0.0 and v != 0.0 and v != 1.0:
                 binary[j] = False
-    return complete, binary
+                break
+    return binary
 
 
 @njit(nogil=True, cache=True)

@@ -408,7 +408,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         from concurrent.futures import ThreadPoolExecutor
         pool = ThreadPoolExecutor(_threads())
     rows = 0
-    buffer = None
+    buffer = ybuf = None
     try:
         for batch in prefetched(table.batches(plan.needed, plan.batch_rows)):
             m = batch.num_rows
@@ -437,13 +437,16 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             for t in plan.treatments:
                 check_binary(cols[t], t, table.name)
             if kernel == "compiled":
-                Y = np.empty((len(plan.columns), m))
+                if ybuf is None or ybuf.size < len(plan.columns) * m:
+                    ybuf = np.empty(len(plan.columns) * m)
+                Y = ybuf[:len(plan.columns) * m].reshape(len(plan.columns), m)
                 for j, c in enumerate(plan.columns):
                     Y[j] = cols[c]
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
-                addends = Addends(Y, pa, pb, buffer, pool)
+                addends = Addends(Y, pa, pb, [c in plan.treatments for c in plan.columns],
+                                   buffer, pool)
                 buffer = addends.buffer
                 del Y
             else:
