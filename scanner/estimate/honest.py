@@ -225,36 +225,54 @@ def honest_interval(d: SideData, h, M: float, kernel: str = "triangular", p: int
     fixed-length critical values from Armstrong & Kolesár (2018, Econometrica 86(2); 2020).  It
     holds for any degree p ≥ 1 (the weights reproduce lines, so only μ'' matters).
     """
-    nan = float("nan")
+    return _honest_at(_honest_parts(d, h, kernel, p, vce, bias), M, alpha)
+
+
+def _honest_parts(d: SideData, h, kernel: str, p: int, vce: str, bias: str):
+    """What the bias-aware interval needs apart from M: (estimate, se, per-side bias factors,
+    bias kind), or None when it cannot be formed.  The worst-case bias is linear in M."""
     if p < 1:
         # Local constant weights do not reproduce slopes, so a bound on μ'' alone does not
         # bound their bias: no bias-aware interval for degree 0.
-        return HonestFit(nan, nan, nan, nan, float(M), nan)
+        return None
     hl, hr = _pair(h)
     conv = se = 0.0
-    B = 0.0
+    factors = []
     rows = 0.0
     K = kernel_fn(kernel)
     for sign, side, hs in ((-1.0, ~d.right, hl), (1.0, d.right, hr)):
         u, n, s1, s2 = d.u[side], d.n[side], d.s1[side], d.s2[side]
         w = K(u / hs)
         m = w > 0
-        if m.sum() < p + 1 or not np.isfinite(M):
-            return HonestFit(nan, nan, nan, nan, float(M), nan)
+        if m.sum() < p + 1:
+            return None
         try:
             L, R = coef_weights(u[m], n[m], w[m], p)
         except np.linalg.LinAlgError:
-            return HonestFit(nan, nan, nan, nan, float(M), nan)
+            return None
         conv += sign * (L[0] @ s1[m])
         Lf = np.zeros((p + 1, u.size))
         Lf[:, m] = L
         se += (L[0] ** 2 * _sig(vce, u, n, s1, s2, Lf, powers(u, p))[m]).sum()
+        wts = n[m] * L[0]
         if bias == "taylor":
-            B += taylor_bias_bound(u[m], n[m] * L[0], M)
+            factors.append(float((np.abs(wts) * u[m] * u[m]).sum()))
         else:
-            B += worst_case_bias(u[m], n[m] * L[0], np.ones(m.sum(), bool), M)
+            factors.append(side_bias_integral(np.abs(u[m]), wts))
         rows += n[m].sum()
     se = float(np.sqrt(se * _scale(vce, rows, 2 * (p + 1))))
+    return conv, se, factors, bias
+
+
+def _honest_at(parts, M: float, alpha: float) -> HonestFit:
+    """The bias-aware interval at curvature bound ``M`` from :func:`_honest_parts`."""
+    nan = float("nan")
+    if parts is None or not np.isfinite(M):
+        return HonestFit(nan, nan, nan, nan, float(M), nan)
+    conv, se, factors, bias = parts
+    B = 0.0
+    for f in factors:   # the order of operations of worst_case_bias / taylor_bias_bound
+        B += 0.5 * float(M) * f if bias == "taylor" else float(M) * (0.0 + f)
     if se == 0 and np.isfinite(conv):
         # No noise (e.g. a deterministic uptake rule): only the bias bound is left.
         return HonestFit(float(conv - B), float(conv + B), float(B), float("inf"),
@@ -306,8 +324,9 @@ def honest_by_M(d: SideData, h, M: float, kernel: str = "triangular", p: int = 1
     ``max_bias``, ``p_value``.
     """
     out = []
+    parts = _honest_parts(d, h, kernel, p, vce, "exact")     # the same at every M
     for f in factors:
-        fit = honest_interval(d, h, f * M, kernel, p, alpha, vce)
+        fit = _honest_at(parts, f * M, alpha)
         out.append({"factor": float(f), "M": float(f * M), "ci_low": fit.ci_low,
                     "ci_high": fit.ci_high, "max_bias": fit.max_bias, "p_value": fit.p_value})
     return out
