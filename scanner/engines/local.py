@@ -433,15 +433,24 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 batch = batch.take(perm)
                 by_detail = {d: None if e is None else (e[0][perm],) + e[1:]
                              for d, e in by_detail.items()}
-            cols = {c: numeric(batch, c, table.name, _role(c, plan)) for c in plan.columns}
+            k = len(plan.columns)
+            Y = None
+            if kernel == "compiled":
+                if ybuf is None or ybuf.size < k * m:
+                    ybuf = np.empty(k * m)
+                Y = ybuf[:k * m].reshape(k, m)
+
+            def convert(j):
+                # pyarrow's casts and the copy release the GIL: columns convert in parallel
+                v = numeric(batch, plan.columns[j], table.name, _role(plan.columns[j], plan))
+                if Y is not None:
+                    Y[j] = v
+                return v
+            cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
+                            else map(convert, range(k))))
             for t in plan.treatments:
                 check_binary(cols[t], t, table.name)
             if kernel == "compiled":
-                if ybuf is None or ybuf.size < len(plan.columns) * m:
-                    ybuf = np.empty(len(plan.columns) * m)
-                Y = ybuf[:len(plan.columns) * m].reshape(len(plan.columns), m)
-                for j, c in enumerate(plan.columns):
-                    Y[j] = cols[c]
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
