@@ -102,9 +102,9 @@ def near_edges(st: BinnedStats, level: int | None, final_key: np.ndarray, g, cut
         right = np.flatnonzero(stop > c)[:REFINE_BINS]        # final bins reaching above c
         lo = start[left[0]] if left.size else c
         hi = stop[right[-1]] if right.size else c
-        below = cand[(cand > lo) & (cand <= c)][-REFINE_EDGES:]
+        below = cand[(cand > lo) & (cand < c)][-REFINE_EDGES:]
         above = cand[(cand > c) & (cand < hi)][:REFINE_EDGES]
-        picked.append(np.concatenate([below, above]))
+        picked.append(np.concatenate([below, cand[cand == c], above]))
     v = np.unique(np.concatenate(picked))
     if v.size == 0:
         return set()
