@@ -209,11 +209,7 @@ class BinnedStats:
         j = np.rint((self.key - k) * grid.SUB).astype(np.int64)
         lo = grid.edges(k, p, d) + self.origin
         hi = grid.edges(k + 1, p, d) + self.origin
-        kk, v, _ = grid.inner(self.edges, p, d)
-        for b, e, r in zip(kk, v, grid.ranks(kk)):
-            at = k == b
-            lo[at & (j == r)] = e
-            hi[at & (j == r - 1)] = e
+        grid.part_bounds(k.astype(np.int64), j, grid.inner(self.edges, p, d), lo, hi)
         return lo, hi
 
     def straddles(self, cutoff: float, right_closed: bool = True) -> bool:

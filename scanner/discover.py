@@ -52,6 +52,8 @@ from .bins import BinnedStats
 from .engines.grid import edges, grid_of_width
 from .engines.plan import weighted_quantile
 from .estimate.kernels import kernel as kernel_fn
+from .estimate.local import side_data
+from .estimate.robust import curvature_bound
 from .locate import lr_critical  # noqa: F401  (re-exported: the search's LR constant)
 
 MAX_GRID = 500          # grid points per running variable × treatment
@@ -395,7 +397,7 @@ class BiasBound:
     """Worst-case smoothing bias of a local linear jump under |μ''| ≤ M on each side."""
 
     bound: float             # B̄ = (M/2)·Σ_i |ℓ_i| u_i²
-    curvature: float         # M, the largest |μ''| of the quartic pilots inside the window
+    curvature: float         # M, the upper bound on |μ''| of the quadratic pilots (curvature_bound)
     weight_sum: float        # Σ_i |ℓ_i| u_i²
 
     def p_value(self, jump: float, se: float) -> float:
@@ -423,17 +425,20 @@ def bias_bound(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     -----
     Bounded-second-derivative class of Kolesár & Rothe (2018, AER 108(8)) and Armstrong &
     Kolesár (2020, QE 11(1)): |bias| ≤ (M/2)·Σ|ℓ_i|u_i² for a linear estimator Σℓ_i y_i that
-    reproduces lines on each side.  M = max over the two sides of |μ̂''| from a quadratic fitted
-    on each side over twice the bandwidth (their rule of thumb uses a global quartic, from
-    memory; its second derivative is too noisy at the window's edge to bound a search).  A curved but smooth uptake on a coarse support otherwise
-    looks like a jump to a local linear fit, and a search seeks out exactly such places.
+    reproduces lines on each side.  M is the larger over the two sides of |μ̂''| + z·se(μ̂''), the
+    upper end of a one-sided 80% interval (:func:`scanner.estimate.honest.curvature_bound`, HC3
+    sandwich), from a quadratic fitted on each side over twice the bandwidth (their rule of
+    thumb uses a global quartic, from memory; its second derivative is too noisy at the
+    window's edge to bound a search).  A point estimate of |μ''| is below the truth about half
+    the time, and a search seeks out exactly the places where it is.  A curved but smooth uptake
+    on a coarse support otherwise looks like a jump to a local linear fit.
     """
-    st, x, n, s1, _ = _bins(stats, column)
+    _, x, n, _, _ = _bins(stats, column)
     h = float(bandwidth)
     K = kernel_fn(kernel)
     u = x - cutoff
     right = (u >= 0) if right_closed else (u > 0)
-    curv, wsum = 0.0, 0.0
+    wsum = 0.0
     for side in (~right, right):
         w = K(u[side] / h)
         inside = w > 0
@@ -444,14 +449,10 @@ def bias_bound(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
         det = S0 * S2 - S1 * S1
         ell = ws * (S2 - S1 * us) / det
         wsum += float((ns * np.abs(ell) * us * us).sum())
-        # Curvature pilot: a quadratic on this side over twice the bandwidth (as in the
-        # second-derivative step of Imbens & Kalyanaraman 2012); M is the larger |μ''| of the two.
-        pick = side & (np.abs(u) < 2 * h)
-        if pick.sum() >= 3:
-            scale = max(float(np.abs(u[pick]).max()), 1e-12)
-            z = u[pick] / scale
-            R = np.vander(z, 3, increasing=True)
-            A = (R * n[pick][:, None]).T @ R
-            beta = np.linalg.lstsq(A, R.T @ s1[pick], rcond=None)[0]
-            curv = max(curv, abs(2 * beta[2]) / scale ** 2)
+    # Curvature pilot: a quadratic on each side over twice the bandwidth (as in the
+    # second-derivative step of Imbens & Kalyanaraman 2012), taken at the upper end of a
+    # one-sided interval for its |μ''| (curvature_bound), so pilot noise widens the allowance.
+    M = curvature_bound(side_data(stats, column, cutoff, right_closed), window=2 * h,
+                        kernel="uniform")
+    curv = float(M) if np.isfinite(M) else 0.0      # neither side has three support values
     return BiasBound(0.5 * curv * wsum, curv, wsum)

@@ -127,3 +127,30 @@ def test_exact_bias_shortens_the_discrete_design_interval():
         ratio.append((exact.ci_high - exact.ci_low) / (taylor.ci_high - taylor.ci_low))
         cover.append(exact.ci_low <= tau <= exact.ci_high)
     assert np.median(ratio) < 0.85 and np.mean(cover) >= 0.9, (np.median(ratio), np.mean(cover))
+
+
+def test_search_bias_bound_takes_the_upper_curvature_bound():
+    # Reference: statsmodels OLS of y on (1, u, u²) over the rows of each side within twice the
+    # bandwidth, HC3 covariance; M = max over sides of |2β₂| + z·2·se(β₂), z = CURVATURE_Z (the
+    # one-sided 80% upper end).  Integer score, so the bins are the rows.  The point estimate
+    # max |2β₂| alone (the earlier rule) is below it.
+    import pandas as pd
+    import statsmodels.api as sm
+    from scanner.discover import bias_bound
+    from scanner.estimate.honest import CURVATURE_Z
+    from .conftest import binned
+    rng = np.random.default_rng(17)
+    x = rng.integers(0, 100, 20_000).astype(float)
+    d = (rng.random(x.size) < 0.3 + 0.004 * x - 0.00003 * (x - 50) ** 2).astype(float)
+    c, h = 50.0, 10.0
+    bb = bias_bound(binned(pd.DataFrame({"x": x, "d": d}), "x", ["d"], ["d"]), "d", c, h)
+    u = x - c
+    upper, point = [], []
+    for side in (u < 0, u >= 0):
+        m = side & (np.abs(u) < 2 * h)
+        fit = sm.OLS(d[m], np.column_stack([np.ones(m.sum()), u[m], u[m] ** 2])).fit(cov_type="HC3")
+        point.append(abs(2 * fit.params[2]))
+        upper.append(abs(2 * fit.params[2]) + CURVATURE_Z * 2 * fit.bse[2])
+    assert_allclose(bb.curvature, max(upper), rtol=1e-9)
+    assert_allclose(bb.bound, 0.5 * bb.curvature * bb.weight_sum, rtol=1e-12)
+    assert bb.curvature > 1.2 * max(point)

@@ -40,11 +40,13 @@ def test_no_usable_without_a_jump_and_the_planted_jump_covered(design, reps):
 
 
 @pytest.mark.parametrize("design,kind", [("half_integer", "robust"), ("off_grid", "robust"),
-                                         ("lognormal", "honest"), ("five_point", "honest")])
+                                         ("lognormal", "robust"), ("five_point", "honest")])
 def test_reported_interval_follows_the_coarse_rule(design, kind):
     # The scan reports the bias-aware interval only where a side has fewer than five distinct
     # values inside h (Kolesár & Rothe 2018, AER 108(8): with few support points the bias of a
     # local fit does not vanish); a lattice with enough values per side reports the robust one.
+    # The lognormal score is continuous: its bins next to the declared cutoff keep the binning
+    # pass's resolution (scanner/engines/settle.py), so it is not coarse there.
     r = bench.run(design, 2, seed=4)
     assert r["reported_interval"] == {kind: 2}, r
 

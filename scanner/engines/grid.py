@@ -136,25 +136,52 @@ def inner(forced, p: float, d: int):
     return k[keep], v[keep], rc[keep]
 
 
+def _blocks(kk: np.ndarray, k: np.ndarray):
+    """First and one-past-last position in ``kk`` (sorted) of the inner edges of each bin ``k``."""
+    return np.searchsorted(kk, k, "left"), np.searchsorted(kk, k, "right")
+
+
 def ranks(k: np.ndarray) -> np.ndarray:
     """1-based rank of each inner edge within its bin (``k`` sorted by edge value)."""
-    r = np.ones(k.size, np.int64)
-    for i in range(1, k.size):
-        if k[i] == k[i - 1]:
-            r[i] = r[i - 1] + 1
-    return r
+    k = np.asarray(k)
+    return np.arange(k.size, dtype=np.int64) - np.searchsorted(k, k, "left") + 1
 
 
 def sub_index(k: np.ndarray, x: np.ndarray, inn) -> np.ndarray | None:
     """Part of its bin each x falls in: the number of inner edges of bin k it lies above.
 
     ``inn`` is :func:`inner`; None when no bin is split.  "Above" is x >= e for a right-closed
-    edge and x > e for a left-closed one.
+    edge and x > e for a left-closed one.  Inner edges sorted by value have non-decreasing bins,
+    so the edges of bin k are one block of the sorted list and the count is two binary searches
+    per closure kind (clipped to the block), whatever the number of edges.
     """
     kk, v, rc = inn
     if kk.size == 0:
         return None
+    k = np.asarray(k, np.int64)
+    x = np.asarray(x, float)
     j = np.zeros(k.shape, np.int64)
-    for b, e, r in zip(kk, v, rc):
-        j += (k == b) & ((x >= e) if r else (x > e))
+    for closed, side in ((True, "right"), (False, "left")):
+        sel = rc == closed
+        if not sel.any():
+            continue
+        kb, vb = kk[sel], v[sel]
+        s, e = _blocks(kb, k)
+        j += np.clip(np.searchsorted(vb, x, side), s, e) - s
     return j
+
+
+def part_bounds(k: np.ndarray, j: np.ndarray, inn, lo: np.ndarray, hi: np.ndarray) -> None:
+    """Set ``lo``/``hi`` of part ``j`` of bin ``k`` to the inner edges that bound it (in place).
+
+    Part j (j ≥ 1) starts at the bin's j-th inner edge, and part j ends at its (j+1)-th.
+    """
+    kk, v, _ = inn
+    if kk.size == 0:
+        return
+    s, e = _blocks(kk, np.asarray(k, np.int64))
+    j = np.asarray(j, np.int64)
+    has_lo = (j >= 1) & (j <= e - s)
+    lo[has_lo] = v[(s + j - 1)[has_lo]]
+    has_hi = (j >= 0) & (j < e - s)
+    hi[has_hi] = v[(s + j)[has_hi]]

@@ -30,7 +30,6 @@ The cost of the pass against plain reading is in ``benchmarks/results/scale.md``
 """
 from __future__ import annotations
 
-from dataclasses import replace
 
 import numpy as np
 
@@ -40,6 +39,7 @@ from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
 from .compact import Addends
+from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
 
 
@@ -203,30 +203,6 @@ def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Colum
 
 
 # ---------------------------------------------------------------------- grid state
-def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int, forced=()) -> BinnedStats:
-    """``stats`` with bins re-keyed by grid bin ``key`` on the grid (p, d); sums add up exactly.
-
-    Bins of the new grid that hold a forced edge are split there.  Each source bin lies wholly
-    on one side of every forced edge (an exact value, or a bin already split at it or ending on
-    it), so its midpoint tells the side.
-    """
-    forced = tuple(sorted(set(forced)))
-    base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0, edges=forced)
-    key = np.asarray(key, np.int64)
-    lo, hi = stats.bounds()
-    j = grid.sub_index(key, (lo + hi) / 2, grid.inner(forced, p, d))
-    fkey = key.astype(float) if j is None else key + j / grid.SUB
-    return base._grouped(fkey, stats.period, stats.half, stats._arrays())
-
-
-def _splittable(stats: BinnedStats, value: float) -> bool:
-    """True when no bin of ``stats`` holds rows on both sides of ``value`` (it can become an edge)."""
-    if stats.kind == "exact":
-        return True
-    lo, hi = stats.bounds()
-    return not ((lo < value) & (value < hi)).any()
-
-
 class Accumulator:
     """Running totals for one running variable and the state of its grid."""
 
@@ -350,46 +326,12 @@ class Accumulator:
         self.add(None)
 
     def finish(self) -> BinnedStats:
-        st = self.stats
-        if self.state == "user" or st.n_bins == 0:
-            return st
-        if self.state == "exact":
-            if st.distinct_values() <= self.plan.max_exact:
-                return st
-            m, e = grid.final_grid(np.unique(st.key), None, self.plan.max_bins)
-            g = grid.series_grid(m, e)
-            return self._settle(st, grid.keys(st.key, *g), g)
-        m, e = grid.final_grid(np.unique(_base(st.key)), self.level, self.plan.max_bins)
-        r = m * 10 ** (e - self.level)
-        return self._settle(st, np.floor_divide(_base(st.key), r), grid.series_grid(m, e))
-
-    def _settle(self, st: BinnedStats, key, g) -> BinnedStats:
-        """The final grid, split at the forced edges and (``plan.round_edges``) at every round
-        value :func:`scanner.candidates.round_cutoffs` can propose on it, where the bins held
-        so far allow that exactly.  Splitting moves bin means, which can move the round values,
-        so this repeats until they settle."""
-        forced = set(self.forced)
-        out = regroup(st, key, *g, forced)
-        if not self.plan.round_edges:
-            return out
-        from ..candidates import round_cutoffs
-        for _ in range(5):
-            new = {(v, True) for v in round_cutoffs(out, 0)} - forced
-            new = {e for e in new if _splittable(st, e[0])}
-            if not new:
-                break
-            forced |= new
-            out = regroup(st, key, *g, forced)
-        return out
+        """The settled bins (:func:`scanner.engines.settle.settle`)."""
+        return settle(self.stats, self.state, self.level, self.forced, self.plan)
 
 
 _NO_EXT = np.zeros(0, np.int64)
 LUT_MAX = 1 << 22         # dense (bin, period-half) look-up table of one batch: at most 32 MB
-
-
-def _base(key: np.ndarray) -> np.ndarray:
-    """Grid bin index of fixed-width keys (dropping the part of a split bin)."""
-    return np.floor(key).astype(np.int64)
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
