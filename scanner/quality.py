@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .engines.plan import weighted_quantile
 from .units import PLAUSIBLE, plausible_range, units_for
 
 KINDS = ("mixed_units", "sentinel_values", "decimal_comma", "cutoff_off_lattice",
@@ -153,17 +154,29 @@ def _implausible(value: float, r) -> tuple | None:
     return None
 
 
-def _unit_finding(c: str, r, v: np.ndarray) -> dict | None:
-    """mixed_units or wrong_unit for one running variable, from its profiled values."""
+def _unit_finding(c: str, r, v: np.ndarray, w: np.ndarray | None = None) -> dict | None:
+    """mixed_units or wrong_unit for one running variable, from its values ``v`` (profiled
+    rows; or bin means with row counts ``w``)."""
     q = r.quantity
-    if v.size < MIXED_MIN:
+    weighted = w is not None
+    w = np.asarray(w, float) if weighted else np.ones(v.size)
+    total = float(w.sum())
+    if total < MIXED_MIN:
         return None
+
+    def share(mask):
+        return float(w[mask].sum()) / total
+
+    def median(mask):
+        if not weighted:
+            return float(np.median(v[mask]))
+        return float(weighted_quantile(v[mask], w[mask], 0.5))
     ranges = {u: plausible_range(q, u) for u in units_for(q)}
     ranges = {u: x for u, x in ranges.items() if x}
     own = r.unit
     if own is None or plausible_range(q, own) is None:
         # no declared unit: read the column in the unit most values fit
-        own = max(ranges, key=lambda u: np.mean((v >= ranges[u][0]) & (v <= ranges[u][1])),
+        own = max(ranges, key=lambda u: share((v >= ranges[u][0]) & (v <= ranges[u][1])),
                   default=None)
         if own is None:
             return None
@@ -171,23 +184,49 @@ def _unit_finding(c: str, r, v: np.ndarray) -> dict | None:
     inside = (v >= lo) & (v <= hi)
     others = {u: (v >= a) & (v <= b) for u, (a, b) in ranges.items()
               if plausible_range(q, u) != (lo, hi)}
-    share = inside.mean()
+    own_share = share(inside)
+    everything = np.ones(v.size, bool)
     for u, fit in others.items():
-        if share < 0.5 and fit.mean() >= 0.9:
+        if own_share < 0.5 and share(fit) >= 0.9:
             return {"kind": "wrong_unit", "column": c, "declared": r.unit, "fits": u,
-                    "range": (lo, hi), "median": float(np.median(v))}
-    if share < 0.5 and not others:
+                    "range": (lo, hi), "median": median(everything)}
+    if own_share < 0.5 and not others:
         return {"kind": "wrong_unit", "column": c, "declared": r.unit, "fits": None,
-                "range": (lo, hi), "median": float(np.median(v))}
-    need = max(MIXED_MIN, MIXED_SHARE * v.size)
+                "range": (lo, hi), "median": median(everything)}
+    need = max(MIXED_MIN, MIXED_SHARE * total)
     for u, fit in others.items():
         only = fit & ~inside
-        if only.sum() >= need and inside.sum() >= need:
+        if w[only].sum() >= need and w[inside].sum() >= need:
             a, b = ranges[u]
             return {"kind": "mixed_units", "column": c, "own": own, "other": u, "keep": (lo, hi),
                     "other_range": (a, b), "declared": r.unit,
-                    "median_other": float(np.median(v[only])), "median_own": float(np.median(v[inside]))}
+                    "median_other": median(only), "median_own": median(inside)}
     return None
+
+
+def late_unit_findings(found: list[dict], spec, stats: dict, profiled: int) -> list[dict]:
+    """Unit findings in the rows after the profile, from the bins of the whole table.
+
+    The profile decides what the pass does about units, so a column whose unit changes after
+    its first ``profiled`` rows (a laboratory that switched units mid-extract) would go
+    unwarned.  The bins hold every row: checked again there, such a column gets its warning with
+    ``late`` set — its rows were binned as read, not set missing.
+    """
+    seen = {f["column"] for f in found if f["kind"] in ("mixed_units", "wrong_unit")}
+    out = []
+    for r in spec.running:
+        c = r.column
+        st = stats.get(c)
+        if (c in seen or st is None or r.unit_column or not r.quantity
+                or r.quantity not in PLAUSIBLE or st.total <= profiled):
+            continue
+        p = st.pooled()
+        ok = p.n > 0
+        f = _unit_finding(c, r, p.x[ok], p.n[ok])
+        if f:
+            f["late"] = profiled
+            out.append(f)
+    return out
 
 
 # ---------------------------------------------------------------------- messages
@@ -249,6 +288,20 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                     f"column '{c}' holds two units by its unit column '{f['unit_column']}' "
                     f"({parts}); {_n(moved)} were converted to {target} row by row{tail}.",
                     moved))
+        elif f["kind"] == "mixed_units" and "late" in f:
+            st = stats[c]
+            lo, hi = f["keep"]
+            a, b = f["other_range"]
+            k = _rows_outside(st, lo, hi)
+            out.append(warning("mixed_units", c,
+                f"column '{c}' seems to hold two units of {_running(spec, c).quantity} after "
+                f"its first {f['late']:,} rows: {_n(k)} lie outside the plausible range of "
+                f"{f['own']} ({_g(lo)}–{_g(hi)}) and fit only {f['other']} (median "
+                f"{_g(f['median_other'])}, plausible {_g(a)}–{_g(b)}). They were seen only after "
+                "the rows that decide how units are handled, so they were kept as they are, "
+                f"and candidates among them are in {f['other']}. Name each row's "
+                f"unit with unit_column = \"...\" in the [[running]] table of '{c}', or split "
+                "the extract by unit.", k))
         elif f["kind"] == "mixed_units":
             k = cl.out_of_range.get(c, 0)
             lo, hi = f["keep"]

@@ -275,7 +275,8 @@ def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> li
     out = []
     if cleaning is not None and checks is not None:
         out += quality.parse_warnings(cleaning, spec, checks["sources"])
-        out += quality.findings_to_warnings(checks["found"], cleaning, stats, spec)
+        late = quality.late_unit_findings(checks["found"], spec, stats, quality.PROFILE_ROWS)
+        out += quality.findings_to_warnings(checks["found"] + late, cleaning, stats, spec)
         out += checks["repeated"]
     out += quality.rule_warnings(spec, rules, stats, rule_cutoff)
     out += quality.no_variation(spec, stats)

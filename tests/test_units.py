@@ -186,3 +186,31 @@ def test_mixed_units_says_when_most_rows_are_in_the_other_unit():
     assert f"{share}% of the values fit mg/dL" in w["message"] and share < 50
     assert "More than half the rows fit only mmol/L" in w["message"]
     assert 'set unit = "mmol/L"' in w["message"]
+
+
+def test_unit_switch_after_the_profile_is_warned(monkeypatch):
+    # A glucose column in mg/dL whose later rows (after the rows profiled before the pass) are
+    # in mmol/L: the profile sees one unit, the bins of the whole table two.  Without the check
+    # on the bins the scan said nothing.
+    import numpy as np
+    import pandas as pd
+    from scanner import quality
+    from scanner.scan import scan
+    monkeypatch.setattr(quality, "PROFILE_ROWS", 3000)
+    rng = np.random.default_rng(9)
+    mgdl = np.round(rng.normal(100, 15, 8000))
+    late = np.arange(mgdl.size) >= 5000
+    g = np.where(late, np.round(mgdl / 18.016, 1), mgdl)
+    d = (rng.random(g.size) < 0.3).astype(float)
+    spec = {"running": [{"column": "g", "quantity": "fasting_glucose", "unit": "mg/dL"}],
+            "treatments": {"columns": ["d"]},
+            "search": {"round_numbers": False, "discover": False}}
+    res = scan(spec, pd.DataFrame({"g": g, "d": d}))
+    w = [w for w in res.warnings if w["kind"] == "mixed_units"]
+    assert len(w) == 1
+    assert "after its first 3,000 rows" in w[0]["message"]
+    assert w[0]["count"] == int(late.sum())
+    assert "unit_column" in w[0]["message"]
+    # the same column all in mg/dL: no warning
+    res = scan(spec, pd.DataFrame({"g": mgdl, "d": d}))
+    assert not [w for w in res.warnings if w["kind"] in ("mixed_units", "wrong_unit")]
