@@ -270,11 +270,31 @@ def view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
                   f"FROM {rels['events']} WHERE {q(lay.events_date)} IS NOT NULL")}
     out.update(code_map(lay))
     if "periods" in rels:
-        out["obs"] = (f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
-                      f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
-                      f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
-                      f"AND {q(lay.period_end)} IS NOT NULL")
+        out["obs"] = merged_periods(
+            f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
+            f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
+            f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
+            f"AND {q(lay.period_end)} IS NOT NULL")
     return out
+
+
+def merged_periods(periods: str) -> str:
+    """Observed periods ``(person, start_day, end_day)`` with overlapping and abutting ones
+    merged into one (a period starting the day after another ends continues it).
+
+    Enrolment files often hold one row per month: unmerged, a window that crosses from one
+    month into the next would read as "not observed".  Gaps and islands: a period opens a new
+    island when it starts more than a day after every earlier period of the person has ended.
+    Plain window functions, the same in DuckDB and Spark SQL.
+    """
+    return ("SELECT person, min(start_day) AS start_day, max(end_day) AS end_day FROM ("
+            "SELECT person, start_day, end_day, sum(CASE WHEN prev_end IS NULL "
+            "OR start_day > prev_end + 1 THEN 1 ELSE 0 END) OVER (PARTITION BY person "
+            "ORDER BY start_day, end_day ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) "
+            "AS island FROM (SELECT person, start_day, end_day, max(end_day) OVER (PARTITION BY "
+            "person ORDER BY start_day, end_day ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) "
+            f"AS prev_end FROM ({periods}) p0 WHERE end_day >= start_day) p1) p2 "
+            "GROUP BY person, island")
 
 
 FEMALE_CONCEPT = 8532      # OMOP gender concept "FEMALE" (from memory: OMOP standard vocabulary)
@@ -308,8 +328,10 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
         ev += (f" UNION ALL SELECT CAST(person_id AS STRING) AS person, {d.day('procedure_date')} AS day, "
                f"CAST(procedure_concept_id AS STRING) AS code FROM {rels['procedure_occurrence']} "
                f"WHERE procedure_date IS NOT NULL")
-    obs = (f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} AS start_day, "
-           f"{d.day('observation_period_end_date')} AS end_day FROM {rels['observation_period']}")
+    obs = merged_periods(
+        f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} "
+        f"AS start_day, {d.day('observation_period_end_date')} AS end_day "
+        f"FROM {rels['observation_period']}")
     own = " UNION ALL ".join(f"SELECT {j} AS j, {int(c)} AS concept"
                              for j, u in enumerate(lay.uptakes) for c in u.concepts)
     uc = f"SELECT j, CAST(concept AS STRING) AS code FROM ({own}) o"
