@@ -9,11 +9,12 @@ the cutoff never share a bin with rows below it (plain ``floor(x/w)`` puts 0.3 i
 the edges of a grid ``r`` times coarser are every ``r``-th edge of the finer grid, so regrouping
 keys by integer division gives the same bins as keying the rows afresh.
 
-Rule (see :func:`settle`): a running variable keeps exact-support bins while it has at most
-``fine_keys`` distinct values; beyond that its rows go onto the finest power-of-ten grid on
-which the table occupies at most ``fine_keys`` bins.  At the end, a variable with at most
+Rule (the end of it in :mod:`scanner.engines.settle`): a running variable keeps exact-support
+bins while it has at most ``fine_keys`` distinct values; beyond that its rows go onto the
+finest power-of-ten grid on which the table occupies at most ``fine_keys`` bins.  At the end, a variable with at most
 ``max_exact`` distinct values keeps exact bins; otherwise it gets the finest width of the
-1-2-5 series (a multiple of the power-of-ten grid) that occupies at most ``max_bins`` bins.
+1-2-5 series (a multiple of the power-of-ten grid) that occupies at most ``max_bins`` bins,
+split next to declared cutoffs at the edges of the bins held during the pass.
 Every step depends only on the set of values in the table — not on row order, batch size or
 engine — so all engines and all batch sizes produce the same bins.
 """
