@@ -272,13 +272,18 @@ def main(argv=None):
     ap.add_argument("--out", default="honest", help="name of the result files in results/")
     ap.add_argument("--combine", nargs="*", default=None,
                     help="combine these results/*.json files (runs with other seeds) into --out")
+    ap.add_argument("--replace", action="store_true",
+                    help="with --combine: take each design only from the last file that has it "
+                         "(a rerun after a code change replaces the earlier run)")
     a = ap.parse_args(argv)
     res = []
     RESULTS.mkdir(exist_ok=True)
     if a.combine:
-        parts = [p for f in a.combine for p in json.loads((RESULTS / f).read_text())]
-        res = [combine([p for p in parts if p["design"] == d])
-               for d in dict.fromkeys(p["design"] for p in parts)]
+        files = [(f, json.loads((RESULTS / f).read_text())) for f in a.combine]
+        last = {p["design"]: f for f, ps in files for p in ps}
+        parts = [p for f, ps in files for p in ps if not a.replace or last[p["design"]] == f]
+        order = dict.fromkeys(p["design"] for _, ps in files for p in ps)
+        res = [combine([p for p in parts if p["design"] == d]) for d in order]
         (RESULTS / f"{a.out}.json").write_text(json.dumps(res, indent=2) + "\n")
         a.designs, a.reps, a.seed = [r["design"] for r in res], res[0]["reps"], res[0]["seed"]
     for d in a.designs if not a.combine else ():
@@ -309,7 +314,8 @@ def main(argv=None):
                      f"{far} | {r['seconds']} |")
     text = "\n".join(lines)
     print(text)
-    how = (f"Combined from results/{', results/'.join(a.combine)} (seeds in the .json)"
+    how = (f"Combined from results/{', results/'.join(a.combine)} (seeds in the .json"
+           + ("; each design from the last file that has it)" if a.replace else ")")
            if a.combine else
            f"Command: `PYTHONPATH=. python benchmarks/honest_verdicts.py --reps {a.reps} "
            f"--seed {a.seed} --designs {' '.join(a.designs)} --out {a.out}`")

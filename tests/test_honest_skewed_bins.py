@@ -36,17 +36,17 @@ def _design(kind, n=20_000, seed=7):
     return pd.DataFrame({"x": x, "d": d})
 
 
-def _bins(df, kind, **kw):
-    plan = BinPlan(("x",), ("d",), ("d",), edges={"x": ((C, True),)}, **PLANS[kind], **kw)
+def _bins(df, kind, right_closed=True, **kw):
+    plan = BinPlan(("x",), ("d",), ("d",), edges={"x": ((C, right_closed),)}, **PLANS[kind], **kw)
     return bin_table(open_table(df), plan).stats["x"]
 
 
-def _rowlevel_uniform(x, y, c, h_left, h_right):
+def _rowlevel_uniform(x, y, c, h_left, h_right, right_closed=True):
     """statsmodels WLS of y on (1, D, u, D·u), HC1, over the rows with −1 < u/h_left and
     u/h_right < 1 (uniform kernel, u = x − c), the window of the binned fit."""
     u = x - c
     m = (u / h_left > -1) & (u / h_right < 1)
-    D = (u >= 0).astype(float)
+    D = (u >= 0 if right_closed else u > 0).astype(float)
     Z = np.column_stack([np.ones_like(u), D, u, D * u])[m]
     return sm.WLS(y[m], Z, weights=np.full(m.sum(), 0.5)).fit(cov_type="HC1")
 
@@ -90,18 +90,21 @@ def test_jump_from_refined_bins_is_the_rowlevel_fit_within_its_bound():
     assert abs(fit.se / ref.bse[1] - 1) < 0.01
 
 
-def test_exact_support_neighbourhood_gives_the_rowlevel_fit_exactly():
+@pytest.mark.parametrize("right_closed", [True, False])
+def test_exact_support_neighbourhood_gives_the_rowlevel_fit_exactly(right_closed):
     # Reference: statsmodels WLS on the rows (uniform kernel, HC1).  The window (0.07495,
     # 0.12505) lies inside the refined neighbourhood, where every bin holds one recorded value,
-    # so the binned fit is the row-level one to rounding.
+    # so the binned fit is the row-level one to rounding.  Five rows lie at 0.1 itself: a
+    # left-closed rule keeps them on the left.
     df = _design("exact")
-    st = _bins(df, "exact")
+    assert (df.x == C).sum() > 0
+    st = _bins(df, "exact", right_closed)
     h = 0.02505
     lo, hi = st.bounds()
     inside = (hi > C - h) & (lo < C + h)
     assert (st.sxx - st.sx ** 2 / st.n)[inside].max() <= 1e-15     # one value per bin
-    ref = _rowlevel_uniform(df.x.to_numpy(), df.d.to_numpy(), C, h, h)
-    fit = fit_jump(st, "d", C, h, kernel="uniform")
+    ref = _rowlevel_uniform(df.x.to_numpy(), df.d.to_numpy(), C, h, h, right_closed)
+    fit = fit_jump(st, "d", C, h, kernel="uniform", right_closed=right_closed)
     assert_allclose(fit.jump, ref.params[1], rtol=1e-9)
     assert_allclose(fit.se, ref.bse[1], rtol=1e-9)
 

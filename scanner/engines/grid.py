@@ -9,16 +9,18 @@ the cutoff never share a bin with rows below it (plain ``floor(x/w)`` puts 0.3 i
 the edges of a grid ``r`` times coarser are every ``r``-th edge of the finer grid, so regrouping
 keys by integer division gives the same bins as keying the rows afresh.
 
-Rule (see :func:`settle`): a running variable keeps exact-support bins while it has at most
-``fine_keys`` distinct values; beyond that its rows go onto the finest power-of-ten grid on
-which the table occupies at most ``fine_keys`` bins.  At the end, a variable with at most
+Rule (the end of it in :mod:`scanner.engines.settle`): a running variable keeps exact-support
+bins while it has at most ``fine_keys`` distinct values; beyond that its rows go onto the
+finest power-of-ten grid on which the table occupies at most ``fine_keys`` bins.  At the end, a variable with at most
 ``max_exact`` distinct values keeps exact bins; otherwise it gets the finest width of the
-1-2-5 series (a multiple of the power-of-ten grid) that occupies at most ``max_bins`` bins.
+1-2-5 series (a multiple of the power-of-ten grid) that occupies at most ``max_bins`` bins,
+split next to declared cutoffs at the edges of the bins held during the pass.
 Every step depends only on the set of values in the table — not on row order, batch size or
 engine — so all engines and all batch sizes produce the same bins.
 """
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -123,13 +125,32 @@ def inner(forced, p: float, d: int):
 
     ``forced`` holds pairs ``(value, right_closed)``.  An edge is inside bin k when
     ``edge(k) < value``; a left-closed edge on a bin's lower edge also counts, since rows at the
-    value belong below it.  Returns arrays (bin k, value, right_closed).
+    value belong below it.  Returns arrays (bin k, value, right_closed), read-only (a settled
+    grid's edges are looked up for every fit, so the answer is cached per tuple of edges).
     """
     if not forced:
         return np.zeros(0, np.int64), np.zeros(0), np.zeros(0, bool)
-    fs = sorted(set((float(v), bool(rc)) for v, rc in forced))
-    v = np.array([f[0] for f in fs])
-    rc = np.array([f[1] for f in fs])
+    if isinstance(forced, tuple):
+        return _inner_cached(forced, float(p), int(d))
+    return _inner(forced, p, d)
+
+
+@functools.lru_cache(maxsize=64)
+def _inner_cached(forced: tuple, p: float, d: int):
+    out = _inner(forced, p, d)
+    for a in out:
+        a.flags.writeable = False
+    return out
+
+
+def _inner(forced, p: float, d: int):
+    pairs = np.array([(float(v), bool(rc)) for v, rc in forced], float).reshape(-1, 2)
+    v, rc = pairs[:, 0], pairs[:, 1] > 0
+    order = np.lexsort((rc, v))                 # by value, left-closed first (as sorted tuples)
+    v, rc = v[order], rc[order]
+    new = np.ones(v.size, bool)
+    new[1:] = (v[1:] != v[:-1]) | (rc[1:] != rc[:-1])
+    v, rc = v[new], rc[new]
     k = keys(v, p, d)
     lo = edges(k.astype(float), p, d)
     keep = (lo < v) | ((lo == v) & ~rc)

@@ -11,7 +11,8 @@ running variable has at most ``plan.fine_keys`` distinct values its bins are exa
 past that, rows go onto a power-of-ten grid that is made ten times coarser whenever it holds
 more than ``plan.fine_keys`` bins (regrouping keys is exact).  At the end a variable with at
 most ``plan.max_exact`` distinct values keeps exact bins, and any other gets the finest 1-2-5
-width with at most ``plan.max_bins`` occupied bins (:mod:`scanner.engines.grid`).  We chose this
+width with at most ``plan.max_bins`` occupied bins (:mod:`scanner.engines.grid`), kept as fine
+as the pass's own bins next to declared cutoffs (:mod:`scanner.engines.settle`).  We chose this
 over a sample of the first rows or Parquet min/max statistics because the result depends only
 on the set of values: a table sorted by the running variable, a stray outlier, a different
 batch size or a Spark partitioning cannot change the grid.  An outlier costs one bin.
