@@ -23,7 +23,8 @@ with the rows already in memory (loading them is not timed):
     cutscan's robust and bias-aware intervals use it), the bins used (so donut holes, placebo
     windows and held-out halves are the same rows) and whether it is the two-sided jump
     regression or a one-sided fit.  Recorded are: the first-stage and covariate jumps
-    (``fit_jumps``: main fit, balance, placebo cutoffs, donut, one-sided limits for the
+    (``fit_jumps``: main fit, balance, placebo cutoffs (computed together by cutscan, one fit
+    each here), donut, one-sided limits for the
     compliance shares); each robust bias-corrected estimate (``robust_jump``: the order-p fit
     at h and the order-p+1 fit at b — two WLS fits; the bias-corrected weights and robust
     variance an analyst would still have to code on top are not charged); each bias-aware
@@ -200,6 +201,25 @@ class Recorder:
             return out
         patch(local, "fit_jumps", fit_jumps)
         patch(balance, "fit_jumps", fit_jumps)
+
+        # Placebo fits are computed together (scanner.estimate.batch.jumps_at); each placebo
+        # cutoff is still one local fit on the rows of its window, recorded as fit_jumps was.
+        placebo = importlib.import_module("scanner.diagnostics.placebo")
+        jumps_at0 = placebo.jumps_at
+
+        def jumps_at(u, n, s1, s2, points, h, kernel="triangular", degree=1, min_bins=4):
+            out = jumps_at0(u, n, s1, s2, points, h, kernel, degree, min_bins)
+            if rec.ctx is not None:
+                for p, jump in zip(points, out[0]):
+                    if not np.isfinite(jump):
+                        continue
+                    v = u - p
+                    win = np.abs(v) < h
+                    sub = local.SideData(v[win], n[win], s1[win], s2[win], v[win] >= -1e-9 * h)
+                    at = float(np.round(rec.ctx["cutoff"] + p, 12))
+                    rec._add(sub, at, h, h, degree, "HC1", "fit_jumps", values=[jump])
+            return out
+        patch(placebo, "jumps_at", jumps_at)
 
         robust_jump0 = robust.robust_jump
 
