@@ -93,3 +93,14 @@ def test_honest_by_M_equals_one_interval_per_M():
                 for k in ("ci_low", "ci_high", "max_bias", "p_value"):
                     a, b = row[k], getattr(ref, k)
                     assert (np.isnan(a) and np.isnan(b)) or a == b, (name, h, k)
+
+
+def test_no_standard_error_means_no_test():
+    # Four rows, one per bin, two a side: a local linear fit is exact and HC1 has no degrees
+    # of freedom left (n = 2(p + 1)).  There is no SE, so no p-value — it was reported as 0.
+    from scanner.estimate.local import fit_jump
+    d = _bins(np.array([-2.0, -1.0, 1.0, 2.0]), np.array([0.1, 0.2, 0.9, 0.7]))
+    f = fit_jump(None, "", 0.0, 5.0, "triangular", 1, data=d)
+    assert np.isnan(f.p_value) and np.isnan(f.jump) and "standard error" in f.reason
+    jump, se, z = jumps_at(d.u, d.n, d.s1, d.s2, [0.0], 5.0, "triangular", 1, min_bins=4)
+    assert np.isnan(jump[0]) and np.isnan(z[0])

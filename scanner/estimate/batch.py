@@ -84,9 +84,12 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     jump = est[1] - est[0]
     se = np.sqrt((var[0] + var[1]) * scale)
     floor = np.array([se_floor(a, b) for a, b in zip(est[0], est[1])])
-    se = np.where(np.isfinite(se), np.maximum(se, floor), se)
+    # no standard error (too few rows for HC1): no estimate either, as fit_jumps says
+    jump = np.where(np.isfinite(se), jump, np.nan)
+    se = np.maximum(se, floor)
     with np.errstate(divide="ignore", invalid="ignore"):
-        z = np.where(se > 0, jump / se, np.where(jump != 0, np.inf, np.nan))
+        z = np.where(se > 0, jump / se, np.where(jump != 0, np.copysign(np.inf, jump), np.nan))
+    z = np.where(np.isfinite(jump), z, np.nan)
     out = [nan.copy(), nan.copy(), nan.copy()]
     for o, v in zip(out, (jump, se, z)):
         o[ok] = v

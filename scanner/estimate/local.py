@@ -310,8 +310,13 @@ def se_floor(*levels) -> float:
 
 
 def _finish(cutoff, h, kern, degree, jump, se, bl, br, counts) -> JumpFit:
-    se = max(float(se), se_floor(bl[0], br[0])) if np.isfinite(se) else se
-    z = jump / se if se > 0 else (np.inf if jump != 0 else float("nan"))
+    if not np.isfinite(se):
+        # HC1 needs more rows than coefficients (n > 2(p + 1)): with fewer there is an estimate
+        # but no standard error, and no test — never a p-value of 0.
+        return _not_estimable(cutoff, h, kern, degree, "too few rows in the window for a "
+                              "standard error", *counts)
+    se = max(float(se), se_floor(bl[0], br[0]))
+    z = jump / se if se > 0 else (float(np.copysign(np.inf, jump)) if jump != 0 else float("nan"))
     p = two_sided_p(z) if np.isfinite(z) else (0.0 if np.isinf(z) else float("nan"))
     sl = bl[1] if degree >= 1 else 0.0
     sr = br[1] if degree >= 1 else 0.0
