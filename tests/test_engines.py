@@ -293,9 +293,15 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
     plan = dict(running=("x",), columns=("d", "flag", "y"), treatments=("d",),
                 pairs=(("d", "y"), ("flag", "y"), ("d", "flag")))
     ref = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="bincount"))
-    monkeypatch.setenv("CUTSCAN_WORKERS", "1")
-    got = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="compiled"))
-    assert_same_stats(got.stats["x"], ref.stats["x"])
+    from scanner.engines import compact, local
+    for workers, halves, budget in (("1", 100_000, local.ADDEND_BUDGET), ("2", 50, 8 * 4000)):
+        # two workers with a low threshold: the addends are filled in two halves of the rows;
+        # a small budget: batches are folded in blocks
+        monkeypatch.setenv("CUTSCAN_WORKERS", workers)
+        monkeypatch.setattr(compact, "HALVES_FROM", halves)
+        monkeypatch.setattr(local, "ADDEND_BUDGET", budget)
+        got = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="compiled"))
+        assert_same_stats(got.stats["x"], ref.stats["x"])
     # and against pandas on the raw rows: Σflag² over finite rows, joint count of (flag, y)
     g = df.groupby("x")
     st = got.stats["x"]

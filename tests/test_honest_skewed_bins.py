@@ -133,3 +133,16 @@ def test_added_edges_are_capped_nearest_first(monkeypatch):
     st = _bins(_design("fine"), "fine")
     k = grid.keys(np.array([v for v, _ in st.edges]), *grid.grid_of_width(st.width))
     assert np.bincount(k - k.min()).max() <= 6 + 1        # + the declared cutoff
+
+
+def test_added_edges_for_many_cutoffs_stay_within_max_bins():
+    # Fifty declared cutoffs on one variable: the edges added for all of them together stay
+    # within plan.max_bins (those nearest a cutoff kept), so the bins cannot multiply.
+    df = _design("fine", n=30_000, seed=3)
+    cuts = tuple((float(c), True) for c in np.round(np.linspace(0.05, 40, 50), 2))
+    plan = BinPlan(("x",), ("d",), ("d",), edges={"x": cuts}, **PLANS["fine"])
+    st = bin_table(open_table(df), plan).stats["x"]
+    declared = {c for c, _ in cuts}
+    added = [v for v, _ in st.edges if v not in declared]
+    assert 0 < len(added) <= PLANS["fine"]["max_bins"]
+    assert st.n_bins <= 3 * PLANS["fine"]["max_bins"]

@@ -1,8 +1,7 @@
 """Group codes of a batch's bin keys: each row's group (0..nb-1) and each group's key.
 
-Registry values are mostly integers or recorded to a fixed number of decimals; for those, dense
-integer offsets replace hashing the floats (several times faster).  The compiled variant gives
-the same groups and keys with numba loops (:mod:`scanner.engines.compiled`).
+The compiled variant gives the same groups and keys with numba loops
+(:mod:`scanner.engines.compiled`).
 """
 from __future__ import annotations
 

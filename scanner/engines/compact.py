@@ -19,6 +19,8 @@ from __future__ import annotations
 
 import numpy as np
 
+HALVES_FROM = 100_000      # rows from which the addends are filled in two threads
+
 
 class Addends:
     """One batch's addends: ``W`` (rows × w) and the layout map ``src``.
@@ -42,24 +44,25 @@ class Addends:
         binary = compiled.binary_columns(Y, np.asarray(known, np.bool_))
         sq = np.flatnonzero(~binary).astype(np.int64)
         cnt = np.flatnonzero(~full_col).astype(np.int64)
-        full_pair = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)
-        w = k + sq.size + cnt.size + pa.size + 5 * int(full_pair.sum())
+        # pairs with a missing value somewhere need their own joint count, sums and squares
+        joint = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)
+        w = k + sq.size + cnt.size + pa.size + 5 * int(joint.sum())
         if buffer is not None and buffer.size >= m * w:
             self.W = buffer[:m * w].reshape(m, w)
         else:
             self.W = np.empty((m, w))
-        if pool is not None and m > 100_000:     # two halves of the rows, one per thread
+        if pool is not None and m > HALVES_FROM:     # two halves of the rows, one per thread
             h = m // 2
-            list(pool.map(lambda s: compiled.compact_rows(Y[:, s], sq, cnt, pa, pb, full_pair,
+            list(pool.map(lambda s: compiled.compact_rows(Y[:, s], sq, cnt, pa, pb, joint,
                                                           self.W[s]),
                           (slice(0, h), slice(h, m))))
         else:
-            compiled.compact_rows(Y, sq, cnt, pa, pb, full_pair, self.W)
+            compiled.compact_rows(Y, sq, cnt, pa, pb, joint, self.W)
         self.buffer = buffer if buffer is not None and buffer.size >= m * w else self.W.ravel()
-        self.src = _layout(k, sq, cnt, pa, pb, full_pair, binary, full_col)
+        self.src = _layout(k, sq, cnt, pa, pb, joint)
 
 
-def _layout(k, sq, cnt, pa, pb, full_pair, binary, full_col) -> np.ndarray:
+def _layout(k, sq, cnt, pa, pb, joint) -> np.ndarray:
     """Column of ``[n, Σx, Σx², ΣW]`` holding each sum of the layout n, Σx, Σx², counts (k),
     Σy (k), Σy² (k), then per pair n, Σa, Σb, Σa², Σb², Σab (p each)."""
     s1 = 3 + np.arange(k)                                  # Σy of column j
@@ -73,7 +76,7 @@ def _layout(k, sq, cnt, pa, pb, full_pair, binary, full_col) -> np.ndarray:
     for q in range(p):
         pAB[q] = at
         at += 1
-        if full_pair[q]:
+        if joint[q]:
             pn[q], pA[q], pB[q], pAA[q], pBB[q] = range(at, at + 5)
             at += 5
         else:

@@ -71,12 +71,12 @@ def binary_columns(Y, known):
 
 
 @njit(nogil=True, cache=True)
-def compact_rows(Y, sq, cnt, pa, pb, full, W):
+def compact_rows(Y, sq, cnt, pa, pb, joint, W):
     """Fill ``W`` (rows × w, row-major) with the addends of a batch that are not known already.
 
     Columns, in order: y of every tracked column (0 where not finite); y² of the columns in
     ``sq``; the finite indicator of the columns in ``cnt``; per pair q the product ab over rows
-    where both are finite, and when ``full[q]`` also that row's n, a, b, a², b².  Built once per
+    where both are finite, and when ``joint[q]`` also that row's n, a, b, a², b².  Built once per
     batch and shared by every running variable (see :mod:`scanner.engines.compact`).
     """
     k, m = Y.shape
@@ -99,7 +99,7 @@ def compact_rows(Y, sq, cnt, pa, pb, full, W):
             both = a - a == 0.0 and b - b == 0.0
             W[i, c] = a * b if both else 0.0
             c += 1
-            if full[q]:
+            if joint[q]:
                 if both:
                     W[i, c] = 1.0
                     W[i, c + 1] = a

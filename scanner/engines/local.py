@@ -353,7 +353,8 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     rows = 0
     buffer = ybuf = None
     try:
-        for batch in prefetched(table.batches(plan.needed, plan.batch_rows)):
+        blocks = block_rows(plan) if kernel == "compiled" else None
+        for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
             m = batch.num_rows
             if m == 0:
                 continue
@@ -429,6 +430,33 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         if pool is not None:
             pool.shutdown()
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
+
+
+ADDEND_BUDGET = 160 * 2 ** 20   # bytes of the per-batch addend matrix (compact.Addends)
+
+
+def block_rows(plan: BinPlan) -> int:
+    """Rows folded at a time, so the addend matrix stays within ``ADDEND_BUDGET``.
+
+    Its widest layout — every tracked column incomplete and not 0/1, every pair incomplete —
+    has 3k + 6p columns (treatments are 0/1).  Folding a batch in blocks gives the same bins
+    (no result depends on how rows are batched).
+    """
+    k, p, t = len(plan.columns), len(plan.pairs), len(plan.treatments)
+    width = max(3 * k - t + 6 * p, 1)
+    return max(65_536, ADDEND_BUDGET // (8 * width))
+
+
+def in_blocks(batches, rows: int | None):
+    """Each batch as equal slices of at most ``rows`` rows (zero-copy), in order."""
+    for b in batches:
+        if rows is None or b.num_rows <= rows:
+            yield b
+            continue
+        parts = -(-b.num_rows // rows)
+        size = -(-b.num_rows // parts)
+        for at in range(0, b.num_rows, size):
+            yield b.slice(at, size)
 
 
 def _plain(batch) -> bool:

@@ -17,8 +17,9 @@ means instead of rows.  The bins held at the end of the pass are finer (up to
 Our rule: on each side of each declared cutoff, the ``REFINE_BINS`` occupied final bins
 nearest it are split at the edges of the pass's bins inside them — the power-of-ten grid's
 edges, or every distinct value when the variable stayed exact-support during the pass — at
-most ``REFINE_EDGES`` edges per side (the nearest to the cutoff first) and ``PART_ROOM`` per
-final bin (a bin has at most ``grid.SUB`` parts).  A bandwidth spanning fewer than
+most ``REFINE_EDGES`` edges per side (the nearest to the cutoff first), ``PART_ROOM`` per
+final bin (a bin has at most ``grid.SUB`` parts), and ``plan.max_bins`` (at least one cutoff's
+2 × ``REFINE_EDGES``) for all cutoffs of the variable together.  A bandwidth spanning fewer than
 ``REFINE_BINS`` final bins — the case where fixed-width bins are coarse for the fit — then
 works from bins as fine as the pass kept; a wider one has at least ``REFINE_BINS`` bins a side
 anyway.  The rule reads only the set of occupied bins, never row order, batch size or engine.
@@ -81,12 +82,15 @@ def pass_edges(st: BinnedStats, level: int | None) -> np.ndarray:
     return np.unique(np.concatenate([grid.edges(b, p, d), grid.edges(b + 1, p, d)]))
 
 
-def near_edges(st: BinnedStats, level: int | None, final_key: np.ndarray, g, cutoffs) -> set:
+def near_edges(st: BinnedStats, level: int | None, final_key: np.ndarray, g, cutoffs,
+               budget: int | None = None) -> set:
     """Edges of the pass's bins to add to the final grid ``g`` around each declared cutoff.
 
     ``final_key`` is the final-grid bin of every bin of ``st``; ``cutoffs`` the forced edges
-    ``(value, right_closed)`` known before the pass.  Returns pairs ``(value, True)`` (see the
-    module docstring for the rule).
+    ``(value, right_closed)`` known before the pass; ``budget`` caps the edges added for all
+    cutoffs together (the nearest to a cutoff kept), so a catalogue with many cutoffs on one
+    variable cannot multiply its bins.  Returns pairs ``(value, True)`` (see the module
+    docstring for the rule).
     """
     cuts = sorted({float(c) for c, _ in cutoffs})
     if not cuts or st.n_bins == 0:
@@ -116,8 +120,10 @@ def near_edges(st: BinnedStats, level: int | None, final_key: np.ndarray, g, cut
     order = np.lexsort((v, dist, k))
     ks = k[order]
     rank = np.arange(ks.size) - np.searchsorted(ks, ks, "left")
-    keep = np.sort(order[rank < PART_ROOM])
-    return {(float(x), True) for x in v[keep]}
+    keep = order[rank < PART_ROOM]
+    if budget is not None and keep.size > budget:
+        keep = keep[np.argsort(dist[keep], kind="stable")[:budget]]
+    return {(float(x), True) for x in v[np.sort(keep)]}
 
 
 def settle(st: BinnedStats, state: str, level: int | None, forced, plan) -> BinnedStats:
@@ -147,7 +153,8 @@ def _split(st: BinnedStats, key, g, level, forced, plan) -> BinnedStats:
     :func:`scanner.candidates.round_cutoffs` can propose on it, where the bins held so far
     allow that exactly.  Splitting moves bin means, which can move the round values, so the
     last step repeats until they settle."""
-    forced = set(forced) | near_edges(st, level, key, g, forced)
+    budget = max(plan.max_bins, 2 * REFINE_EDGES)      # one cutoff always gets its refinement
+    forced = set(forced) | near_edges(st, level, key, g, forced, budget)
     out = regroup(st, key, *g, forced)
     if not plan.round_edges:
         return out
