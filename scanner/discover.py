@@ -454,5 +454,7 @@ def bias_bound(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     # one-sided interval for its |μ''| (curvature_bound), so pilot noise widens the allowance.
     M = curvature_bound(side_data(stats, column, cutoff, right_closed), window=2 * h,
                         kernel="uniform")
-    curv = float(M) if np.isfinite(M) else 0.0      # neither side has three support values
+    # Neither side has three support values within 2h: the curvature cannot be bounded from
+    # the data, so neither can the bias (NaN; the search step then reports no test).
+    curv = float(M) if np.isfinite(M) else float("nan")
     return BiasBound(0.5 * curv * wsum, curv, wsum)

@@ -117,6 +117,13 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
     row.update(conventional_p=float(2 * sps.norm.sf(abs(t))), bias_bound=bb.bound,
                curvature_bound=bb.curvature)
     pb = bb.p_value(row["jump"], row["se"])
+    if np.isfinite(row["jump"]) and not np.isfinite(bb.curvature):
+        # A searched location needs a bias allowance, and with fewer than three support values
+        # a side near it the curvature cannot be bounded: no test rather than one without it.
+        row.update(p_value=float("nan"), ci_low=float("nan"), ci_high=float("nan"),
+                   inference_reason="fewer than three support values a side within twice the "
+                   "bandwidth: the curvature, so the bias of a searched location, cannot be "
+                   "bounded")
     if np.isfinite(pb):
         cv = honest_cv(bb.bound / row["se"], spec.alpha)
         row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],

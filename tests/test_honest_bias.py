@@ -154,3 +154,18 @@ def test_search_bias_bound_takes_the_upper_curvature_bound():
     assert_allclose(bb.curvature, max(upper), rtol=1e-9)
     assert_allclose(bb.bound, 0.5 * bb.curvature * bb.weight_sum, rtol=1e-12)
     assert bb.curvature > 1.2 * max(point)
+
+
+def test_search_bias_bound_is_not_zero_where_curvature_is_unknown():
+    # Two support values a side within twice the bandwidth: a quadratic cannot be fitted, so
+    # the curvature — and the bias of a searched location — is unknown: NaN, never 0 (which
+    # would test the searched break as if it had no smoothing bias).
+    from scanner.discover import bias_bound
+    from scanner.engines.local import exact_bins
+    rng = np.random.default_rng(2)
+    x = rng.choice([-20.0, -2.0, -1.0, 1.0, 2.0, 20.0], 3000)
+    d = (rng.random(x.size) < 0.3 + 0.02 * x).astype(float)
+    st = exact_bins("x", x, {"d": d})
+    bb = bias_bound(st, "d", 0.0, 2.5)
+    assert np.isnan(bb.bound) and np.isnan(bb.p_value(0.1, 0.02))
+    assert np.isfinite(bias_bound(st, "d", 0.0, 15.0).bound)    # 2h reaches ±20: three a side
