@@ -432,7 +432,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
 
 
-ADDEND_BUDGET = 160 * 2 ** 20   # bytes of the per-batch addend matrix (compact.Addends)
+ADDEND_BUDGET = 256 * 2 ** 20   # bytes of the per-batch addend matrix (compact.Addends)
 
 
 def block_rows(plan: BinPlan) -> int:
