@@ -134,6 +134,18 @@ def add_compact(group, x, W, Mc):
 
 
 @njit(nogil=True, cache=True)
+def scatter_add(M, slot, Mc, src):
+    """``M[slot[g], c] += Mc[g, src[c]]`` for every group g and column c of the totals' layout
+    (``slot`` holds distinct rows; no temporary of groups × columns)."""
+    G = slot.size
+    w = src.size
+    for g in range(G):
+        s = slot[g]
+        for c in range(w):
+            M[s, c] += Mc[g, src[c]]
+
+
+@njit(nogil=True, cache=True)
 def order_by(code, span):
     """Stable permutation putting rows in order of ``code`` (0..span-1): a counting sort.
 

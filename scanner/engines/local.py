@@ -322,7 +322,7 @@ class Accumulator:
                                            (np.arange(span) % 3 - 1).astype(np.int8), e)
             Mc = np.zeros((b.size, 3 + addends.W.shape[1]))
             compiled.add_compact(group, x, addends.W, Mc)
-            self.sums.M[slot] += Mc[:, addends.src]
+            compiled.scatter_add(self.sums.M, np.asarray(slot, np.int64), Mc, addends.src)
             self.sums.touch()
         self.add(None)
 
@@ -374,7 +374,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 # columns are parsed in file order, so their messages quote the first values.)
                 from . import compiled
                 perm = compiled.order_by(*by_detail[common][:2])
-                batch = batch.take(perm)
+                batch = _taken(batch, perm, pool)
                 by_detail = {d: None if e is None else (e[0][perm],) + e[1:]
                              for d, e in by_detail.items()}
             k = len(plan.columns)
@@ -457,6 +457,16 @@ def in_blocks(batches, rows: int | None):
         size = -(-b.num_rows // parts)
         for at in range(0, b.num_rows, size):
             yield b.slice(at, size)
+
+
+def _taken(batch, perm: np.ndarray, pool):
+    """``batch.take(perm)``, its columns taken in the pool's threads (pyarrow releases the GIL)."""
+    if pool is None:
+        return batch.take(perm)
+    import pyarrow as pa
+    idx = pa.array(perm)
+    cols = list(pool.map(lambda c: c.take(idx), batch.columns))
+    return pa.RecordBatch.from_arrays(cols, schema=batch.schema)
 
 
 def _plain(batch) -> bool:
