@@ -253,28 +253,40 @@ class Accumulator:
         Checked before folding, so a batch of continuous values never becomes a batch-sized
         set of exact bins.
         """
+        f = self.plan.fine_keys
+        if self.state == "exact" and x.size > 8 * f:
+            # The batch's first rows alone may hold more than fine_keys values: then it leaves
+            # exact bins without grouping a batch's worth of distinct floats first.
+            head = np.unique(x[:8 * f][ok[:8 * f]])
+            if head.size > f:
+                self._leave_exact(np.union1d(head, self.sums.bin_keys))
         key, dense, parts = self.key(x, ok)
         out = self._codes(key, ok, dense)
-        f = self.plan.fine_keys
         if self.state == "exact" and out[2] + self.sums.n_keys > f:
             vals = np.union1d(out[1], self.sums.bin_keys)
             if vals.size > f:
-                # Any set of more than fine_keys of the table's values certifies the start
-                # level (grid.start_level), so a spread subset of them is enough.
-                if vals.size > 4 * f:
-                    vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
-                self.level = grid.start_level(vals, f)
-                self.grid = grid.power_grid(self.level)
-                # Exact keys are the raw values, so keying them is keying the rows.
-                self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid,
-                                     self.forced)
-                self.state = "fine"
+                self._leave_exact(vals)
                 key, dense, parts = self.key(x, ok)
                 out = self._codes(key, ok, dense)
         if parts > 1:       # part j of grid bin k has key k + j/SUB
             g, u, nb = out
             out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
         return out
+
+    def _leave_exact(self, vals: np.ndarray) -> None:
+        """Go from exact bins to the power-of-ten grid, given more than fine_keys of the
+        table's values.  Any such set certifies a start level no coarser than the settled one
+        (grid.start_level), and coarsening during the pass ends at the same level whichever
+        set it was, so a spread subset of them is enough."""
+        f = self.plan.fine_keys
+        if vals.size > 4 * f:
+            vals = vals[np.linspace(0, vals.size - 1, 4 * f).astype(np.int64)]
+        self.level = grid.start_level(vals, f)
+        self.grid = grid.power_grid(self.level)
+        # Exact keys are the raw values, so keying them is keying the rows.
+        self.stats = regroup(self.stats, grid.keys(self.stats.key, *self.grid), *self.grid,
+                             self.forced)
+        self.state = "fine"
 
     def _codes(self, key, ok, dense):
         if _kernel(self.plan.kernel) != "compiled":
