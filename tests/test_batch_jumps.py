@@ -104,3 +104,13 @@ def test_no_standard_error_means_no_test():
     assert np.isnan(f.p_value) and np.isnan(f.jump) and "standard error" in f.reason
     jump, se, z = jumps_at(d.u, d.n, d.s1, d.s2, [0.0], 5.0, "triangular", 1, min_bins=4)
     assert np.isnan(jump[0]) and np.isnan(z[0])
+
+
+def test_placebo_points_on_a_huge_range_do_not_exhaust_memory():
+    # A junk value of 1e300 in the running variable: the placebo grid is cut at 15 points a
+    # side instead of being formed over the whole range first (which raised ValueError).
+    rng = np.random.default_rng(1)
+    x = np.r_[rng.integers(-30, 31, 3000).astype(float), 1e300]
+    y = (rng.random(x.size) < 0.3 + 0.3 * (x >= 0)).astype(float)
+    res = placebo_test(None, _bins(x, y), 0.0, 4.0, 5.0)
+    assert 0 < res.n_placebos <= 30

@@ -55,13 +55,13 @@ def placebo_test(stats, data: SideData, cutoff: float, bandwidth: float, z_real:
         if u.size == 0:
             continue
         # Placebo p needs its window inside one side: h ≤ p ≤ max − h (right), mirrored on the left.
-        if is_right:
-            grid = np.arange(h, u.max() - h + 1e-12, h)
-        else:
-            grid = -np.arange(h, -u.min() - h + 1e-12, h)
+        # Only the first max_per_side steps are formed (a range of 1e300 with a small h would
+        # not fit in memory); h + i·h as np.arange computes its values.
+        reach = (u.max() if is_right else -u.min()) - h + 1e-12
+        steps = h + np.arange(max_per_side) * h
+        points = steps[steps < reach] * (1.0 if is_right else -1.0)
         # All placebo fits of a side at once: the windows, weights and solves as arrays
         # (scanner.estimate.batch; the numbers of one fit_jump per placebo).
-        points = grid[:max_per_side]
         _, _, z = jumps_at(u, n, s1, s2, points, h, kernel, degree)
         for p, zp in zip(points, z):
             if np.isfinite(zp):
