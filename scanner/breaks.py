@@ -63,9 +63,12 @@ class Peak:
     step: int = 1
     grid_location: float = float("nan")
     locator: str = METHOD
+    # The step's simulated null of sup |t| (not written out): a discovered break estimated on
+    # the same rows is tested against it at its own |t|, so its p and interval agree.
+    null: NullSup | None = field(default=None, repr=False, compare=False)
 
     def to_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+        return {k: getattr(self, k) for k in self.__dataclass_fields__ if k != "null"}
 
 
 def location_set(scan: GridScan, i: int, alpha: float) -> tuple[float, float]:
@@ -106,10 +109,10 @@ def place(stats: BinnedStats, scan: GridScan, i: int, walls, alpha: float, min_r
     common = (p, crit, h, null.n_points, scan.kind, scan.n_rows, spacing)
     if np.isfinite(br.location):
         return Peak(br.location, br.ci_low, br.ci_high, br.jump, br.se, sup, *common,
-                    br.ci_low_open, br.split_low, br.split_high, step, g0)
+                    br.ci_low_open, br.split_low, br.split_high, step, g0, null=null)
     lo, hi = location_set(scan, i, alpha)
     return Peak(g0, lo, hi, float(scan.jump[i]), float(scan.se_t[i]), sup, *common,
-                step=step, grid_location=g0, locator="grid point with the largest jump")
+                step=step, grid_location=g0, locator="grid point with the largest jump", null=null)
 
 
 @dataclass

@@ -453,8 +453,9 @@ def bias_bound(stats: BinnedStats, column: str, cutoff: float, bandwidth: float,
     # second-derivative step of Imbens & Kalyanaraman 2012), taken at the upper end of a
     # one-sided interval for its |μ''| (curvature_bound), so pilot noise widens the allowance.
     M = curvature_bound(side_data(stats, column, cutoff, right_closed), window=2 * h,
-                        kernel="uniform")
-    # Neither side has three support values within 2h: the curvature cannot be bounded from
-    # the data, so neither can the bias (NaN; the search step then reports no test).
+                        kernel="uniform", both=True)
+    # A side without three support values within 2h: its curvature cannot be bounded from the
+    # data (the other side's says nothing about it), so neither can the bias (NaN; the search
+    # step then reports no test).
     curv = float(M) if np.isfinite(M) else float("nan")
     return BiasBound(0.5 * curv * wsum, curv, wsum)

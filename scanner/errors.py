@@ -38,7 +38,7 @@ class ColumnNotFoundError(InputError):
 
 def closest(word: str, choices) -> str:
     """Return a ' (did you mean 'x'?)' hint for an unknown key, or ''."""
-    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.5)
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
     return f" (did you mean '{close[0]}'?)" if close else ""
 
 

@@ -147,6 +147,8 @@ def _verdict(row: dict, lo, hi, alpha: float, serious) -> tuple[str, str]:
         return "not estimable", f"could not be estimated: {row.get('reason') or 'unknown reason'}"
     if row.get("no_variation"):
         return "no jump", "no variation: every row on both sides of the window has the same value"
+    if not _finite(row.get("p_value")) and not (_finite(lo) and _finite(hi)):
+        return "inconclusive", f"no test: {row.get('inference_reason') or 'no p-value'}"
     q = row.get("q_value")
     if _finite(q) and q < alpha:
         fl = set(row.get("flags") or [])
@@ -187,7 +189,9 @@ def build_headline(row: dict, alpha: float, serious=frozenset()) -> Headline:
         p_value=float(row["p_value"]) if _finite(row.get("p_value")) else nan,
         q_value=float(row["q_value"]) if _finite(row.get("q_value")) else nan,
         verdict=verdict, verdict_reason=why, sample=_sample(row),
-        method=METHODS.get(kind, kind), practical_jump=PRACTICAL_JUMP,
+        method=(f"no test: {row['inference_reason']}" if kind == "none"
+                and row.get("inference_reason") and not row.get("no_variation")
+                else METHODS.get(kind, kind)), practical_jump=PRACTICAL_JUMP,
         bounded=JUMP_BOUNDS if is_share(row) else None)
 
 

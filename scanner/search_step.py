@@ -107,7 +107,6 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
     """
     from scipy import stats as sps
     from .discover import bias_bound
-    from .estimate.robust import honest_cv
     from .scan import evaluate
     row = evaluate(test, cand, spec, cache)
     row.update(loc, split=bool(split))
@@ -121,15 +120,23 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
         # A searched location needs a bias allowance, and with fewer than three support values
         # a side near it the curvature cannot be bounded: no test rather than one without it.
         row.update(p_value=float("nan"), ci_low=float("nan"), ci_high=float("nan"),
-                   inference_reason="fewer than three support values a side within twice the "
+                   inference_reason="fewer than three support values on a side within twice the "
                    "bandwidth: the curvature, so the bias of a searched location, cannot be "
                    "bounded")
+    if np.isfinite(row["jump"]) and not np.isfinite(bb.curvature):
+        row["interval"] = "none"
     if np.isfinite(pb):
-        cv = honest_cv(bb.bound / row["se"], spec.alpha)
-        row.update(p_value=pb, ci_low=row["jump"] - cv * row["se"],
-                   ci_high=row["jump"] + cv * row["se"], interval="bias-bounded")
-    if not split:
-        # Same rows for search and estimate: only the search-adjusted p is honest.
+        from .headline import bias_bounded_interval
+        ps = pb
+        if not split:
+            # Same rows for search and estimate: the search's own null of sup |t|, at this
+            # row's |t|, bounds the p-value too — the interval takes its critical value
+            # (headline.bias_bounded_interval), so p < alpha exactly when it excludes 0.
+            null = getattr(pk, "null", None)
+            ps = max(pb, null.p_value(t) if null is not None else pk.search_p)
+        row.update(p_value=ps, interval="bias-bounded")
+        row["ci_low"], row["ci_high"] = bias_bounded_interval(row, spec.alpha)
+    elif not split:
         row["p_value"] = max(row["p_value"], pk.search_p)
     row["confirm_half"] = {key: row.get(key) for key in _CONFIRM_KEYS} if split else None
     return row

@@ -20,3 +20,8 @@ def format_p_eq(name: str, p, missing: str = "n/a") -> str:
     """'p = 0.012', or 'p < 0.0001' for a tiny p (never 'p = < 0.0001')."""
     text = format_p(p, missing)
     return f"{name} {text}" if text.startswith("<") else f"{name} = {text}"
+
+
+def counted(k: int, noun: str, plural: str | None = None) -> str:
+    """'1 search step', '63 search steps' (thousands separated)."""
+    return f"{k:,} {noun if k == 1 else (plural or noun + 's')}"

@@ -126,3 +126,11 @@ def test_bad_rule_names_file_and_line(tmp_path):
     p = make(tmp_path)
     (tmp_path / "rules.toml").write_text(RULES.format(cutoff=50).replace("at_or_above", "over"))
     fails(run_cli("scan", p, "--out", tmp_path / "o"), "rules.toml:line 5", "eligible = 'over'")
+
+
+def test_closest_suggests_only_near_misses():
+    # A typo gets its key; an unrelated word gets no guess (it was told "did you mean 'omop'?").
+    from scanner.errors import closest
+    keys = ["batch_rows", "date", "decimal", "engine", "omop", "source", "unit"]
+    assert closest("sourse", keys) == " (did you mean 'source'?)"
+    assert closest("foo", keys) == ""

@@ -184,3 +184,23 @@ def test_discovered_rows_without_a_held_out_half_tell_one_story():
         assert r["ci_high"] - r["ci_low"] >= 2 * crit * r["se"] * (1 - 1e-12)
         if r["ci_low"] > 0 or r["ci_high"] < 0:
             assert r["p_value"] < 0.05
+
+
+@pytest.mark.parametrize("jump,seed", [(0.08, 1), (0.06, 0), (0.25, 5)])
+def test_discovered_rows_without_a_held_out_half_p_and_interval_agree_both_ways(jump, seed):
+    # The reverse direction too: p < alpha exactly when the interval excludes zero.  With a
+    # weak jump the row's own |t| can sit between the bias-bounded and the search's critical
+    # value; the search part of p was the search's own sup-|t| p, and said "clear jump" (p 0.011)
+    # beside an interval holding zero.
+    from scanner.scan import scan
+    df = _lattice(np.arange(0, 100), lambda x: 0.2 + 0.002 * x, lambda x: 0.2 + jump + 0.002 * x,
+                  37, 400, seed)
+    res = scan({"running": [{"column": "x"}], "treatments": {"columns": ["d"]},
+                "search": {"round_numbers": False, "confirm": False}}, df)
+    for r in (r for r in res.rows if r["origin"] == "discovered"):
+        if not np.isfinite(r["p_value"]):
+            continue
+        excludes = r["ci_low"] > 0 or r["ci_high"] < 0
+        assert (r["p_value"] < 0.05) == excludes, (r["p_value"], r["ci_low"], r["ci_high"])
+        if r["verdict"] in ("usable", "caution", "doubtful"):
+            assert excludes

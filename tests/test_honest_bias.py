@@ -169,3 +169,17 @@ def test_search_bias_bound_is_not_zero_where_curvature_is_unknown():
     bb = bias_bound(st, "d", 0.0, 2.5)
     assert np.isnan(bb.bound) and np.isnan(bb.p_value(0.1, 0.02))
     assert np.isfinite(bias_bound(st, "d", 0.0, 15.0).bound)    # 2h reaches ±20: three a side
+
+
+def test_search_bias_bound_needs_both_sides():
+    # A five-point-like lattice, uptake exactly 0 left of 7.5 and two values right of it within
+    # 2h: the right side's curvature is unknown, and the left side's zero curvature says nothing
+    # about it — NaN, not a zero allowance (which gave p = 0.012 for a jump of 0.05, se 0.02).
+    from scanner.discover import bias_bound
+    from scanner.engines.local import exact_bins
+    rng = np.random.default_rng(4)
+    x = rng.choice([-10.0, -5.0, 0.0, 5.0, 10.0, 15.0], 4000)
+    d = np.where(x > 7.5, rng.random(x.size) < 0.3 + 0.01 * x, 0.0).astype(float)
+    st = exact_bins("x", x, {"d": d})
+    bb = bias_bound(st, "d", 7.5, 10.0)
+    assert np.isnan(bb.curvature) and np.isnan(bb.p_value(0.05, 0.02))

@@ -325,3 +325,19 @@ def test_a_bias_correction_far_from_the_estimate_makes_it_unstable():
     row.update(jump_bc=0.55)
     row["stability_z"], row["stability_shift"] = stability(row)
     assert "unstable" not in flags(row, 0.05)
+
+
+def test_headline_of_a_discovered_row_whose_bias_cannot_be_bounded():
+    # The search step reports no test where the curvature cannot be bounded: the headline must
+    # say so, not name a robust interval or "the interval holds both zero and ...".
+    from scanner.headline import build_headline
+    row = {"origin": "discovered", "split": True, "jump": 0.12, "se": 0.03,
+           "bias_bound": float("nan"), "interval": "none", "p_value": float("nan"),
+           "q_value": float("nan"), "ci_low": float("nan"), "ci_high": float("nan"),
+           "inference_reason": "fewer than three support values on a side within twice the "
+           "bandwidth: the curvature, so the bias of a searched location, cannot be bounded",
+           "flags": []}
+    h = build_headline(row, 0.05)
+    assert h.interval == "none" and h.verdict == "inconclusive"
+    assert h.verdict_reason.startswith("no test: fewer than three support values")
+    assert h.method.startswith("no test: fewer than three")

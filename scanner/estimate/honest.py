@@ -55,7 +55,7 @@ def local_window(d: SideData, need: int = 4) -> float:
 
 
 def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: str = "triangular",
-                    vce: str = "hc3") -> float:
+                    vce: str = "hc3", both: bool = False) -> float:
     """Curvature bound M on |μ''| from local quadratic fits next to the cutoff.
 
     Each side gets a local quadratic (``kernel``, bandwidth ``window``: a number or (left, right),
@@ -67,7 +67,9 @@ def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: st
     and z = 0.84 covered 0.977 at a 10% longer interval; z = 1.28 added another 5% length.
     Each side's window is widened to hold four support points where it has them (three fit the
     quadratic exactly and leave no residual for its standard error).  A side with fewer than
-    three support points shows no curvature and is skipped (NaN when neither side has three).
+    three support points shows no curvature and is skipped (NaN when neither side has three;
+    with ``both``, NaN when either side is skipped — a side constant in the window, e.g. uptake
+    exactly 0, bends the same way as any other and cannot lend its zero curvature to the other).
 
     The window stays the bias pilot b.  Widening it to at least :func:`local_window` (a second
     derivative prefers a wider window than a level) was tried: on a lognormal(0, 2) score with
@@ -103,10 +105,14 @@ def curvature_bound(d: SideData, window=None, z: float = CURVATURE_Z, kernel: st
         m = w > 0
         if m.sum() < 3:
             # Two support values show no curvature: the other side's bound has to serve.
+            if both:
+                return float("nan")
             continue
         try:
             L, R = coef_weights(u[m], n[m], w[m], 2)
         except np.linalg.LinAlgError:
+            if both:
+                return float("nan")
             continue
         second = 2.0 * float(L[2] @ s1[m])
         var = float(((2.0 * L[2]) ** 2 * _sig(vce, u[m], n[m], s1[m], s2[m], L, R)).sum())

@@ -13,6 +13,7 @@ import html
 from pathlib import Path
 
 from ..headline import PRACTICAL_JUMP
+from ..textfmt import counted
 from . import figures
 from .exports import cautions, density_label, format_p, format_p_eq
 from .screen import screen_section
@@ -134,8 +135,8 @@ def _overview(results: dict) -> list[str]:
              f"<tr><th class='l'>date column</th><td class='l'>{esc(spec.get('date') or 'none')}</td></tr>",
              f"<tr><th class='l'>cutoffs examined</th><td>{results['n_candidates']:,} "
              f"({results['n_tested']:,} tests in the q-value family: "
-             f"{(results.get('tests') or {}).get('candidates', results['n_tested']):,} candidates "
-             f"with a p-value, {(results.get('tests') or {}).get('searches', 0):,} search steps "
+             f"{counted((results.get('tests') or {}).get('candidates', results['n_tested']), 'candidate')} "
+             f"with a p-value, {counted((results.get('tests') or {}).get('searches', 0), 'search step')} "
              "that added no candidate"
              f"{_screened((results.get('tests') or {}).get('screened_out', 0))})</td></tr>",
              f"<tr><th class='l'>estimator</th><td class='l'>local polynomial of degree "

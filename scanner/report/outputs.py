@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import OutputError
+from ..textfmt import counted
 from .exports import format_p, jump_and_interval
 from .disclosure import guard_window_counts, is_small, reconcile, protect_group, scrub, suppress  # noqa: F401  (suppress: API)
 
@@ -409,9 +410,10 @@ def _family(results: dict) -> str:
     t = results.get("tests") or {}
     if not (t.get("searches") or t.get("screened_out")):
         return ""
-    screened = (f" + {t['screened_out']} screened-out tests" if t.get("screened_out") else "")
-    return (f" ({t['candidates']} candidates with a p-value + {t['searches']} search "
-            f"steps{screened})")
+    screened = (f" + {counted(t['screened_out'], 'screened-out test')}"
+                if t.get("screened_out") else "")
+    return (f" ({counted(t['candidates'], 'candidate')} with a p-value + "
+            f"{counted(t['searches'], 'search step')}{screened})")
 
 
 STYLE = {"usable": "bold green", "caution": "yellow", "doubtful": "magenta",
