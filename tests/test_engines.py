@@ -368,3 +368,21 @@ def test_parquet_folder_with_mixed_column_types(tmp_path):
     assert got.rows_read == 900
     for r in IRR["running"]:
         assert_same_stats(got.stats[r], ref.stats[r])
+
+
+def test_junk_magnitudes_keep_their_side_and_do_not_crash():
+    # One value of ±1e300 in a gridded variable: floor(x / w) overflowed int64 — the compiled
+    # kernel stopped with an internal error, the numpy kernels put +1e300 at −9.2e18, below
+    # every cutoff.  Keys are clipped to ±2^60: the row keeps its side, both kernels agree.
+    rng = np.random.default_rng(1)
+    x = np.r_[rng.lognormal(0, 2, 5000), 1e300, -1e300]
+    df = pd.DataFrame({"x": x, "d": (rng.random(x.size) < 0.3).astype(float)})
+    plan = dict(running=("x",), columns=("d",), treatments=("d",), fine_keys=500, max_bins=200,
+                edges={"x": ((1.0, True),)})
+    with np.errstate(over="ignore"):
+        ref = bin_table(open_table(df), BinPlan(**plan, kernel="bincount")).stats["x"]
+        got = bin_table(open_table(df), BinPlan(**plan)).stats["x"]
+    assert ref.kind == "width"
+    assert_array_equal(got.key, ref.key) and assert_array_equal(got.n, ref.n)
+    assert got.key[0] < -1e17 and got.key[-1] > 1e17       # each on its own side of 1.0
+    assert got.n[0] == 1 and got.n[-1] == 1

@@ -27,6 +27,7 @@ import numpy as np
 
 MAX_DECIMALS = 22          # 10^d is an exact double up to d = 22
 SUB = 1024.0               # part j of a bin split at forced edges has key k + j/SUB
+KEY_LIMIT = float(2 ** 60)  # bin keys are clipped to ±2^60 (int64 holds their differences)
 
 
 def grid_of_width(width: float) -> tuple[float, int]:
@@ -57,7 +58,9 @@ def keys(x: np.ndarray, p: float, d: int) -> np.ndarray:
     # the exact-decimal edges.
     k -= edges(k, p, d) > x
     k += edges(k + 1, p, d) <= x
-    return k.astype(np.int64)
+    # A junk value (1e300) would overflow int64 and land at −9.2e18, on the wrong side of every
+    # cutoff: values beyond 2^60 bins share the outermost bin on their own side.
+    return np.clip(k, -KEY_LIMIT, KEY_LIMIT).astype(np.int64)
 
 
 def power_grid(e: int) -> tuple[float, int]:
