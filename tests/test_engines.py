@@ -386,3 +386,18 @@ def test_junk_magnitudes_keep_their_side_and_do_not_crash():
     assert_array_equal(got.key, ref.key) and assert_array_equal(got.n, ref.n)
     assert got.key[0] < -1e17 and got.key[-1] > 1e17       # each on its own side of 1.0
     assert got.n[0] == 1 and got.n[-1] == 1
+
+
+def test_declaring_a_cutoff_does_not_coarsen_the_grid():
+    # 300 values over 100 bins of 0.1 with fine_keys = 100: a declared cutoff at 5.05 splits one
+    # bin in two.  The pass counted the parts and coarsened to 1.0 (Spark, counting whole bins,
+    # kept 0.1): the width must not depend on whether a cutoff was declared.
+    x = np.round(np.linspace(0.0, 9.99, 300), 3)
+    df = pd.DataFrame({"x": x, "d": (np.arange(x.size) % 3 == 0).astype(float)})
+    plan = dict(running=("x",), columns=("d",), treatments=("d",), fine_keys=100, max_exact=50,
+                max_bins=150)
+    plain = bin_table(open_table(df), BinPlan(**plan)).stats["x"]
+    cut = bin_table(open_table(df), BinPlan(**plan, edges={"x": ((5.05, True),)})).stats["x"]
+    assert plain.kind == cut.kind == "width"
+    assert cut.width == plain.width
+    assert not cut.straddles(5.05)

@@ -299,7 +299,10 @@ class Accumulator:
         holds too many bins."""
         if raw is not None:
             self.sums.add_raw(*raw)
-        while self.state == "fine" and self.sums.n_keys > self.plan.fine_keys:
+        # Whole grid bins are counted, not the parts a declared cutoff splits one into (as the
+        # Spark engine counts them): declaring a cutoff must not coarsen the grid.
+        while (self.state == "fine" and self.sums.n_keys > self.plan.fine_keys
+               and np.unique(_base(self.sums.bin_keys)).size > self.plan.fine_keys):
             self.level += 1
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
