@@ -204,13 +204,16 @@ def _unit_finding(c: str, r, v: np.ndarray, w: np.ndarray | None = None) -> dict
     return None
 
 
-def late_unit_findings(found: list[dict], spec, stats: dict, profiled: int) -> list[dict]:
+def late_unit_findings(found: list[dict], spec, stats: dict, profiled: int,
+                       rows_read: int | None = None) -> list[dict]:
     """Unit findings in the rows after the profile, from the bins of the whole table.
 
     The profile decides what the pass does about units, so a column whose unit changes after
     its first ``profiled`` rows (a laboratory that switched units mid-extract) would go
     unwarned.  The bins hold every row: checked again there, such a column gets its warning with
-    ``late`` set — its rows were binned as read, not set missing.
+    ``late`` set — its rows were binned as read, not set missing.  The check is skipped only when
+    the profile read the whole table (``rows_read`` ≤ ``profiled``): comparing a column's own
+    values with ``profiled`` would skip a column with many missing values.
     """
     seen = {f["column"] for f in found if f["kind"] in ("mixed_units", "wrong_unit")}
     out = []
@@ -218,7 +221,8 @@ def late_unit_findings(found: list[dict], spec, stats: dict, profiled: int) -> l
         c = r.column
         st = stats.get(c)
         if (c in seen or st is None or r.unit_column or not r.quantity
-                or r.quantity not in PLAUSIBLE or st.total <= profiled):
+                or r.quantity not in PLAUSIBLE
+                or (rows_read if rows_read is not None else st.total) <= profiled):
             continue
         p = st.pooled()
         ok = p.n > 0
@@ -329,6 +333,8 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
                 f"column '{c}': {_n(k)} lie outside the plausible range of "
                 f"{_running(spec, c).quantity} in {unit} ({_g(lo)}–{_g(hi)}); the median is "
                 f"{_g(f['median'])}" + (f", which fits {f['fits']}" if f["fits"] else "") +
+                (f". Its first {f['late']:,} rows fitted {unit}, so the rows after them were "
+                 "binned as read" if "late" in f else "") +
                 f". Rules were converted to {unit} and may miss the data: {fix}.", k))
     return out
 

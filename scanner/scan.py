@@ -263,19 +263,21 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
                                   for k, v in registry.index_rows().items()]
         registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
-    warnings = collect_warnings(spec, checks, cleaning, binned.stats, rules)
+    warnings = collect_warnings(spec, checks, cleaning, binned.stats, rules, binned.rows_read)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search,
                       warnings)
 
 
-def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules) -> list[dict]:
+def collect_warnings(spec: ScanSpec, checks, cleaning, stats: dict, rules,
+                     rows_read: int | None = None) -> list[dict]:
     """Every data-quality warning of the scan, in the order found (scanner.quality)."""
     from .candidates import rule_cutoff
     out = []
     if cleaning is not None and checks is not None:
         out += quality.parse_warnings(cleaning, spec, checks["sources"])
-        late = quality.late_unit_findings(checks["found"], spec, stats, quality.PROFILE_ROWS)
+        late = quality.late_unit_findings(checks["found"], spec, stats, quality.PROFILE_ROWS,
+                                          rows_read)
         out += quality.findings_to_warnings(checks["found"] + late, cleaning, stats, spec)
         out += checks["repeated"]
     out += quality.rule_warnings(spec, rules, stats, rule_cutoff)

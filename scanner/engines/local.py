@@ -402,9 +402,10 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             def convert(j):
                 # pyarrow's casts and the copy release the GIL: columns convert in parallel
                 v = numeric(batch, plan.columns[j], table.name, _role(plan.columns[j], plan))
-                if Y is not None:
-                    Y[j] = v
-                return v
+                if Y is None:
+                    return v
+                Y[j] = v
+                return Y[j]          # the copy, so the converted column is not held twice
             cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
                             else map(convert, range(k))))
             for t in plan.treatments:
