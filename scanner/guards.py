@@ -150,8 +150,9 @@ def unit_repeats(table, spec: ScanSpec) -> list[dict]:
         if not (spec.unit or named) and not (distinct >= ID_MIN_DISTINCT and
                                              distinct >= ID_MIN_RATIO * rows and p99 <= ID_MAX_ROWS):
             continue
-        seen = (f"{repeats:,} of the first {first.num_rows:,} rows share a value with an earlier "
-                f"row; {distinct:,} distinct values")
+        # "N rows of the first …": the count sits next to its noun, so outputs can suppress it
+        seen = (f"{repeats:,} row{'s' if repeats != 1 else ''} of the first {first.num_rows:,} "
+                f"share a value with an earlier row; {distinct:,} distinct values")
         if spec.unit:
             need = "" if spec.date else " and data.date (the column that orders a unit's rows)"
             msg = (f"column '{col}' is data.unit and repeats ({seen}), so units with many rows "

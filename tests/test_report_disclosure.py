@@ -175,3 +175,13 @@ def test_counts_written_in_sentences_are_suppressed_too():
     assert out["warnings"][0]["count"] is None
     assert out["notes"] == ["fewer than 11 persons appear twice"]
     assert out["candidates"][0]["reasons"] == ["rows left: fewer than 11 rows; bandwidth 2.5 rows"]
+
+
+def test_small_counts_in_identifier_and_possessive_wording_are_suppressed():
+    # The repeated-identifier warning wrote "5 of the first 900 rows …" (the 5 escaped the
+    # pattern), and "1 person's rows" became "fewer than 11 persons's rows".
+    from scanner.report.disclosure import scrub_text
+    assert scrub_text("5 rows of the first 900 share a value", 11) == \
+        "fewer than 11 rows of the first 900 share a value"
+    assert scrub_text("1 person's rows", 11) == "fewer than 11 persons' rows"
+    assert scrub_text("12 rows and 40 persons' visits", 11) == "12 rows and 40 persons' visits"

@@ -134,7 +134,7 @@ def is_binary(s1, s2) -> bool:
 
 
 # Counts written into sentences ("8 rows hold 999"): the same rule applies to them.
-COUNT_IN_TEXT = re.compile(r"(?<![\d.,])(\d{1,3}(?:,\d{3})+|\d+) (rows?|cells?|persons?|people|visits?)\b")
+COUNT_IN_TEXT = re.compile(r"(?<![\d.,])(\d{1,3}(?:,\d{3})+|\d+) (rows?|cells?|persons?|people|visits?)\b('s)?")
 TEXT_KEYS = {"message", "notes", "reasons", "reason"}
 PLURAL = {"row": "rows", "cell": "cells", "person": "persons", "visit": "visits"}
 
@@ -145,6 +145,8 @@ def scrub_text(text: str, min_cell: int) -> str:
     def small(m):
         k = int(m.group(1).replace(",", ""))
         noun = PLURAL.get(m.group(2), m.group(2))
+        if m.group(3):               # "1 person's rows" → "fewer than 11 persons' rows"
+            noun = noun + "'" if noun.endswith("s") else noun + "'s"
         return f"fewer than {min_cell} {noun}" if is_small(k, min_cell) else m.group(0)
     return COUNT_IN_TEXT.sub(small, text)
 
