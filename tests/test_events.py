@@ -680,3 +680,23 @@ def test_abutting_and_overlapping_periods_are_one_observed_span():
     finally:
         reg0.close()
         reg1.close()
+
+
+def test_profile_reads_every_running_variable(tmp_path, monkeypatch):
+    """Rows come ordered by running variable, so a profile of the first rows held only the
+    first variable: a 999 spike on the second one (LDL) went unnoticed and stayed in its bins.
+    Each variable now gets its share of the profile."""
+    import scanner
+    from scanner import quality
+    monkeypatch.setattr(quality, "PROFILE_ROWS", 400)
+    meas, ev, _ = registry(seed=8, n=3000)
+    rng = np.random.default_rng(3)
+    ldl = (meas.test == "LDL").to_numpy()
+    meas.loc[ldl, "value"] = np.round(rng.normal(3.0, 0.6, ldl.sum()), 1)
+    meas.loc[ldl & (rng.random(len(meas)) < 0.04), "value"] = 999.0
+    write_small(tmp_path / "s.toml", meas, ev,
+                tail='[[running]]\nname = "ldl"\ncolumn = "value"\nwhere = { test = "LDL" }\n')
+    assert (meas.test == "HBA1C").sum() > 400          # the first variable alone fills 400 rows
+    res = scanner.scan(tmp_path / "s.toml")
+    spikes = [w for w in res.warnings if w["kind"] == "sentinel_values" and w["column"] == "ldl"]
+    assert spikes and "999" in spikes[0]["message"]

@@ -135,16 +135,17 @@ class Registry:
         for name, sel in view_sql(lay, "duckdb", rels).items():
             con.execute(f"CREATE VIEW {name} AS {sel}")
 
-    limit = None        # at most this many rows from batches() (the data-quality profile)
-    last_score = None   # and only rows of running variables up to this number
+    per_score = None    # the data-quality profile: at most this many rows of each running variable
 
     def batches(self, cols, rows):
         """The kept analysis rows (columns ``cols``) as Arrow record batches, in a fixed order."""
-        sql = scan_sql(self.lay, "duckdb", "analysis", cols)
-        if self.last_score is not None:
-            sql = sql.replace("WHERE _noobs = 0", f"WHERE _noobs = 0 AND _score <= {int(self.last_score)}")
-        if self.limit is not None:
-            sql += f" LIMIT {int(self.limit)}"
+        source = "analysis"
+        if self.per_score is not None:
+            # The first rows of every running variable (rows come ordered by variable, so the
+            # first rows of the table would hold the first variable only).
+            source = ("(SELECT * FROM analysis WHERE _noobs = 0 QUALIFY row_number() OVER "
+                      f"(PARTITION BY _score ORDER BY _person, _day) <= {int(self.per_score)}) a")
+        sql = scan_sql(self.lay, "duckdb", source, cols)
         reader = self.con.cursor().sql(sql).to_arrow_reader(rows)
         yield from reader
 
@@ -170,17 +171,9 @@ class Registry:
         names = ("coded", "mapped", "sentinel_hits", "converted", "unit_missing", "out_of_range",
                  "watched")
         saved = {n: copy.deepcopy(getattr(cl, n)) for n in names}
-        # The rows come in the order (score, person, day): the scores whose rows cannot be among
-        # the first profile_rows are left out before sorting.
-        per = self.con.execute("SELECT _score, count(*) FROM analysis WHERE _noobs = 0 "
-                               "GROUP BY _score ORDER BY _score").fetchall()
-        before, self.last_score = 0, None
-        for k, n in per:
-            self.last_score = k
-            before += n
-            if before >= cl.profile_rows:
-                break
-        self.limit = cl.profile_rows
+        # Every running variable gets its share of the profile: the rows come in the order
+        # (score, person, day), so the first profile_rows rows would all be the first one's.
+        self.per_score = -(-cl.profile_rows // max(len(self.lay.scores), 1))
         try:
             it = table.batches(list(cl.profile_columns), cl.profile_rows)
             next(it, None)
@@ -189,7 +182,7 @@ class Registry:
                 cl.planned = True
                 cl.planner({c: np.zeros(0) for c in cl.profile_columns})
         finally:
-            self.limit = self.last_score = None
+            self.per_score = None
             for n, v in saved.items():
                 d = getattr(cl, n)
                 d.clear()
