@@ -700,3 +700,20 @@ def test_profile_reads_every_running_variable(tmp_path, monkeypatch):
     res = scanner.scan(tmp_path / "s.toml")
     spikes = [w for w in res.warnings if w["kind"] == "sentinel_values" and w["column"] == "ldl"]
     assert spikes and "999" in spikes[0]["message"]
+
+
+def test_unreadable_value_names_the_file_of_the_step_that_read_it():
+    # A conversion error while reading events or observed periods named the measurements file.
+    meas, ev, periods = registry(seed=2, n=200)
+    reg, _ = build(meas, ev, periods, "first", True)
+    try:
+        err = Exception("Could not convert string 'soon' to DATE")
+        lay = reg.lay
+        ev_msg = str(reg._unreadable(err, "evj"))
+        assert ev_msg.startswith(f"{lay.events_source or 'events'}:") and lay.events_date in ev_msg
+        ob_msg = str(reg._unreadable(err, "cov"))
+        assert lay.period_start in ob_msg and lay.period_end in ob_msg
+        me_msg = str(reg._unreadable(err, "idx"))
+        assert "value" in me_msg and "must hold numbers" in me_msg
+    finally:
+        reg.close()

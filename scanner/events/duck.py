@@ -83,31 +83,42 @@ class Registry:
         join tables at once."""
         import duckdb
         steps, final = analysis_steps(self.lay, "duckdb")
+        name = "idx"
         try:
             for name, sel in steps:
                 self.con.execute(f"CREATE TABLE {name} AS {sel}")
+            name = "analysis"
             self.con.execute("CREATE TABLE analysis AS " + final)
         except duckdb.ConversionException as e:
-            raise self._unreadable(e) from None
+            raise self._unreadable(e, name) from None
         for name, _ in reversed(steps):
             self.con.execute(f"DROP TABLE {name}")
         self.columns = [self.lay.person, self.lay.date] + [s.name for s in self.lay.scores] + \
             list(self.lay.treatments) + list(self.lay.covariates)
         self.num_rows = self.con.execute("SELECT count(*) FROM analysis WHERE _noobs = 0").fetchone()[0]
 
-    def _unreadable(self, e) -> InputError:
+    def _unreadable(self, e, step: str = "idx") -> InputError:
         """A value or date the registry could not convert (text such as '<5' in a value
-        column): the file, the columns read as numbers or dates, and the fix."""
+        column): the file and the columns of the step that read it, and the fix."""
         lay = self.lay
+        detail = str(e).splitlines()[0] if str(e) else type(e).__name__
+        fix = ("Clean the column before the scan: text codes such as '<5' must become a number "
+               "or an empty cell (missing); the long layout casts these columns in the database, "
+               "before any spec cleaning can map codes.")
+        if step in ("evj", "hl", "hits"):
+            src = lay.events_source or "events"
+            return InputError(f"{src}: a value could not be read as a date ({detail}). Column "
+                              f"{lay.events_date or 'date'} must hold dates. {fix}")
+        if step == "cov":
+            src = lay.periods or "observation periods"
+            return InputError(f"{src}: a value could not be read as a date ({detail}). Columns "
+                              f"{lay.period_start} and {lay.period_end} must hold dates. {fix}")
         src = lay.source or (str(Path(self.name) / "measurement") if lay.omop else "measurements")
         vals = ", ".join(dict.fromkeys(s.column for s in lay.scores))
-        detail = str(e).splitlines()[0] if str(e) else type(e).__name__
         return InputError(
             f"{src}: a value could not be read as a number or date ({detail}). Value column(s) "
-            f"{vals} must hold numbers and {lay.date} (and the events file's "
-            f"{lay.events_date or 'date'}) dates. Clean the column before the scan: text codes "
-            "such as '<5' must become a number or an empty cell (missing); the long layout "
-            "casts these columns in the database, before any spec cleaning can map codes.")
+            f"{vals} must hold numbers and {lay.date} dates (the events file's "
+            f"{lay.events_date or 'date'} and the periods' dates are read later). {fix}")
 
     def _register_files(self, base: Path, data: dict) -> None:
         lay, con = self.lay, self.con
@@ -165,8 +176,9 @@ class Registry:
                             "duckdb", "analysis", self._counts)
 
     def _profile(self, table, cl) -> None:
-        """Run the cleaning's profile on the first ``cl.profile_rows`` rows of the scan order,
-        leaving its counters as they were (the aggregate query counts every row)."""
+        """Run the cleaning's profile on the first rows of every running variable (an equal share
+        of ``cl.profile_rows``), leaving its counters as they were (the aggregate query counts
+        every row)."""
         import copy
         names = ("coded", "mapped", "sentinel_hits", "converted", "unit_missing", "out_of_range",
                  "watched")
