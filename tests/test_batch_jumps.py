@@ -114,3 +114,18 @@ def test_placebo_points_on_a_huge_range_do_not_exhaust_memory():
     y = (rng.random(x.size) < 0.3 + 0.3 * (x >= 0)).astype(float)
     res = placebo_test(None, _bins(x, y), 0.0, 4.0, 5.0)
     assert 0 < res.n_placebos <= 30
+
+
+def test_placebos_where_uptake_is_constant_do_not_count():
+    # Everyone treated from 0 on: every placebo right of the cutoff sits in constant uptake, its
+    # z is 0 by construction, and it counted as a placebo that found nothing, making the
+    # placebo p look reassuring.  Only the left side's placebos count now.
+    rng = np.random.default_rng(6)
+    x = rng.integers(-60, 61, 12000).astype(float)
+    y = np.where(x >= 0, 1.0, (rng.random(x.size) < 0.2 + 0.002 * x)).astype(float)
+    d = _bins(x, y)
+    res = placebo_test(None, d, 0.0, 5.0, 8.0)
+    assert res.n_placebos > 0 and all(c < 0 for c in res.cutoffs)
+    right = d.right
+    z = jumps_at(d.u[right], d.n[right], d.s1[right], d.s2[right], [10.0, 20.0], 5.0)[2]
+    assert np.isnan(z).all()

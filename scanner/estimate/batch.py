@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from .kernels import kernel as kernel_fn
-from .local import se_floor
+from .local import _rss, se_floor
 
 
 def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, points,
@@ -32,7 +32,7 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     Bins with ``u − p ≥ 0`` (up to a rounding error of 1e-9·h, so a point on a support value
     puts that value on the right, as at a real cutoff) form the right side.  A point with fewer
     than ``min_bins`` bins in its window, a side without ``degree + 1`` bins, or a singular fit
-    gets NaN.
+    gets NaN; so does the z of a point where both sides are constant (no variation, no test).
 
     Returns
     -------
@@ -57,8 +57,7 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     pw = [np.ones_like(V)]
     for _ in range(2 * d):
         pw.append(pw[-1] * V)
-    mean = s1 / n
-    within = np.maximum(s2 - s1 * mean, 0.0)
+    flat = _constant(s1, s2, n, sides[0]) & _constant(s1, s2, n, sides[1])
     est, var = [], []
     for s in sides:
         w = K * s                                         # 0 outside this side's window
@@ -72,7 +71,7 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
             return _one_by_one(u, n, s1, s2, p, h, kernel, d, min_bins)
         beta = np.einsum("pij,pj->pi", Ainv, T)
         fitted = sum(beta[:, i:i + 1] * pw[i] for i in range(d + 1))
-        rss = within[None, :] + n[None, :] * (mean[None, :] - fitted) ** 2
+        rss = _rss(n[None, :], s1[None, :], s2[None, :], fitted)
         wr = w * w * rss
         meat = np.stack([np.stack([(wr * pw[i + j]).sum(axis=1) for j in range(d + 1)], axis=-1)
                          for i in range(d + 1)], axis=-2)
@@ -89,11 +88,23 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     se = np.maximum(se, floor)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(se > 0, jump / se, np.where(jump != 0, np.copysign(np.inf, jump), np.nan))
-    z = np.where(np.isfinite(jump), z, np.nan)
+    z = np.where(np.isfinite(jump) & ~flat, z, np.nan)
     out = [nan.copy(), nan.copy(), nan.copy()]
     for o, v in zip(out, (jump, se, z)):
         o[ok] = v
     return tuple(out)
+
+
+def _constant(s1, s2, n, mask) -> np.ndarray:
+    """Per row of ``mask`` (points × bins): every row of the masked bins has the same value
+    (no spread within a bin and one bin mean).  Where both sides are constant — uptake exactly 0
+    or 1 on both sides of a placebo point — there is no variation and so no test: a z of 0
+    there would count as a placebo that found nothing."""
+    mean = s1 / n
+    spread = np.maximum(s2 - s1 * mean, 0.0) > 1e-12 * np.maximum(np.abs(s2), 1.0)
+    hi = np.where(mask, mean[None, :], -np.inf).max(axis=1)
+    lo = np.where(mask, mean[None, :], np.inf).min(axis=1)
+    return ~(mask & spread[None, :]).any(axis=1) & (hi - lo <= 1e-12 * np.maximum(np.abs(hi), 1.0))
 
 
 def _one_by_one(u, n, s1, s2, p, h, kernel, degree, min_bins):
@@ -106,7 +117,9 @@ def _one_by_one(u, n, s1, s2, p, h, kernel, degree, min_bins):
         if win.sum() < min_bins:
             continue
         vw = v[win]
-        f = fit_jumps(SideData(vw, n[win], s1[win], s2[win], vw >= -1e-9 * h), pt, h, kernel,
-                      degree)[0]
-        out[:, i] = f.jump, f.se, f.z
+        right = vw >= -1e-9 * h
+        f = fit_jumps(SideData(vw, n[win], s1[win], s2[win], right), pt, h, kernel, degree)[0]
+        masks = np.stack([~right, right])
+        both = _constant(s1[win], s2[win], n[win], masks).all()
+        out[:, i] = f.jump, f.se, (np.nan if both else f.z)
     return out[0], out[1], out[2]
