@@ -254,15 +254,23 @@ class BinnedStats:
         j = self.col(name)
         return self.x, self.cnt[:, j].astype(float), self.s1[:, j], self.s2[:, j]
 
-    def support_counts(self, drop=None):
-        """Sorted (x, n) over occupied pooled bins; ``drop`` masks pooled bins to leave out."""
+    def support_counts(self, drop=None, lengths: bool = False):
+        """Sorted (x, n) over occupied pooled bins; ``drop`` masks pooled bins to leave out.
+        With ``lengths`` also each bin's length (1 for exact support points)."""
         st = self.pooled()
         keep = st.n > 0
         if drop is not None:
             keep = keep & ~np.asarray(drop, bool)
         x, n = st.x[keep], st.n[keep].astype(float)
         order = np.argsort(x, kind="stable")
-        return x[order], n[order]
+        if not lengths:
+            return x[order], n[order]
+        if st.kind == "width":
+            lo, hi = st.bounds()
+            length = (hi - lo)[keep][order]
+        else:
+            length = np.ones(order.size)
+        return x[order], n[order], length
 
     def distinct_values(self) -> int:
         return int(np.unique(self.key[self.n > 0]).size)

@@ -176,17 +176,7 @@ def frandsen_test(stats: BinnedStats, cutoff: float, right_closed: bool = True,
 
 def _sorted_bins(stats: BinnedStats, drop=None):
     """Sorted occupied pooled bins: x, n and each bin's length (1 for exact support points)."""
-    st = stats.pooled()
-    keep = st.n > 0
-    if drop is not None:
-        keep = keep & ~np.asarray(drop, bool)
-    order = np.argsort(st.x[keep], kind="stable")
-    if st.kind == "width":
-        lo, hi = st.bounds()
-        length = (hi - lo)[keep][order]
-    else:
-        length = np.ones(order.size)
-    return st.x[keep][order], st.n[keep][order].astype(float), length
+    return stats.support_counts(drop, lengths=True)
 
 
 def flatness_p(x, n, length, side, cutoff) -> float:

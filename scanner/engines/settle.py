@@ -33,9 +33,9 @@ import numpy as np
 from ..bins import BinnedStats
 from . import grid
 
-REFINE_BINS = 10      # occupied final bins per side of a declared cutoff kept at the pass's resolution
-REFINE_EDGES = 400    # at most this many added edges per side of a cutoff, nearest first
-PART_ROOM = 512       # at most this many added edges inside one final bin (of grid.SUB parts)
+REFINE_BINS = 10      # our choice: occupied final bins a side of a declared cutoff kept at pass resolution
+REFINE_EDGES = 400    # our choice: at most this many added edges per side of a cutoff, nearest first
+PART_ROOM = 512       # our choice: at most this many added edges inside one final bin (of grid.SUB)
 
 
 def base_index(key: np.ndarray) -> np.ndarray:
