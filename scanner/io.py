@@ -157,15 +157,38 @@ def _parquet_batches(dataset, cols, rows):
     for.  A file whose column types differ from the folder's is read through the dataset, which
     converts them, so every batch has the same types either way."""
     import pyarrow.parquet as pq
-    want = dataset.schema
+    schemas = {f: pq.read_schema(f).remove_metadata() for f in dataset.files}
+    # One type per column over every file (int16 in one file and double in another read as
+    # double), not the first file's, which would truncate 0.5 to an integer.
+    want = None
+    for f, s in schemas.items():
+        s = pa.schema([s.field(c) for c in cols if c in s.names])
+        try:
+            want = s if want is None else pa.unify_schemas([want, s], promote_options="permissive")
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            differ = [c for c in s.names if c in want.names and s.field(c).type != want.field(c).type]
+            raise InputError(
+                f"{f}: column(s) {', '.join(differ)} have a different type here "
+                f"({', '.join(f'{c} {s.field(c).type}' for c in differ)}) than in the files "
+                f"before it ({', '.join(f'{c} {want.field(c).type}' for c in differ)}). Store each "
+                "column with one type in every file (numbers as float64).") from None
+    want = want if want is not None else dataset.schema
     for f in dataset.files:
-        pf = pq.ParquetFile(f)
-        have = pf.schema_arrow
+        have = schemas[f]
         if all(c in have.names and have.field(c).type == want.field(c).type for c in cols):
-            yield from pf.iter_batches(batch_size=rows, columns=cols)
-        else:
+            yield from pq.ParquetFile(f).iter_batches(batch_size=rows, columns=cols)
+            continue
+        try:
             yield from ds.dataset(f, format="parquet", schema=want).to_batches(
                 columns=cols, batch_size=rows)
+        except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError) as exc:
+            differ = [c for c in cols if c in have.names and c in want.names
+                      and have.field(c).type != want.field(c).type]
+            raise InputError(
+                f"{f}: column(s) {', '.join(differ) or ', '.join(cols)} have a different type here "
+                f"({', '.join(f'{c} {have.field(c).type}' for c in differ)}) than in the other "
+                f"files of the folder and cannot be converted ({_arrow_reason(exc)}). Store each "
+                "column with one type in every file (numbers as float64).") from None
 
 
 def _is_pandas(obj) -> bool:

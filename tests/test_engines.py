@@ -370,6 +370,27 @@ def test_parquet_folder_with_mixed_column_types(tmp_path):
         assert_same_stats(got.stats[r], ref.stats[r])
 
 
+def test_parquet_folder_with_fractions_after_an_integer_file(tmp_path):
+    # The second file holds 0.5 where the first stored int16: the folder's type was the first
+    # file's, and reading failed with a message naming neither the file nor the column.  The
+    # types are unified over the files (int16 and double read as double); a column that cannot
+    # be converted (text in one file) is an input error naming the file and the column.
+    folder = tmp_path / "mixed"
+    folder.mkdir()
+    a = pd.DataFrame({"x": np.arange(-20, 20, dtype="int16"), "d": np.tile([0.0, 1.0], 20)})
+    b = pd.DataFrame({"x": np.arange(-20, 20) + 0.5, "d": np.tile([1.0, 0.0], 20)})
+    pq.write_table(pa.Table.from_pandas(a, preserve_index=False), folder / "a.parquet")
+    pq.write_table(pa.Table.from_pandas(b, preserve_index=False), folder / "b.parquet")
+    plan = BinPlan(("x",), ("d",), ("d",))
+    got = bin_table(open_table(folder), plan).stats["x"]
+    ref = bin_table(open_table(pd.concat([a.astype({"x": float}), b])), plan).stats["x"]
+    assert_same_stats(got, ref)
+    pq.write_table(pa.Table.from_pandas(b.astype({"x": str}), preserve_index=False),
+                   folder / "c.parquet")
+    with pytest.raises(InputError, match=r"c\.parquet: column\(s\) x have a different type"):
+        bin_table(open_table(folder), plan)
+
+
 def test_junk_magnitudes_keep_their_side_and_do_not_crash():
     # One value of ±1e300 in a gridded variable: floor(x / w) overflowed int64 — the compiled
     # kernel stopped with an internal error, the numpy kernels put +1e300 at −9.2e18, below
