@@ -100,7 +100,7 @@ def markdown(results: dict, top: int = 5) -> str:
         lines += ["No candidate showed a jump in uptake after adjusting for the number of tests.", ""]
     else:
         lines += ["| # | running variable | treatment | cutoff | origin | jump in uptake "
-                  "(conventional, bias-corrected) [95% CI] | "
+                  "(conventional; bias-corrected where the interval is robust) [95% CI, kind] | "
                   "rows left / right of cutoff (within bandwidth) | density p | balance p | verdict |",
                   "|---|---|---|---|---|---|---|---|---|---|"]
         for c in shown:
