@@ -25,7 +25,8 @@ measurement runs in a fresh process so its peak resident memory is its own:
 - ``scan`` / ``scan no date``: the full default scan (round numbers, discovery with the held-out
   half) with ``data.date`` set, and on the same table without it.
 
-The machine is shared: every row records the load averages when it ran.  Results go to
+The machine is shared: every row records the load averages when it ran, and each step runs three
+times (``--repeat``), its median run reported.  Results go to
 ``benchmarks/results/scale.md``.
 """
 from __future__ import annotations
@@ -135,6 +136,8 @@ def main() -> None:
     ap.add_argument("--rows", type=float, nargs="*", default=[1e6, 1e7])
     ap.add_argument("--batch-rows", type=int, default=1_000_000)
     ap.add_argument("--modes", nargs="*", default=list(MODES))
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="runs per mode (fresh processes); the median wall time is reported")
     ap.add_argument("--child", nargs="+")
     a = ap.parse_args()
     if a.child:
@@ -146,21 +149,31 @@ def main() -> None:
              f"batches of {a.batch_rows:,} rows. Wall time on this shared 2-core machine moves "
              "with the load of other jobs (last column: 1/5/15-minute load averages when the "
              "step ran); CPU time (this process and its forked worker) moves less.",
-             "", "| rows | step | wall (s) | CPU (s) | peak RSS (MB) | wall vs read | "
+             f"Each step ran {a.repeat} times in fresh processes, in rounds over the steps; its "
+             "row is the run with the median wall time, with the range of the runs beside it.",
+             "", "| rows | step | wall (s) | wall range (s) | CPU (s) | peak RSS (MB) | wall vs read | "
              "CPU vs read | baseline (same columns read and converted) | wall vs baseline | "
              "CPU vs baseline | CPU vs plain pass | one-time start (s) | load |",
-             "|---:|---|---:|---:|---:|---:|---:|---|---:|---:|---:|---:|---|"]
+             "|---:|---|---:|---:|---:|---:|---:|---:|---|---:|---:|---:|---:|---|"]
     for n in map(int, a.rows):
         folder = bd.generate(bd.DATA / f"scan_dated_{n}", n, *SHAPE, dated=True)
         bd.child(Path(__file__), "read", folder, a.batch_rows)      # warm the page cache
-        got, grids = {}, "{}"
-        for mode in a.modes:
-            r = bd.child(Path(__file__), mode, folder, a.batch_rows, grids)
-            if mode == "bin plain":
-                grids = json.dumps(r["grids"])
-            got[mode] = r
-            print(f"{n:>11,} {mode:<13} {r['seconds']:8.2f} s {r['cpu_seconds']:8.2f} cpu-s "
-                  f"{r['peak_rss_mb']:8.0f} MB load {r['load']}", flush=True)
+        runs, grids = {m: [] for m in a.modes}, "{}"
+        # Rounds over all modes, so a burst of other jobs' load spreads over the modes; each
+        # mode's row is its run with the median wall time (the range is shown beside it).
+        for _ in range(a.repeat):
+            for mode in a.modes:
+                r = bd.child(Path(__file__), mode, folder, a.batch_rows, grids)
+                if mode == "bin plain":
+                    grids = json.dumps(r["grids"])
+                runs[mode].append(r)
+                print(f"{n:>11,} {mode:<13} {r['seconds']:8.2f} s {r['cpu_seconds']:8.2f} cpu-s "
+                      f"{r['peak_rss_mb']:8.0f} MB load {r['load']}", flush=True)
+        got = {}
+        for mode, rs in runs.items():
+            rs = sorted(rs, key=lambda r: r["seconds"])
+            got[mode] = dict(rs[(len(rs) - 1) // 2],
+                             range=f"{rs[0]['seconds']:.2f}–{rs[-1]['seconds']:.2f}")
         base = got.get("read", {}).get("seconds", float("nan"))
         cbase = got.get("read", {}).get("cpu_seconds", float("nan"))
         plain = got.get("bin plain", {}).get("cpu_seconds", float("nan"))
@@ -172,13 +185,15 @@ def main() -> None:
             rel = (f"{BASELINE[mode]} | {r['seconds'] / b['seconds']:.1f}× | "
                    f"{r['cpu_seconds'] / b['cpu_seconds']:.1f}×" if b else "— | — | —")
             start = f"{r['start_seconds']:.2f}" if "start_seconds" in r else "—"
-            lines.append(f"| {n:,} | {mode} | {r['seconds']:.2f} | {r['cpu_seconds']:.2f} | "
+            lines.append(f"| {n:,} | {mode} | {r['seconds']:.2f} | {r['range']} | "
+                         f"{r['cpu_seconds']:.2f} | "
                          f"{peak} | {r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}× | "
                          f"{rel} | {r['cpu_seconds'] / plain:.2f}× | {start} | {r['load']} |")
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",
               "", "Reproduce: `python benchmarks/bench_scan.py --rows " +
               " ".join(f"{int(n)}" for n in a.rows) +
+              ("" if a.repeat == 3 else f" --repeat {a.repeat}") +
               ("" if list(a.modes) == list(MODES) else
                " --modes " + " ".join(f'"{m}"' if " " in m else m for m in a.modes)) + "`."]
     print(bd.write_section("bench_scan", "\n".join(lines)))

@@ -53,9 +53,12 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
     return g, np.asarray(uniq), nb
 
 
-def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0):
+def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0,
+                    fallback: bool = True):
     """:func:`_codes` with compiled loops: the same groups and keys; and the number of decimals
-    that made the values whole (tried first next time; any that works gives the same keys)."""
+    that made the values whole (tried first next time; any that works gives the same keys).
+    With ``fallback`` False, (None, hint) where the keys are not short decimals on a dense
+    range (the caller decides how to group them)."""
     from . import compiled
     if dense:
         g, uniq, nb, fits = compiled.dense_codes(key, ok)
@@ -67,4 +70,4 @@ def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0)
             if fits:
                 return (g, uniq / 10.0 ** d, nb), d
             break
-    return _codes(key, ok, False), hint
+    return (_codes(key, ok, False) if fallback else None), hint

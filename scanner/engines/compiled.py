@@ -4,11 +4,15 @@ Two loops per running variable and batch, both over the rows in order:
 
 1. :func:`local_groups` gives each row the batch-local group of its (bin, period-half) pair
    through a dense look-up table of ``bins × period-half codes`` (both small ranges within a
-   batch), numbering groups in order of first appearance;
+   batch), numbering groups in order of first appearance (without period or half keys the
+   bin codes are the groups and this loop is skipped);
 2. :func:`add_compact` adds every row's n, x, x² and its addends into its group's row of a
    small per-batch matrix, which is then added to the running totals' slots
    (:class:`scanner.engines.sums.SlotSums`) in one indexed ``+=``.
 
+Before them, :func:`finite_counts` and :func:`grid_keys` (or :func:`decimal_ints` for exact
+values) and :func:`dense_codes` turn a running variable's values into bin codes, each in one
+pass over the rows where numpy would make a temporary array per operation.
 The addends are laid out once per batch by :func:`compact_rows`, shared by every running
 variable, and only those not known already: y² of a 0/1 column is y, and the count of a column
 with no missing value in the batch is the row count (:mod:`scanner.engines.compact`).  Each
@@ -114,16 +118,18 @@ def compact_rows(Y, sq, cnt, pa, pb, joint, W):
 
 @njit(nogil=True, cache=True)
 def add_compact(group, x, W, Mc):
-    """Add each row's n, x, x² and its row of ``W`` to row ``group[i]`` of ``Mc`` (-1: skipped).
+    """Add each row's n, x, x² and its row of ``W`` to row ``group[i]`` of ``Mc`` (a group
+    below 0 or past the last row of ``Mc`` — a row with no finite running value — is skipped).
 
     ``Mc`` is the batch's per-group matrix (groups are few and dense, so it stays in cache);
     the caller adds it to the running totals' slots in one indexed ``+=``.
     """
     m = group.size
     w = W.shape[1]
+    G = Mc.shape[0]
     for i in range(m):
         gi = group[i]
-        if gi < 0:
+        if gi < 0 or gi >= G:
             continue
         xi = x[i]
         Mc[gi, 0] += 1.0
@@ -163,6 +169,53 @@ def order_by(code, span):
         c = code[i]
         out[count[c]] = i
         count[c] += 1
+    return out
+
+
+@njit(nogil=True, cache=True)
+def finite_counts(x):
+    """(finite mask, NaN count, ±inf count) of a running variable's values, in one pass."""
+    m = x.size
+    ok = np.empty(m, np.bool_)
+    nan = 0
+    inf = 0
+    for i in range(m):
+        v = x[i]
+        f = v - v == 0.0
+        ok[i] = f
+        if not f:
+            if v != v:
+                nan += 1
+            else:
+                inf += 1
+    return ok, nan, inf
+
+
+@njit(nogil=True, cache=True)
+def grid_keys(x, ok, w, p, ten, pw, limit):
+    """:func:`scanner.engines.grid.keys` of the rows with ``ok`` (0 elsewhere), in one pass.
+
+    The same operations in the same order (edges ``k·p / ten`` when ``ten > 0``, else
+    ``k·pw``), so the keys are identical; the numpy version makes ten temporaries of the batch.
+    """
+    m = x.size
+    out = np.zeros(m, np.int64)
+    for i in range(m):
+        if not ok[i]:
+            continue
+        v = x[i]
+        k = np.floor(v / w)
+        e = (k * p) / ten if ten > 0.0 else k * pw
+        if e > v:
+            k -= 1.0
+        e = ((k + 1.0) * p) / ten if ten > 0.0 else (k + 1.0) * pw
+        if e <= v:
+            k += 1.0
+        if k > limit:
+            k = limit
+        elif k < -limit:
+            k = -limit
+        out[i] = np.int64(k)
     return out
 
 

@@ -239,9 +239,12 @@ class Accumulator:
         number of parts per bin (keys are ``k*parts + j`` for part j of grid bin k)."""
         if self.state == "exact":
             return x, False, 1
-        xs = np.where(ok, x, 0.0)
-        k = np.where(ok, grid.keys(xs, *self.grid), 0)
-        j = grid.sub_index(k, xs, grid.inner(self.forced, *self.grid))
+        if _kernel(self.plan.kernel) == "compiled":
+            k = grid.keys_compiled(x, ok, *self.grid)
+        else:
+            k = np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0)
+        inn = grid.inner(self.forced, *self.grid)
+        j = grid.sub_index(k, np.where(ok, x, 0.0), inn) if inn[0].size else None
         if j is None:
             return k, True, 1
         parts = int(j.max()) + 1
@@ -254,14 +257,20 @@ class Accumulator:
         set of exact bins.
         """
         f = self.plan.fine_keys
-        if self.state == "exact" and x.size > 8 * f:
-            # The batch's first rows alone may hold more than fine_keys values: then it leaves
-            # exact bins without grouping a batch's worth of distinct floats first.
-            head = np.unique(x[:8 * f][ok[:8 * f]])
-            if head.size > f:
-                self._leave_exact(np.union1d(head, self.sums.bin_keys))
-        key, dense, parts = self.key(x, ok)
-        out = self._codes(key, ok, dense)
+        out, parts = None, 1
+        if self.state == "exact" and _kernel(self.plan.kernel) == "compiled":
+            # Short decimals (most registry values) are coded in two compiled passes; only
+            # other values need the look at the batch's head below.
+            out, self.decimals = _codes_compiled(x, ok, False, self.decimals, fallback=False)
+        if out is None:
+            if self.state == "exact" and x.size > 8 * f:
+                # The batch's first rows alone may hold more than fine_keys values: then it
+                # leaves exact bins without grouping a batch's worth of distinct floats first.
+                head = np.unique(x[:8 * f][ok[:8 * f]])
+                if head.size > f:
+                    self._leave_exact(np.union1d(head, self.sums.bin_keys))
+            key, dense, parts = self.key(x, ok)
+            out = self._codes(key, ok, dense)
         if self.state == "exact" and out[2] + self.sums.n_keys > f:
             vals = np.union1d(out[1], self.sums.bin_keys)
             if vals.size > f:
@@ -321,7 +330,9 @@ class Accumulator:
                 ext, span, p0 = _NO_EXT, 1, 0
             else:
                 ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
-            if nb * span <= LUT_MAX:
+            if span == 1:       # no period or half keys: the dense codes are the groups
+                group, first = g, np.arange(nb, dtype=np.int64)
+            elif nb * span <= LUT_MAX:
                 group, first = compiled.local_groups(g, nb, ext, span)
             else:       # too many combinations for a dense table: hash them
                 import pandas as pd
@@ -411,6 +422,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             for t in plan.treatments:
                 check_binary(cols[t], t, table.name)
             if kernel == "compiled":
+                from . import compiled
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
@@ -424,8 +436,11 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             def one(r):
                 extra = by_detail[plan.period_of(r)]
                 x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
-                ok = np.isfinite(x)
-                isn = np.isnan(x)
+                if kernel == "compiled":
+                    ok, nan, inf = compiled.finite_counts(x)
+                else:
+                    ok, nan = np.isfinite(x), int(np.isnan(x).sum())
+                    inf = int(m - ok.sum() - nan)
                 a = acc[r]
                 codes = a.codes(x, ok)
                 if kernel == "compiled":
@@ -433,8 +448,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 else:
                     a.add(fold_raw(codes, x, ok, extra, packed, a.template, kernel)
                           if codes[2] else None)
-                nan = int(isn.sum())
-                return nan, int(m - ok.sum() - nan)
+                return nan, inf
             got = list(pool.map(one, plan.running)) if pool else [one(r) for r in plan.running]
             for r, (nan, inf) in zip(plan.running, got):
                 missing[r] += nan
