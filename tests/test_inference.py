@@ -125,6 +125,9 @@ def test_honest_critical_value_matches_scipy_and_published_value():
         assert_allclose(honest_cv(t), root, rtol=1e-8)
     # METHODS.md §7c derived values (t = 1 → 2.646, t = 2 → 3.645).
     assert_allclose([honest_cv(1.0), honest_cv(2.0)], [2.646, 3.645], atol=5e-4)
+    # The direct scipy.special call is the value scipy.stats.ncx2.ppf gives, to the last bit.
+    for t in np.linspace(1e-6, 12.0, 301):
+        assert honest_cv(t) == float(np.sqrt(sps.ncx2.ppf(0.95, 1, t * t)))
 
 
 def test_honest_interval_equals_rowlevel(design):

@@ -17,7 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special, stats as sps
+from scipy import special
 
 from .kernels import kernel as kernel_fn
 from .local import SideData
@@ -35,8 +35,11 @@ def honest_cv(t: float, alpha: float = 0.05) -> float:
     if not np.isfinite(t):
         return float("nan")
     if t < 1e-10:
-        return float(sps.norm.ppf(1 - alpha / 2))
-    return float(np.sqrt(sps.ncx2.ppf(1 - alpha, 1, t * t)))
+        return float(special.ndtri(1 - alpha / 2))
+    # scipy.stats.ncx2.ppf computes chndtrix; called directly it gives the same values (tested)
+    # without the distribution machinery's per-call cost (~0.1 ms, four calls per candidate).
+    with np.errstate(over="ignore"):
+        return float(np.sqrt(special.chndtrix(1 - alpha, 1, t * t)))
 
 
 CURVATURE_Z = 0.8416   # one-sided 80% upper bound on the local |μ''| (our choice, see below)
