@@ -292,9 +292,13 @@ def _evaluate_group(cands, pooled: dict, stats: dict, spec: ScanSpec, progress=N
     if search:
         return (_evaluate_group(cands, pooled, stats, spec, progress, total),
                 pair_searches(stats, spec, set(search)))
+    from functools import partial
+    from .together import prepare
     rows, density_cache = [], {}
-    for c in cands:
-        row = evaluate_contained(evaluate, pooled[c.running], c, spec, density_cache)
+    ready = prepare(cands, pooled, spec)
+    for i, c in enumerate(cands):
+        row = evaluate_contained(partial(evaluate, prepared=ready.get(i)), pooled[c.running], c,
+                                 spec, density_cache)
         force = in_force_codes(stats[c.running], c.rule)
         if force is not None:
             # A dated rule: the headline comes from the periods it was in force; pooled beside.
@@ -512,11 +516,22 @@ def _data_info(binned, spec: ScanSpec, deduped: int, blanked=None, cleaning=None
                      for r in spec.running}}
 
 
-def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict) -> dict:
-    """All estimates and diagnostics for one candidate, as a flat dict."""
+def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache: dict,
+             prepared=None) -> dict:
+    """All estimates and diagnostics for one candidate, as a flat dict.
+
+    ``prepared``: (side data, bandwidth choice, covariate balance or None) computed for all
+    candidates of the running variable at once (:func:`scanner.together.prepare`), on these
+    ``stats``.
+    """
     t, c = cand.treatment, cand.cutoff
-    d = side_data(stats, t, c, cand.right_closed)
-    sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side, MIN_DISTINCT)
+    if prepared is not None:
+        d, sel, bal = prepared
+    else:
+        d = side_data(stats, t, c, cand.right_closed)
+        sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side,
+                               MIN_DISTINCT)
+        bal = None
     h = (sel.h_left + sel.h_right) / 2   # diagnostics below use one window
     # A side with no variation in the window gets a variance that cannot vanish (local.py).
     d, variation = floor_variance(d, sel.h_left, sel.h_right)
@@ -548,7 +563,8 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
     row["design"] = "unknown" if row.get("no_variation") else _design(fit)
     if spec.covariates and np.isfinite(fit.jump):
         covs = [v for v in spec.covariates if v != cand.running]
-        bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)
+        if bal is None:
+            bal = covariate_balance(stats, covs, c, h, spec.kernel, spec.degree, cand.right_closed)
         row.update(balance_p=bal.p_value, balance=bal.covariates, balance_worst=bal.worst(),
                    balance_method=bal.method)
     else:

@@ -50,14 +50,42 @@ def covariate_balance(stats: BinnedStats, covariates, cutoff: float, bandwidth: 
         win = np.abs(d.u) < bandwidth
         nn = d.n[win].sum()
         for j, (cov, fit) in enumerate(zip(names, fit_jumps(d, cutoff, bandwidth, kernel, degree))):
-            s1, s2 = d.s1[win, j].sum(), d.s2[win, j].sum()
-            sd = np.sqrt(max(s2 / nn - (s1 / nn) ** 2, 0.0)) if nn > 1 else np.nan
-            std = fit.jump / sd if sd and sd > 0 else float("nan")
-            found[cov] = {"name": cov, "jump": fit.jump, "se": fit.se, "std_jump": float(std),
-                          "std_ci_low": float(fit.ci_low / sd) if sd and sd > 0 else float("nan"),
-                          "std_ci_high": float(fit.ci_high / sd) if sd and sd > 0 else float("nan"),
-                          "p_value": fit.p_value, "reason": fit.reason}
-    rows = [found[cov] for cov in covariates]
+            found[cov] = _entry(cov, fit, nn, d.s1[win, j].sum(), d.s2[win, j].sum())
+    return _result([found[cov] for cov in covariates])
+
+
+def covariate_balance_at(stats: BinnedStats, covariates, cutoffs, bandwidths, right_closed,
+                         kernel: str = "triangular", degree: int = 1) -> list[BalanceResult]:
+    """:func:`covariate_balance` at many (cutoff, bandwidth, right_closed) of one running
+    variable, the fits of all of them computed together (``estimate.batch.fits_at``); the
+    numbers are those of one call per point up to the order of floating-point additions."""
+    from ..estimate.batch import fits_at
+    st = stats.pooled()
+    c = np.asarray(cutoffs, float)
+    h = np.asarray(bandwidths, float)
+    fits = fits_at(st, covariates, c, h, right_closed, kernel, degree)
+    win = np.abs(st.x[None, :] - c[:, None]) < h[:, None]       # points × bins
+    idx = [st.col(cov) for cov in covariates]
+    nn = win @ st.cnt[:, idx].astype(float)                     # points × covariates
+    s1, s2 = win @ st.s1[:, idx], win @ st.s2[:, idx]
+    return [_result([_entry(cov, f, nn[i, j], s1[i, j], s2[i, j])
+                     for j, (cov, f) in enumerate(zip(covariates, row))])
+            for i, row in enumerate(fits)]
+
+
+def _entry(cov: str, fit, nn: float, s1: float, s2: float) -> dict:
+    """One covariate's jump, standardised by its standard deviation in the window (``nn``
+    rows with sums ``s1``, ``s2``)."""
+    sd = np.sqrt(max(s2 / nn - (s1 / nn) ** 2, 0.0)) if nn > 1 else np.nan
+    std = fit.jump / sd if sd and sd > 0 else float("nan")
+    return {"name": cov, "jump": fit.jump, "se": fit.se, "std_jump": float(std),
+            "std_ci_low": float(fit.ci_low / sd) if sd and sd > 0 else float("nan"),
+            "std_ci_high": float(fit.ci_high / sd) if sd and sd > 0 else float("nan"),
+            "p_value": fit.p_value, "reason": fit.reason}
+
+
+def _result(rows: list) -> BalanceResult:
+    """Bonferroni joint p-value over the covariates with a test."""
     ps = [r["p_value"] for r in rows if np.isfinite(r["p_value"])]
     joint = min(1.0, len(ps) * min(ps)) if ps else float("nan")
     return BalanceResult(float(joint), rows)

@@ -54,29 +54,12 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     if not ok.any():
         return nan, nan.copy(), nan.copy()
     V, K, sides = V[ok], K[ok], [s[ok] for s in sides]
-    pw = [np.ones_like(V)]
-    for _ in range(2 * d):
-        pw.append(pw[-1] * V)
     flat = _constant(s1, s2, n, sides[0]) & _constant(s1, s2, n, sides[1])
-    est, var = [], []
-    for s in sides:
-        w = K * s                                         # 0 outside this side's window
-        wn = w * n
-        A = np.stack([np.stack([(wn * pw[i + j]).sum(axis=1) for j in range(d + 1)], axis=-1)
-                      for i in range(d + 1)], axis=-2)
-        T = np.stack([(w * s1 * pw[i]).sum(axis=1) for i in range(d + 1)], axis=-1)
-        try:
-            Ainv = np.linalg.inv(A)
-        except np.linalg.LinAlgError:
-            return _one_by_one(u, n, s1, s2, p, h, kernel, d, min_bins)
-        beta = np.einsum("pij,pj->pi", Ainv, T)
-        fitted = sum(beta[:, i:i + 1] * pw[i] for i in range(d + 1))
-        rss = _rss(n[None, :], s1[None, :], s2[None, :], fitted)
-        wr = w * w * rss
-        meat = np.stack([np.stack([(wr * pw[i + j]).sum(axis=1) for j in range(d + 1)], axis=-1)
-                         for i in range(d + 1)], axis=-2)
-        var.append(np.einsum("pi,pij,pj->p", Ainv[:, 0, :], meat, Ainv[:, 0, :]))
-        est.append(beta[:, 0])
+    try:
+        est, _, var = side_fits(V, K, sides, n, s1[:, None], s2[:, None], d)
+    except np.linalg.LinAlgError:
+        return _one_by_one(u, n, s1, s2, p, h, kernel, d, min_bins)
+    est, var = est[..., 0], var[..., 0]
     n_h = ((sides[0] | sides[1]) * n[None, :]).sum(axis=1)
     dof = 2 * (d + 1)
     scale = np.where(n_h > dof, n_h / np.maximum(n_h - dof, 1e-300), np.nan)
@@ -93,6 +76,125 @@ def jumps_at(u: np.ndarray, n: np.ndarray, s1: np.ndarray, s2: np.ndarray, point
     for o, v in zip(out, (jump, se, z)):
         o[ok] = v
     return tuple(out)
+
+
+def side_fits(V, K, sides, n, S1, S2, degree: int):
+    """Local polynomial fits of every column on each side of many points at once.
+
+    ``V`` (points × bins): bin positions centred at each point; ``K``: kernel weights (0 outside
+    the window); ``sides``: (left, right) masks of the same shape; ``n`` (bins): rows per bin;
+    ``S1``/``S2`` (bins × columns): Σy and Σy² per bin of columns present on the same rows.
+    Returns (intercept, slope, intercept variance), each shaped (2 sides, points, columns); the
+    slope is 0 for degree 0.  The same weighted least squares as
+    :func:`scanner.estimate.local.fit_jumps` (moment matrix R'WR per side and point, its
+    inverse shared by the columns, HC0 sandwich of the intercept before the HC1 scale), with
+    the sums over bins as array reductions.  Raises ``numpy.linalg.LinAlgError`` if any
+    point's moment matrix is singular (the caller then fits one by one).
+    """
+    d = int(degree)
+    R = [np.ones_like(V)]
+    for _ in range(2 * d):
+        R.append(R[-1] * V)                     # powers V^0 … V^2d
+    est, slope, var = [], [], []
+    for side in sides:
+        w = K * side                                      # 0 outside this side's window
+        wn = w * n[None, :]
+        A = np.stack([np.stack([(wn * R[i + j]).sum(axis=1) for j in range(d + 1)], axis=-1)
+                      for i in range(d + 1)], axis=-2)
+        Ainv = np.linalg.inv(A)                           # (points, d+1, d+1)
+        T = np.stack([w * R[i] for i in range(d + 1)], axis=1) @ S1    # (points, d+1, cols)
+        beta = Ainv @ T                                   # (points, d+1, cols)
+        fitted = sum(beta[:, i, None, :] * R[i][:, :, None] for i in range(d + 1))
+        rss = _rss(n[None, :, None], S1[None], S2[None], fitted)        # (points, bins, cols)
+        wr = (w * w)[:, :, None] * rss
+        meat = np.stack([np.stack([np.einsum("pb,pbc->pc", R[i + j], wr) for j in range(d + 1)],
+                                  axis=1) for i in range(d + 1)], axis=1)  # (points, i, j, cols)
+        a0 = Ainv[:, 0, :]                                # first row of A⁻¹
+        var.append(np.einsum("pi,pijc,pj->pc", a0, meat, a0))
+        est.append(beta[:, 0, :])
+        slope.append(beta[:, 1, :] if d >= 1 else np.zeros_like(beta[:, 0, :]))
+    return np.stack(est), np.stack(slope), np.stack(var)
+
+
+def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "triangular",
+            degree: int = 1) -> list[list]:
+    """:func:`scanner.estimate.local.fit_jump` of each column at each (cutoff, bandwidth),
+    computed together: one list of JumpFit (one per column) per point.
+
+    The candidates of one running variable share its bins; their windows, kernel weights,
+    moment matrices and solves are formed as arrays with one row per candidate, and columns
+    present on the same rows (equal counts in every bin) share them as well.  Each number is
+    the one ``fit_jump`` gives for that column and point up to the order of floating-point
+    additions (a test compares every field, and against row-level statsmodels WLS); support
+    checks, reasons, the HC1 scale and the SE floor are those of ``fit_jump``.
+    """
+    from .local import _check_support, _finish, _not_estimable, side_data_many
+    st = stats.pooled()
+    c = np.asarray(cutoffs, float)
+    h = np.asarray(bandwidths, float)
+    rc = np.broadcast_to(np.asarray(right_closed, bool), c.shape)
+    P, d = c.size, int(degree)
+    out: list[list] = [[None] * len(columns) for _ in range(P)]
+    if P == 0:
+        return out
+    K_fn = kernel_fn(kernel)
+    for names, data in side_data_many(st, columns, 0.0):     # u = x here: centred below
+        idx = [list(columns).index(nm) for nm in names]
+        x, n = data.u, data.n
+        V = x[None, :] - c[:, None]
+        right = np.where(rc[:, None], V >= 0, V > 0)
+        good = np.isfinite(h) & (h > 0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            K = np.where(good[:, None], K_fn(V / np.where(good, h, 1.0)[:, None]), 0.0)
+        inside = K > 0
+        sides = [inside & ~right, inside & right]
+        dl, dr = sides[0].sum(axis=1), sides[1].sum(axis=1)
+        nl, nr = (sides[0] * n).sum(axis=1), (sides[1] * n).sum(axis=1)
+        fit = np.zeros(P, bool)
+        for i in range(P):
+            counts = (int(nl[i]), int(nr[i]), int(dl[i]), int(dr[i]))
+            bad = _check_support(float(c[i]), float(h[i]), kernel, d, counts)
+            if bad is not None:
+                for j in idx:
+                    out[i][j] = bad
+            else:
+                fit[i] = True
+        if not fit.any():
+            continue
+        S1, S2 = data.s1.reshape(x.size, -1), data.s2.reshape(x.size, -1)
+        got = _fit_points(V, K, sides, n, S1, S2, d, np.flatnonzero(fit))
+        dof = 2 * (d + 1)
+        for i, parts in got.items():
+            counts = (int(nl[i]), int(nr[i]), int(dl[i]), int(dr[i]))
+            if parts is None:
+                for j in idx:
+                    out[i][j] = _not_estimable(float(c[i]), float(h[i]), kernel, d,
+                                               "singular local fit", *counts)
+                continue
+            e, sl, v = parts
+            n_h = nl[i] + nr[i]
+            scale = n_h / (n_h - dof) if n_h > dof else float("nan")
+            for col, j in enumerate(idx):
+                se = float(np.sqrt((v[0, col] + v[1, col]) * scale))
+                bl, br = (e[0, col], sl[0, col]), (e[1, col], sl[1, col])
+                out[i][j] = _finish(float(c[i]), float(h[i]), kernel, d, br[0] - bl[0], se, bl,
+                                    br, counts)
+    return out
+
+
+def _fit_points(V, K, sides, n, S1, S2, d, pts) -> dict:
+    """{point: (intercepts, slopes, variances) per side and column, or None where singular}:
+    all points in one :func:`side_fits`, or — if some moment matrix is singular — halves of
+    them until the singular ones are alone."""
+    try:
+        e, sl, v = side_fits(V[pts], K[pts], [s[pts] for s in sides], n, S1, S2, d)
+    except np.linalg.LinAlgError:
+        if pts.size == 1:
+            return {int(pts[0]): None}
+        h = pts.size // 2
+        return {**_fit_points(V, K, sides, n, S1, S2, d, pts[:h]),
+                **_fit_points(V, K, sides, n, S1, S2, d, pts[h:])}
+    return {int(i): (e[:, q], sl[:, q], v[:, q]) for q, i in enumerate(pts)}
 
 
 def _constant(s1, s2, n, mask) -> np.ndarray:
