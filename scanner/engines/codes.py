@@ -64,10 +64,9 @@ def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0,
         g, uniq, nb, fits = compiled.dense_codes(key, ok)
         return (g, uniq, nb) if fits else _codes(key, ok, True), hint
     for d in dict.fromkeys((hint, 0, 1, 2, 3)):
-        k, whole = compiled.decimal_ints(key, ok, 10.0 ** d)
-        if whole:
-            g, uniq, nb, fits = compiled.dense_codes(k, ok)
-            if fits:
-                return (g, uniq / 10.0 ** d, nb), d
+        g, uniq, nb, status = compiled.decimal_codes(key, ok, 10.0 ** d)
+        if status == 0:
+            return (g, uniq / 10.0 ** d, nb), d
+        if status == 2:          # whole at this scale but too spread out for a dense table
             break
     return (_codes(key, ok, False) if fallback else None), hint

@@ -10,8 +10,8 @@ Two loops per running variable and batch, both over the rows in order:
    small per-batch matrix, which is then added to the running totals' slots
    (:class:`scanner.engines.sums.SlotSums`) in one indexed ``+=``.
 
-Before them, :func:`finite_counts` and :func:`grid_keys` (or :func:`decimal_ints` for exact
-values) and :func:`dense_codes` turn a running variable's values into bin codes, each in one
+Before them, :func:`finite_counts` and :func:`grid_keys` with :func:`dense_codes` (or
+:func:`decimal_codes` for exact values) turn a running variable's values into bin codes, each in one
 pass over the rows where numpy would make a temporary array per operation.
 The addends are laid out once per batch by :func:`compact_rows`, shared by every running
 variable, and only those not known already: y² of a 0/1 column is y, and the count of a column
@@ -223,17 +223,52 @@ def grid_keys(x, ok, w, p, ten, pw, limit):
 
 
 @njit(nogil=True, cache=True)
-def decimal_ints(x, ok, s):
-    """(k, True) with k = x·s exactly a whole number for every row with ``ok``; (_, False) if not."""
+def decimal_codes(x, ok, s):
+    """:func:`dense_codes` of ``k = x·s`` when that is exactly a whole number for every row with
+    ``ok``, in one pass less: returns (codes, sorted distinct k, nb, status) with status 0 (done),
+    1 (some x·s is not whole: nothing else returned) or 2 (whole, but too spread for a dense
+    table).  For whole numbers (``s == 1``) the check needs no division.
+
+    The first pass has no branch the compiler cannot turn into vector instructions (counting
+    the rows that fail instead of stopping at the first), several times faster on the rows of
+    a registry; a look at the first finite values stops early on values that are not short
+    decimals at all.
+    """
     m = x.size
-    k = np.zeros(m, np.int64)
-    for i in range(m):
+    none = np.zeros(0, np.int64)
+    unit = s == 1.0
+    seen = 0
+    for i in range(m):                     # early exit on continuous values
         if ok[i]:
             v = np.rint(x[i] * s)
-            if not abs(v) < 4503599627370496.0 or v / s != x[i]:
-                return k, False
-            k[i] = np.int64(v)
-    return k, True
+            if not abs(v) < 4503599627370496.0 or (v != x[i] if unit else v / s != x[i]):
+                return none, none, 0, 1
+            seen += 1
+            if seen == 64:
+                break
+    k = np.empty(m, np.int64)
+    lo = np.int64(4611686018427387904)
+    hi = np.int64(-4611686018427387904)
+    n = 0
+    bad = 0
+    for i in range(m):
+        v = np.rint(x[i] * s)
+        fits = abs(v) < 4503599627370496.0
+        kv = np.int64(v) if fits else np.int64(0)
+        k[i] = kv
+        if ok[i]:
+            bad += (not fits) or (v != x[i] if unit else v / s != x[i])
+            lo = min(lo, kv)
+            hi = max(hi, kv)
+            n += 1
+    if bad:
+        return none, none, 0, 1
+    if n == 0:
+        return np.zeros(m, np.int64), none, 0, 0
+    if hi - lo > 4 * n + 1024:
+        return none, none, 0, 2
+    g, uniq, nb = _dense_table(k, ok, lo, hi)
+    return g, uniq, nb, 0
 
 
 @njit(nogil=True, cache=True)
@@ -244,22 +279,28 @@ def dense_codes(k, ok):
     (and nothing else) when the keys spread over more than 4·rows + 1024 values.
     """
     m = k.size
-    lo = np.int64(0)
-    hi = np.int64(-1)
+    lo = np.int64(4611686018427387904)
+    hi = np.int64(-4611686018427387904)
     n = 0
     for i in range(m):
         if ok[i]:
-            v = k[i]
-            if n == 0 or v < lo:
-                lo = v
-            if n == 0 or v > hi:
-                hi = v
+            lo = min(lo, k[i])
+            hi = max(hi, k[i])
             n += 1
     none = np.zeros(0, np.int64)
     if n == 0:
         return np.zeros(m, np.int64), none, 0, True
     if hi - lo > 4 * n + 1024:
         return none, none, 0, False
+    g, uniq, nb = _dense_table(k, ok, lo, hi)
+    return g, uniq, nb, True
+
+
+@njit(nogil=True, cache=True)
+def _dense_table(k, ok, lo, hi):
+    """Codes 0..nb-1 of the keys ``k`` (rows with ``ok``; lo..hi), nb elsewhere, and the sorted
+    distinct keys, through a table of hi − lo + 1 entries."""
+    m = k.size
     size = hi - lo + 1
     lut = np.zeros(size, np.int64)
     for i in range(m):
@@ -275,4 +316,4 @@ def dense_codes(k, ok):
     g = np.empty(m, np.int64)
     for i in range(m):
         g[i] = lut[k[i] - lo] if ok[i] else nb
-    return g, uniq[:nb], nb, True
+    return g, uniq[:nb], nb
