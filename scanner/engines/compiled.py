@@ -28,17 +28,16 @@ from numba import njit
 
 
 @njit(nogil=True, cache=True)
-def local_groups(g, nb, ext, span, lut, out):
+def local_groups(g, nb, ext, span):
     """Batch-local group of each row (-1 where ``g == nb``: no finite running value).
 
     ``g``: bin code per row (0..nb-1, nb = dropped); ``ext``: period-half code per row
-    (0..span-1), or an empty array when there are none.  ``lut`` (at least ``nb * span``
-    entries, all -1) and ``out`` (``g.size`` entries) are the caller's buffers, reused from batch
-    to batch (fresh pages cost more than the loop); ``lut`` is left all -1 again.  Returns
-    (group per row — a view of ``out`` —, the combined code ``bin * span + ext`` of each group in
-    order of first appearance).
+    (0..span-1), or an empty array when there are none.  Returns (group per row, the combined
+    code ``bin * span + ext`` of each group in order of first appearance).
     """
     m = g.size
+    lut = np.full(nb * span, -1, np.int64)
+    out = np.empty(m, np.int64)
     first = np.empty(min(m, nb * span), np.int64)
     k = 0
     keyed = ext.size > 0
@@ -55,9 +54,7 @@ def local_groups(g, nb, ext, span, lut, out):
             first[k] = c
             k += 1
         out[i] = s
-    for j in range(k):
-        lut[first[j]] = -1
-    return out[:m], first[:k]
+    return out, first[:k]
 
 
 @njit(nogil=True, cache=True)

@@ -220,7 +220,6 @@ class Accumulator:
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
         self.decimals = 0
-        self._scratch = {}
 
     @property
     def stats(self) -> BinnedStats:
@@ -334,9 +333,7 @@ class Accumulator:
             if span == 1:       # no period or half keys: the dense codes are the groups
                 group, first = g, np.arange(nb, dtype=np.int64)
             elif nb * span <= LUT_MAX:
-                group, first = compiled.local_groups(
-                    g, nb, ext, span, self.scratch("lut", nb * span, np.int64, -1),
-                    self.scratch("group", g.size, np.int64))
+                group, first = compiled.local_groups(g, nb, ext, span)
             else:       # too many combinations for a dense table: hash them
                 import pandas as pd
                 live = g < nb
@@ -349,27 +346,11 @@ class Accumulator:
             slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
                                            np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
                                            (np.arange(span) % 3 - 1).astype(np.int8), e)
-            width = 3 + addends.W.shape[1]
-            Mc = self.scratch("sums", b.size * width, np.float64)[:b.size * width]
-            Mc = Mc.reshape(b.size, width)
-            Mc.fill(0.0)
+            Mc = np.zeros((b.size, 3 + addends.W.shape[1]))
             compiled.add_compact(group, x, addends.W, Mc)
             compiled.scatter_add(self.sums.M, np.asarray(slot, np.int64), Mc, addends.src)
             self.sums.touch()
         self.add(None)
-
-    def scratch(self, name: str, size: int, dtype, fill=None) -> np.ndarray:
-        """A buffer of at least ``size`` entries kept from batch to batch (grown by half when
-        short; a new one is set to ``fill`` if given).  Large arrays allocated afresh for every
-        batch and variable cost a page fault per 4 kB — more, with period keys, than the loops
-        that fill them.  One thread at a time folds a variable, so each has its own buffers."""
-        buf = self._scratch.get(name)
-        if buf is None or buf.size < size:
-            buf = np.empty(size + size // 2, dtype)
-            if fill is not None:
-                buf.fill(fill)
-            self._scratch[name] = buf
-        return buf
 
     def finish(self) -> BinnedStats:
         """The settled bins (:func:`scanner.engines.settle.settle`)."""
