@@ -520,15 +520,14 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
              prepared=None) -> dict:
     """All estimates and diagnostics for one candidate, as a flat dict.
 
-    ``prepared``: (side data, bandwidth choice, covariate balance or None) computed for all
-    candidates of the running variable at once (:func:`scanner.together.prepare`), on these
-    ``stats``.
+    ``prepared``: (bandwidth choice, covariate balance or None) computed for all candidates
+    of the running variable at once (:func:`scanner.together.prepare`), on these ``stats``.
     """
     t, c = cand.treatment, cand.cutoff
+    d = side_data(stats, t, c, cand.right_closed)
     if prepared is not None:
-        d, sel, bal = prepared
+        sel, bal = prepared
     else:
-        d = side_data(stats, t, c, cand.right_closed)
         sel = select_bandwidth(d, spec.bandwidth, spec.kernel, spec.degree, spec.per_side,
                                MIN_DISTINCT)
         bal = None

@@ -15,7 +15,10 @@ from .guards import NUMERIC_FAILURES
 
 
 def prepare(cands, pooled: dict, spec) -> dict:
-    """{position in ``cands``: (side data, bandwidth choice, balance result or None)}.
+    """{position in ``cands``: (bandwidth choice, balance result or None)}.
+
+    The side data each choice was made on are not kept: evaluate rebuilds them (cheaply), where
+    holding them for every candidate at once would cost memory in proportion to candidates × bins.
 
     A candidate whose bandwidth choice fails numerically is left out (evaluate then meets the
     failure itself and reports it on its own row), as is the balance of a running variable whose
@@ -33,13 +36,13 @@ def prepare(cands, pooled: dict, spec) -> dict:
                                    MIN_DISTINCT)
         except NUMERIC_FAILURES:
             continue
-        out[i] = (d, sel, None)
+        out[i] = (sel, None)
         by.setdefault(c.running, []).append(i)
     if not spec.covariates:
         return out
     for running, idx in by.items():
         covs = [v for v in spec.covariates if v != running]
-        h = [(out[i][1].h_left + out[i][1].h_right) / 2 for i in idx]
+        h = [(out[i][0].h_left + out[i][0].h_right) / 2 for i in idx]
         try:
             bal = covariate_balance_at(pooled[running], covs, [cands[i].cutoff for i in idx], h,
                                        [cands[i].right_closed for i in idx], spec.kernel,
@@ -47,6 +50,6 @@ def prepare(cands, pooled: dict, spec) -> dict:
         except NUMERIC_FAILURES:
             continue
         for i, b in zip(idx, bal):
-            out[i] = out[i][:2] + (b,)
+            out[i] = (out[i][0], b)
     return out
 
