@@ -84,6 +84,8 @@ def side_fits(V, K, sides, n, S1, S2, degree: int):
     ``V`` (points × bins): bin positions centred at each point; ``K``: kernel weights (0 outside
     the window); ``sides``: (left, right) masks of the same shape; ``n`` (bins): rows per bin;
     ``S1``/``S2`` (bins × columns): Σy and Σy² per bin of columns present on the same rows.
+    ``n``, ``S1`` and ``S2`` may also hold each point's own bins (a leading points axis), when
+    ``V`` holds for each point only the bins near it.
     Returns (intercept, slope, intercept variance), each shaped (2 sides, points, columns); the
     slope is 0 for degree 0.  The same weighted least squares as
     :func:`scanner.estimate.local.fit_jumps` (moment matrix R'WR per side and point, its
@@ -92,20 +94,22 @@ def side_fits(V, K, sides, n, S1, S2, degree: int):
     point's moment matrix is singular (the caller then fits one by one).
     """
     d = int(degree)
+    nn = n if n.ndim == 2 else n[None, :]
+    T1, T2 = (S1, S2) if S1.ndim == 3 else (S1[None], S2[None])
     R = [np.ones_like(V)]
     for _ in range(2 * d):
         R.append(R[-1] * V)                     # powers V^0 … V^2d
     est, slope, var = [], [], []
     for side in sides:
         w = K * side                                      # 0 outside this side's window
-        wn = w * n[None, :]
+        wn = w * nn
         A = np.stack([np.stack([(wn * R[i + j]).sum(axis=1) for j in range(d + 1)], axis=-1)
                       for i in range(d + 1)], axis=-2)
         Ainv = np.linalg.inv(A)                           # (points, d+1, d+1)
         T = np.stack([w * R[i] for i in range(d + 1)], axis=1) @ S1    # (points, d+1, cols)
         beta = Ainv @ T                                   # (points, d+1, cols)
         fitted = sum(beta[:, i, None, :] * R[i][:, :, None] for i in range(d + 1))
-        rss = _rss(n[None, :, None], S1[None], S2[None], fitted)        # (points, bins, cols)
+        rss = _rss(nn[:, :, None], T1, T2, fitted)                     # (points, bins, cols)
         wr = (w * w)[:, :, None] * rss
         meat = np.stack([np.stack([np.einsum("pb,pbc->pc", R[i + j], wr) for j in range(d + 1)],
                                   axis=1) for i in range(d + 1)], axis=1)  # (points, i, j, cols)
@@ -141,11 +145,14 @@ def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "tr
     for names, data in side_data_many(st, columns, 0.0):     # u = x here: centred below
         idx = [list(columns).index(nm) for nm in names]
         x, n = data.u, data.n
-        V = x[None, :] - c[:, None]
-        right = np.where(rc[:, None], V >= 0, V > 0)
+        S1, S2 = data.s1.reshape(x.size, -1), data.s2.reshape(x.size, -1)
         good = np.isfinite(h) & (h > 0)
+        J, valid = _near(x, c, np.where(good, h, 0.0))     # each point's bins, padded
+        V = x[J] - c[:, None]
+        right = np.where(rc[:, None], V >= 0, V > 0)
         with np.errstate(invalid="ignore", divide="ignore"):
-            K = np.where(good[:, None], K_fn(V / np.where(good, h, 1.0)[:, None]), 0.0)
+            K = np.where(good[:, None] & valid, K_fn(V / np.where(good, h, 1.0)[:, None]), 0.0)
+        n, S1, S2 = n[J], S1[J], S2[J]
         inside = K > 0
         sides = [inside & ~right, inside & right]
         dl, dr = sides[0].sum(axis=1), sides[1].sum(axis=1)
@@ -161,7 +168,6 @@ def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "tr
                 fit[i] = True
         if not fit.any():
             continue
-        S1, S2 = data.s1.reshape(x.size, -1), data.s2.reshape(x.size, -1)
         got = _fit_points(V, K, sides, n, S1, S2, d, np.flatnonzero(fit))
         dof = 2 * (d + 1)
         for i, parts in got.items():
@@ -182,12 +188,31 @@ def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "tr
     return out
 
 
+def _near(x, c, h):
+    """Indices of the bins each point's window can reach, padded to one width: (points ×
+    width indices, mask of the real ones).  With ``x`` sorted the window |x − c| < h is one run
+    of bins, found by binary search and widened by a bin on each side against rounding (the
+    kernel weights decide); otherwise every bin."""
+    B = x.size
+    if B == 0 or not np.all(np.diff(x) > 0):
+        J = np.broadcast_to(np.arange(B), (c.size, B))
+        return J, np.ones(J.shape, bool)
+    lo = np.maximum(np.searchsorted(x, c - h, "left") - 1, 0)
+    hi = np.minimum(np.searchsorted(x, c + h, "right") + 1, B)
+    hi = np.maximum(hi, lo)
+    width = max(int((hi - lo).max()), 1)
+    J = lo[:, None] + np.arange(width)[None, :]
+    valid = J < hi[:, None]
+    return np.minimum(J, B - 1), valid
+
+
 def _fit_points(V, K, sides, n, S1, S2, d, pts) -> dict:
     """{point: (intercepts, slopes, variances) per side and column, or None where singular}:
     all points in one :func:`side_fits`, or — if some moment matrix is singular — halves of
     them until the singular ones are alone."""
     try:
-        e, sl, v = side_fits(V[pts], K[pts], [s[pts] for s in sides], n, S1, S2, d)
+        e, sl, v = side_fits(V[pts], K[pts], [s[pts] for s in sides], n[pts], S1[pts], S2[pts],
+                             d)
     except np.linalg.LinAlgError:
         if pts.size == 1:
             return {int(pts[0]): None}
