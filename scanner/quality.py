@@ -228,7 +228,9 @@ def late_unit_findings(found: list[dict], spec, stats: dict, profiled: int,
         ok = p.n > 0
         f = _unit_finding(c, r, p.x[ok], p.n[ok])
         if f:
-            f["late"] = profiled
+            # In the long layout the profile's rows are shared among the running variables
+            # (or are the stream's first rows), so no row count of this column can be named.
+            f["late"] = profiled if spec.layout is None else None
             out.append(f)
     return out
 
@@ -296,10 +298,12 @@ def findings_to_warnings(found: list[dict], cl, stats: dict, spec) -> list[dict]
             st = stats[c]
             lo, hi = f["keep"]
             a, b = f["other_range"]
-            k = _rows_outside(st, lo, hi)
+            k = _rows_outside(st, lo, hi, within=(a, b))     # the rows the message describes
+            when = (f"after its first {f['late']:,} rows" if f["late"] is not None else
+                    "after the rows profiled before the pass")
             out.append(warning("mixed_units", c,
-                f"column '{c}' seems to hold two units of {_running(spec, c).quantity} after "
-                f"its first {f['late']:,} rows: {_n(k)} lie outside the plausible range of "
+                f"column '{c}' seems to hold two units of {_running(spec, c).quantity} "
+                f"{when}: {_n(k)} lie outside the plausible range of "
                 f"{f['own']} ({_g(lo)}–{_g(hi)}) and fit only {f['other']} (median "
                 f"{_g(f['median_other'])}, plausible {_g(a)}–{_g(b)}). They were seen only after "
                 "the rows that decide how units are handled, so they were kept as they are, "
@@ -348,11 +352,14 @@ def _quantity(spec, column) -> str:
     return r.quantity if r and r.quantity else column
 
 
-def _rows_outside(st, lo: float, hi: float) -> int:
+def _rows_outside(st, lo: float, hi: float, within=None) -> int:
+    """Rows of the bins outside lo–hi (and, with ``within`` = (a, b), inside a–b)."""
     p = st.pooled()
     x = p.x
-    ok = p.n > 0
-    return int(p.n[ok & ((x < lo) | (x > hi))].sum())
+    keep = (p.n > 0) & ((x < lo) | (x > hi))
+    if within is not None:
+        keep &= (x >= within[0]) & (x <= within[1])
+    return int(p.n[keep].sum())
 
 
 # ---------------------------------------------------------------------- rules and columns

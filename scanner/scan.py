@@ -533,6 +533,7 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
         bal = None
     h = (sel.h_left + sel.h_right) / 2   # diagnostics below use one window
     # A side with no variation in the window gets a variance that cannot vanish (local.py).
+    raw = d
     d, variation = floor_variance(d, sel.h_left, sel.h_right)
     fit = fit_jump(stats, t, c, sel.h_left, spec.kernel, spec.degree, cand.right_closed, data=d,
                    bandwidth_right=sel.h_right)
@@ -569,7 +570,8 @@ def evaluate(stats: BinnedStats, cand: Candidate, spec: ScanSpec, density_cache:
     else:
         row.update(balance_p=float("nan"), balance=[], balance_worst=None, balance_method=None)
     # Binary-ness from the raw data: the floored d of a 0/1 column no longer looks 0/1.
-    row.update(design_checks(stats, cand, spec, fit, d, density_cache, binary=variation.binary))
+    row.update(design_checks(stats, cand, spec, fit, d, density_cache, binary=variation.binary,
+                             raw=raw))
     return row
 
 

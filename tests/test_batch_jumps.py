@@ -112,8 +112,19 @@ def test_placebo_points_on_a_huge_range_do_not_exhaust_memory():
     rng = np.random.default_rng(1)
     x = np.r_[rng.integers(-30, 31, 3000).astype(float), 1e300]
     y = (rng.random(x.size) < 0.3 + 0.3 * (x >= 0)).astype(float)
-    res = placebo_test(None, _bins(x, y), 0.0, 4.0, 5.0)
+    d = _bins(x, y)
+    res = placebo_test(None, d, 0.0, 4.0, 5.0)
     assert 0 < res.n_placebos <= 30
+    # and the placebos on the junk value's side are tested, as one fit per point tests them
+    # (weightless bins at 1e300 once made V² infinite and every fit there NaN)
+    assert any(c > 0 for c in res.cutoffs) and any(c < 0 for c in res.cutoffs)
+    right = d.right
+    pts = np.array([6.0, 12.0, 18.0])
+    args = (d.u[right], d.n[right], d.s1[right], d.s2[right], pts, 5.0, "triangular", 1)
+    got = jumps_at(*args)
+    ref = _one_by_one(*args, 4)
+    assert np.isfinite(got[2]).all()
+    np.testing.assert_allclose(got[2], ref[2], rtol=1e-9)
 
 
 def test_placebos_where_uptake_is_constant_do_not_count():
@@ -129,3 +140,24 @@ def test_placebos_where_uptake_is_constant_do_not_count():
     right = d.right
     z = jumps_at(d.u[right], d.n[right], d.s1[right], d.s2[right], [10.0, 20.0], 5.0)[2]
     assert np.isnan(z).all()
+
+
+def test_scan_placebos_skip_a_constant_side():
+    # In the scan the placebo check was given the variance-floored side data: a side where
+    # uptake is exactly 1 looked spread out, and its placebo points counted (z about 0) as
+    # placebos that found nothing.  Through the scan only the left side's placebos count, as
+    # on the raw bins.
+    import pandas as pd
+    import scanner
+    from scanner.estimate.local import side_data
+    rng = np.random.default_rng(6)
+    x = rng.integers(-60, 61, 12000).astype(float)
+    y = np.where(x >= 0, 1.0, (rng.random(x.size) < 0.2 + 0.002 * x)).astype(float)
+    spec = {"running": [{"column": "x"}], "treatments": {"columns": ["d"]},
+            "search": {"round_numbers": True, "discover": False}}
+    res = scanner.scan(spec, data=pd.DataFrame({"x": x, "d": y}))
+    row = next(r for r in res.rows if r["cutoff"] == 0.0)
+    raw = side_data(res.stats["x"], "d", 0.0)
+    ref = placebo_test(None, raw, 0.0, row["bandwidth"], row["z"])
+    assert ref.n_placebos > 0 and all(c < 0 for c in ref.cutoffs)
+    assert row["placebo_n"] == ref.n_placebos

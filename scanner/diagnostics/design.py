@@ -22,11 +22,14 @@ def _heaps(stats, running, cache):
     return cache[key]
 
 
-def design_checks(stats, cand, spec, fit, data, cache: dict, binary: bool | None = None) -> dict:
+def design_checks(stats, cand, spec, fit, data, cache: dict, binary: bool | None = None,
+                  raw=None) -> dict:
     """Everything after the first stage and covariate balance, as row fields.
 
     ``binary`` (the raw data's ``Variation.binary``) says whether the treatment is 0/1; ``data``
-    may be variance-floored, which hides that.
+    may be variance-floored, which hides that.  ``raw`` is the side data before the floor: the
+    placebo check needs it to see that uptake is constant around a placebo point (a floored
+    side looks spread out, and its placebos would count as finding nothing).
     """
     c, h, rc = cand.cutoff, fit.bandwidth, cand.right_closed
     row = {}
@@ -51,7 +54,8 @@ def design_checks(stats, cand, spec, fit, data, cache: dict, binary: bool | None
         row.update(donut_jump=dn.jump, donut_se=dn.se, donut_p=dn.p_value,
                    donut_changes=donut_changes(fit, dn, spec.alpha), donut_reason=dn.reason)
     # Placebo cutoffs on each side, using only that side's data.
-    pl = placebo_test(stats, data, c, h, fit.z, spec.kernel, spec.degree)
+    pl = placebo_test(stats, data if raw is None else raw, c, h, fit.z, spec.kernel,
+                      spec.degree)
     row.update(placebo_p=pl.p_value, placebo_n=pl.n_placebos, placebo_exceed=pl.exceed,
                placebo_reason=pl.reason)
     # Compliance profile from the one-sided uptake limits.

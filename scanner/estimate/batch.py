@@ -96,6 +96,9 @@ def side_fits(V, K, sides, n, S1, S2, degree: int):
     d = int(degree)
     nn = n if n.ndim == 2 else n[None, :]
     T1, T2 = (S1, S2) if S1.ndim == 3 else (S1[None], S2[None])
+    # Bins outside a point's window carry weight 0 but still enter the arrays: a junk score
+    # (1e300) there would make V² infinite and 0·inf NaN, so their positions are set to 0.
+    V = np.where(K > 0, V, 0.0)
     R = [np.ones_like(V)]
     for _ in range(2 * d):
         R.append(R[-1] * V)                     # powers V^0 … V^2d

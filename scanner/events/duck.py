@@ -105,14 +105,24 @@ class Registry:
         fix = ("Clean the column before the scan: text codes such as '<5' must become a number "
                "or an empty cell (missing); the long layout casts these columns in the database, "
                "before any spec cleaning can map codes.")
+        omop = Path(self.name) if lay.omop else None
         if step in ("evj", "hl", "hits"):
-            src = lay.events_source or "events"
-            return InputError(f"{src}: a value could not be read as a date ({detail}). Column "
-                              f"{lay.events_date or 'date'} must hold dates. {fix}")
+            if omop is not None:     # the OMOP tables and their own date columns (sql.py)
+                src = f"{omop / 'drug_exposure'} or {omop / 'procedure_occurrence'}"
+                cols = "drug_exposure_start_date and procedure_date"
+            else:
+                src, cols = lay.events_source or "events", lay.events_date or "date"
+            return InputError(f"{src}: a value could not be read as a date ({detail}). "
+                              f"Column(s) {cols} must hold dates. {fix}")
         if step == "cov":
-            src = lay.periods or "observation periods"
+            if omop is not None:
+                src = str(omop / "observation_period")
+                cols = "observation_period_start_date and observation_period_end_date"
+            else:
+                src = lay.periods or "observation periods"
+                cols = f"{lay.period_start} and {lay.period_end}"
             return InputError(f"{src}: a value could not be read as a date ({detail}). Columns "
-                              f"{lay.period_start} and {lay.period_end} must hold dates. {fix}")
+                              f"{cols} must hold dates. {fix}")
         src = lay.source or (str(Path(self.name) / "measurement") if lay.omop else "measurements")
         vals = ", ".join(dict.fromkeys(s.column for s in lay.scores))
         return InputError(
