@@ -110,6 +110,21 @@ def test_fits_at_singular_point_alone_is_not_estimable(monkeypatch):
                 _same(fit, fit_jump(st, name, cut, h, "triangular", 1, rc), (cut, name))
 
 
+def test_fits_at_in_chunks_equals_all_at_once(monkeypatch):
+    # Many candidates on many bins are fitted in chunks of points (memory stays bounded); the
+    # numbers must not depend on the chunking.
+    from scanner.estimate import batch
+    _, cols, st = _irregular(seed=19)
+    c, h, rc = (np.array([p[i] for p in POINTS]) for i in range(3))
+    whole = fits_at(st, list(cols), c, h, rc)
+    monkeypatch.setattr(batch, "CHUNK_CELLS", st.n_bins * len(cols) * 3)     # 3 points a chunk
+    parts = fits_at(st, list(cols), c, h, rc)
+    assert len(parts) == len(whole) == len(POINTS)
+    for a_row, b_row in zip(parts, whole):
+        for a, b in zip(a_row, b_row):
+            _same(a, b, "chunked")
+
+
 def test_fits_at_with_a_junk_score_far_away():
     # One row at 1e300 (a junk value) becomes the last bin; a candidate near the top of the
     # real values reaches it through the padding of the batched windows.  Its weight is 0, but

@@ -81,6 +81,42 @@ def test_placebo_test_unchanged_by_batching():
     np.testing.assert_allclose(res.z, ref, rtol=1e-9)
 
 
+def test_honest_interval_bias_is_the_worst_case_bias_of_its_weights():
+    # The interval's bias bound must be worst_case_bias (checked against a linear programme in
+    # test_honest_bias.py; Armstrong & Kolesár 2018) of the estimator's own weights, formed
+    # here independently from coef_weights, and its critical value honest_cv(B/se) (checked
+    # against scipy.stats.ncx2).
+    from scanner.estimate.honest import honest_cv, honest_interval, worst_case_bias
+    from scanner.estimate.robust import coef_weights
+    from scanner.estimate.kernels import kernel as kernel_fn
+    compared = 0
+    for name, x, y in _designs():
+        d = _bins(x, y)
+        for h in (4.0, 11.0):
+            w_all, u_all, right_all = [], [], []
+            got = honest_interval(d, h, 0.003, "triangular", 1)
+            try:
+                for is_right in (False, True):
+                    side = d.right if is_right else ~d.right
+                    u, n = d.u[side], d.n[side]
+                    w = kernel_fn("triangular")(u / h)
+                    m = w > 0
+                    L, _ = coef_weights(u[m], n[m], w[m], 1)
+                    w_all.append(n[m] * L[0])
+                    u_all.append(u[m])
+                    right_all.append(np.full(m.sum(), is_right))
+            except np.linalg.LinAlgError:        # too few values on a side: no interval
+                assert np.isnan(got.max_bias), name
+                continue
+            ref = worst_case_bias(np.concatenate(u_all), np.concatenate(w_all),
+                                  np.concatenate(right_all), 0.003)
+            np.testing.assert_allclose(got.max_bias, ref, rtol=1e-12, err_msg=name)
+            se = (got.ci_high - got.ci_low) / (2 * got.cv)
+            np.testing.assert_allclose(got.cv, honest_cv(ref / se), rtol=1e-9, err_msg=name)
+            compared += 1
+    assert compared >= 4
+
+
 def test_honest_by_M_equals_one_interval_per_M():
     # The bias-aware intervals at several curvature bounds share the estimate, SE and bias
     # integral; each must equal honest_interval at that M exactly.

@@ -123,6 +123,9 @@ def side_fits(V, K, sides, n, S1, S2, degree: int):
     return np.stack(est), np.stack(slope), np.stack(var)
 
 
+CHUNK_CELLS = 2_000_000   # entries of one points × bins × columns array (our choice: 16 MB)
+
+
 def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "triangular",
             degree: int = 1) -> list[list]:
     """:func:`scanner.estimate.local.fit_jump` of each column at each (cutoff, bandwidth),
@@ -141,6 +144,13 @@ def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "tr
     h = np.asarray(bandwidths, float)
     rc = np.broadcast_to(np.asarray(right_closed, bool), c.shape)
     P, d = c.size, int(degree)
+    # Arrays of points × bins × columns: at most CHUNK_CELLS entries at a time (a window may
+    # reach every bin), so memory stays bounded however many candidates a variable has.
+    step = max(1, CHUNK_CELLS // max(st.n_bins * max(len(columns), 1), 1))
+    if P > step:
+        return [row for a in range(0, P, step)
+                for row in fits_at(st, columns, c[a:a + step], h[a:a + step], rc[a:a + step],
+                                   kernel, degree)]
     out: list[list] = [[None] * len(columns) for _ in range(P)]
     if P == 0:
         return out

@@ -279,9 +279,10 @@ def _honest_at(parts, M: float, alpha: float) -> HonestFit:
     if parts is None or not np.isfinite(M):
         return HonestFit(nan, nan, nan, nan, float(M), nan)
     conv, se, factors, bias = parts
-    B = 0.0
-    for f in factors:   # the order of operations of worst_case_bias / taylor_bias_bound
-        B += 0.5 * float(M) * f if bias == "taylor" else float(M) * (0.0 + f)
+    # M·(left + right), as worst_case_bias forms it (tested against it); half that for Taylor.
+    B = float(M) * (factors[0] + factors[1])
+    if bias == "taylor":
+        B *= 0.5
     if se == 0 and np.isfinite(conv):
         # No noise (e.g. a deterministic uptake rule): only the bias bound is left.
         return HonestFit(float(conv - B), float(conv + B), float(B), float("inf"),
