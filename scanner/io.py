@@ -165,13 +165,15 @@ def _parquet_batches(dataset, cols, rows):
         s = pa.schema([s.field(c) for c in cols if c in s.names])
         try:
             want = s if want is None else pa.unify_schemas([want, s], promote_options="permissive")
-        except (pa.ArrowInvalid, pa.ArrowTypeError):
+        except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
             differ = [c for c in s.names if c in want.names and s.field(c).type != want.field(c).type]
+            differ = differ or list(s.names)     # not a plain type difference: name them all
             raise InputError(
                 f"{f}: column(s) {', '.join(differ)} have a different type here "
                 f"({', '.join(f'{c} {s.field(c).type}' for c in differ)}) than in the files "
-                f"before it ({', '.join(f'{c} {want.field(c).type}' for c in differ)}). Store each "
-                "column with one type in every file (numbers as float64).") from None
+                f"before it ({', '.join(f'{c} {want.field(c).type}' for c in differ if c in want.names)}; "
+                f"{_arrow_reason(exc)}). Store each column with one type in every file (numbers as "
+                "float64).") from None
     want = want if want is not None else dataset.schema
     for f in dataset.files:
         have = schemas[f]

@@ -117,14 +117,14 @@ def _confirmed_row(test, cand: Candidate, pk, spec: ScanSpec, cache: dict, split
                curvature_bound=bb.curvature)
     pb = bb.p_value(row["jump"], row["se"])
     if np.isfinite(row["jump"]) and not np.isfinite(bb.curvature):
-        # A searched location needs a bias allowance, and with fewer than three support values
-        # a side near it the curvature cannot be bounded: no test rather than one without it.
+        # A searched location needs a bias allowance, and with too few support values a side
+        # near it (or a singular quadratic fit) the curvature cannot be bounded: no test
+        # rather than one without it.
         row.update(p_value=float("nan"), ci_low=float("nan"), ci_high=float("nan"),
-                   inference_reason="fewer than three support values on a side within twice the "
-                   "bandwidth: the curvature, so the bias of a searched location, cannot be "
+                   interval="none",
+                   inference_reason="too few support values on a side to fit a quadratic near "
+                   "the location: the curvature, so the bias of a searched location, cannot be "
                    "bounded")
-    if np.isfinite(row["jump"]) and not np.isfinite(bb.curvature):
-        row["interval"] = "none"
     if np.isfinite(pb):
         from .headline import bias_bounded_interval
         ps = pb

@@ -294,14 +294,26 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
                 pairs=(("d", "y"), ("flag", "y"), ("d", "flag")))
     ref = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="bincount"))
     from scanner.engines import compact, local
+    real = local.in_blocks
     for workers, halves, budget in (("1", 100_000, local.ADDEND_BUDGET), ("2", 50, 8 * 4000)):
         # two workers with a low threshold: the addends are filled in two halves of the rows;
         # a small budget: batches are folded in blocks
         monkeypatch.setenv("CUTSCAN_WORKERS", workers)
         monkeypatch.setattr(compact, "HALVES_FROM", halves)
         monkeypatch.setattr(local, "ADDEND_BUDGET", budget)
+        monkeypatch.setattr(local, "MIN_BLOCK", 97)
+        blocks = []
+
+        def counted(batches, rows):
+            for b in real(batches, rows):
+                blocks.append(b.num_rows)
+                yield b
+        monkeypatch.setattr(local, "in_blocks", counted)
         got = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="compiled"))
         assert_same_stats(got.stats["x"], ref.stats["x"])
+        assert sum(blocks) == n
+        if workers == "2":                                     # the small budget
+            assert max(blocks) < 500                           # the batches were split
     # and against pandas on the raw rows: Σflag² over finite rows, joint count of (flag, y)
     g = df.groupby("x")
     st = got.stats["x"]
@@ -443,3 +455,27 @@ def test_compiled_grid_keys_equal_numpy_keys(p, d):
     got_ok, nan, inf = compiled.finite_counts(x)
     assert_array_equal(got_ok, ok)
     assert (nan, inf) == (1, 2)
+
+
+@pytest.mark.parametrize("hint", [0, 3])
+def test_compiled_decimal_codes_equal_numpy_codes(hint):
+    # Reference: the numpy grouping (codes._codes).  Whole numbers, half and 3-decimal
+    # lattices, 0.1 + 0.2 (not a short decimal), the 2^52 edge, -0.0, a value that is not a
+    # short decimal after the first 64 rows, integers too spread for a dense table at 3
+    # decimals (a hint of 3 must not hide their dense table at 0), NaN and inf.
+    from scanner.engines.codes import _codes, _codes_compiled
+    rng = np.random.default_rng(8)
+    cases = [rng.integers(0, 100, 500).astype(float), rng.integers(0, 60, 500) * 0.5,
+             np.round(rng.normal(5, 1, 500), 3), np.r_[np.full(100, 0.1), 0.1 + 0.2],
+             np.r_[rng.integers(0, 9, 100).astype(float), 2.0 ** 52, -0.0],
+             np.r_[rng.integers(0, 9, 100).astype(float), 1 / 3],
+             rng.integers(0, 10_000, 2_000).astype(float),
+             np.r_[rng.integers(0, 50, 300).astype(float), np.nan, np.inf, -np.inf]]
+    for x in cases:
+        ok = np.isfinite(x)
+        (g, keys, nb), _ = _codes_compiled(x, ok, False, hint)
+        rg, rkeys, rnb = _codes(x, ok, False)
+        assert nb == rnb
+        assert_array_equal(np.sort(keys), np.sort(rkeys))
+        assert_array_equal(np.asarray(keys)[g[ok]], x[ok])      # every row keyed to its value
+        assert (g[~ok] == nb).all()

@@ -717,3 +717,24 @@ def test_unreadable_value_names_the_file_of_the_step_that_read_it():
         assert "value" in me_msg and "must hold numbers" in me_msg
     finally:
         reg.close()
+
+
+def test_unreadable_omop_date_names_the_omop_table_and_column(tmp_path):
+    # End to end: a text date in the OMOP observation_period table.  The message named the
+    # layout's default columns (period_start, period_end) instead of the OMOP table's own.
+    import pandas as pd
+    import scanner
+    from scanner.errors import InputError
+    from scanner.events.demo_long import write_omop
+    write_omop(tmp_path / "omop", n_persons=400)
+    f = tmp_path / "omop" / "observation_period.parquet"
+    op = pd.read_parquet(f)
+    op["observation_period_end_date"] = op["observation_period_end_date"].astype(str)
+    op.loc[3, "observation_period_end_date"] = "soon"
+    op.to_parquet(f)
+    (tmp_path / "s.toml").write_text(OMOP_SPEC.format(mtf=1503297))
+    with pytest.raises(InputError) as err:
+        scanner.scan(tmp_path / "s.toml")
+    msg = str(err.value)
+    assert "observation_period" in msg and "observation_period_end_date" in msg
+    assert "period_start and period_end" not in msg

@@ -334,10 +334,10 @@ def test_headline_of_a_discovered_row_whose_bias_cannot_be_bounded():
     row = {"origin": "discovered", "split": True, "jump": 0.12, "se": 0.03,
            "bias_bound": float("nan"), "interval": "none", "p_value": float("nan"),
            "q_value": float("nan"), "ci_low": float("nan"), "ci_high": float("nan"),
-           "inference_reason": "fewer than three support values on a side within twice the "
-           "bandwidth: the curvature, so the bias of a searched location, cannot be bounded",
+           "inference_reason": "too few support values on a side to fit a quadratic near the "
+           "location: the curvature, so the bias of a searched location, cannot be bounded",
            "flags": []}
     h = build_headline(row, 0.05)
     assert h.interval == "none" and h.verdict == "inconclusive"
-    assert h.verdict_reason.startswith("no test: fewer than three support values")
-    assert h.method.startswith("no test: fewer than three")
+    assert h.verdict_reason.startswith("no test: too few support values")
+    assert h.method.startswith("no test: too few support values")

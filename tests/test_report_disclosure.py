@@ -185,3 +185,23 @@ def test_small_counts_in_identifier_and_possessive_wording_are_suppressed():
         "fewer than 11 rows of the first 900 share a value"
     assert scrub_text("1 person's rows", 11) == "fewer than 11 persons' rows"
     assert scrub_text("12 rows and 40 persons' visits", 11) == "12 rows and 40 persons' visits"
+
+
+def test_repeated_identifier_warning_with_few_repeats_is_suppressed():
+    # End to end: a person_id repeating on 5 of 900 rows.  The warning is written with its
+    # count next to "rows" so that output suppression reaches it; no bare 5 may remain.
+    import numpy as np
+    import pandas as pd
+    from scanner.guards import unit_repeats
+    from scanner.io import open_table
+    from scanner.report.disclosure import scrub_text
+    from scanner.spec import parse_spec
+    ids = np.r_[np.arange(895), np.arange(5)]
+    df = pd.DataFrame({"person_id": ids, "x": np.arange(900) % 40 * 1.0,
+                       "d": (np.arange(900) % 3 == 0) * 1.0})
+    spec = parse_spec({"running": [{"column": "x"}], "treatments": {"columns": ["d"]}})
+    w = unit_repeats(open_table(df), spec)
+    assert len(w) == 1 and "5 rows of the first 900" in w[0]["message"]
+    out = scrub_text(w[0]["message"], 11)
+    assert "fewer than 11 rows of the first 900" in out
+    assert " 5 " not in f" {out} " and "(5" not in out

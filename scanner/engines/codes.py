@@ -24,11 +24,13 @@ def _decimal_codes(x: np.ndarray):
     return None
 
 
-def _codes(key: np.ndarray, ok: np.ndarray, dense: bool):
-    """Group codes 0..nb-1 for rows with ``ok``, nb for the rest; and the key of each group."""
+def _codes(key: np.ndarray, ok: np.ndarray, dense: bool, decimals: bool = True):
+    """Group codes 0..nb-1 for rows with ``ok``, nb for the rest; and the key of each group.
+
+    ``decimals`` False skips the short-decimal route (the compiled one has ruled it out)."""
     import pandas as pd
     kk = key[ok]
-    if not dense:
+    if not dense and decimals:
         dec = _decimal_codes(kk)
         if dec is not None and int(dec[0].max()) - int(dec[0].min()) <= 4 * dec[0].size + 1024:
             g, uniq, nb = _codes(dec[0], np.ones(dec[0].size, bool), True)
@@ -64,9 +66,11 @@ def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0,
         g, uniq, nb, fits = compiled.dense_codes(key, ok)
         return (g, uniq, nb) if fits else _codes(key, ok, True), hint
     for d in dict.fromkeys((hint, 0, 1, 2, 3)):
+        # Every scale is tried (a hint of 3 decimals whose table is too spread out must not
+        # hide integers on a dense one); any scale that works gives the same keys.
         g, uniq, nb, status = compiled.decimal_codes(key, ok, 10.0 ** d)
         if status == 0:
             return (g, uniq / 10.0 ** d, nb), d
-        if status == 2:          # whole at this scale but too spread out for a dense table
-            break
-    return (_codes(key, ok, False) if fallback else None), hint
+    if not fallback:
+        return None, hint
+    return _codes(key, ok, False, decimals=False), hint

@@ -174,12 +174,6 @@ def _blocks(kk: np.ndarray, k: np.ndarray):
     return np.searchsorted(kk, k, "left"), np.searchsorted(kk, k, "right")
 
 
-def ranks(k: np.ndarray) -> np.ndarray:
-    """1-based rank of each inner edge within its bin (``k`` sorted by edge value)."""
-    k = np.asarray(k)
-    return np.arange(k.size, dtype=np.int64) - np.searchsorted(k, k, "left") + 1
-
-
 def sub_index(k: np.ndarray, x: np.ndarray, inn) -> np.ndarray | None:
     """Part of its bin each x falls in: the number of inner edges of bin k it lies above.
 

@@ -2,7 +2,7 @@
 
 Streaming.  The table is read batch by batch (``plan.batch_rows`` rows at most; Parquet files
 and folders, CSV and Feather through ``pyarrow.dataset``, reading only the columns the plan
-needs, two batches of read-ahead).  Each batch is folded into per-bin sums and added to the
+needs, one batch of read-ahead).  Each batch is folded into per-bin sums and added to the
 running totals, then dropped, so peak memory is a few batches plus at most ``plan.fine_keys``
 bins per running variable (times the period and half keys present) — never the table.
 
@@ -257,11 +257,12 @@ class Accumulator:
         set of exact bins.
         """
         f = self.plan.fine_keys
-        out, parts = None, 1
+        out, parts, tried = None, 1, False
         if self.state == "exact" and _kernel(self.plan.kernel) == "compiled":
             # Short decimals (most registry values) are coded in two compiled passes; only
             # other values need the look at the batch's head below.
             out, self.decimals = _codes_compiled(x, ok, False, self.decimals, fallback=False)
+            tried = True
         if out is None:
             if self.state == "exact" and x.size > 8 * f:
                 # The batch's first rows alone may hold more than fine_keys values: then it
@@ -270,7 +271,9 @@ class Accumulator:
                 if head.size > f:
                     self._leave_exact(np.union1d(head, self.sums.bin_keys))
             key, dense, parts = self.key(x, ok)
-            out = self._codes(key, ok, dense)
+            # Still exact, with short decimals ruled out already: hash the values directly.
+            out = (_codes(key, ok, False, decimals=False) if tried and self.state == "exact"
+                   else self._codes(key, ok, dense))
         if self.state == "exact" and out[2] + self.sums.n_keys > f:
             vals = np.union1d(out[1], self.sums.bin_keys)
             if vals.size > f:
@@ -463,6 +466,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
 
 
 ADDEND_BUDGET = 256 * 2 ** 20   # bytes of the per-batch addend matrix (compact.Addends)
+MIN_BLOCK = 65_536              # rows: smaller blocks cost more in per-block overhead than memory
 
 
 def block_rows(plan: BinPlan) -> int:
@@ -474,7 +478,7 @@ def block_rows(plan: BinPlan) -> int:
     """
     k, p, t = len(plan.columns), len(plan.pairs), len(plan.treatments)
     width = max(3 * k - t + 6 * p, 1)
-    return max(65_536, ADDEND_BUDGET // (8 * width))
+    return max(MIN_BLOCK, ADDEND_BUDGET // (8 * width))
 
 
 def in_blocks(batches, rows: int | None):
