@@ -293,13 +293,12 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
     plan = dict(running=("x",), columns=("d", "flag", "y"), treatments=("d",),
                 pairs=(("d", "y"), ("flag", "y"), ("d", "flag")))
     ref = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="bincount"))
-    from scanner.engines import compact, local
+    from scanner.engines import local
     real = local.in_blocks
-    for workers, halves, budget in (("1", 100_000, local.ADDEND_BUDGET), ("2", 50, 8 * 4000)):
-        # two workers with a low threshold: the addends are filled in two halves of the rows;
-        # a small budget: batches are folded in blocks
+    for workers, budget in (("1", local.ADDEND_BUDGET), ("2", 28 * 150)):
+        # two workers: the two halves of the rows are folded in two threads; a small budget
+        # (28 bytes per row: 3 columns and 1 running variable): batches are folded in blocks
         monkeypatch.setenv("CUTSCAN_WORKERS", workers)
-        monkeypatch.setattr(compact, "HALVES_FROM", halves)
         monkeypatch.setattr(local, "ADDEND_BUDGET", budget)
         monkeypatch.setattr(local, "MIN_BLOCK", 97)
         blocks = []

@@ -9,57 +9,44 @@ without adding:
 * the count of finite values of a column with no missing value in the batch is the row count;
 * a pair of such columns has its joint count, sums and squares in the columns' own sums.
 
-:class:`Addends` keeps only the rest in one row-major matrix ``W`` (filled by
-:func:`scanner.engines.compiled.compact_rows`) and a map ``src`` from every sum of the totals'
-layout (:mod:`scanner.engines.sums`) to the column of the per-group matrix
-``[n, Σx, Σx², ΣW]`` that holds it.  The identities are exact (y² = y for y in {0, 1}; a count
+:class:`Layout` lists only the rest — the addends :func:`scanner.engines.compiled.fold_rows` forms
+block by block — and a map ``src`` from every sum of the totals' layout
+(:mod:`scanner.engines.sums`) to the column of the per-group matrix ``[n, Σx, Σx², ΣW]`` that
+holds it.  The identities are exact (y² = y for y in {0, 1}; a count
 of finite values equals the rows when none is missing), so the totals are the same sums.
 """
 from __future__ import annotations
 
 import numpy as np
 
-HALVES_FROM = 100_000      # rows from which the addends are filled in two threads
 
-
-class Addends:
-    """One batch's addends: ``W`` (rows × w) and the layout map ``src``.
+class Layout:
+    """Which addends a batch needs, and where each sum of the totals' layout is found.
 
     Parameters
     ----------
     Y : (k, rows) float64 tracked columns of the batch.
     pa, pb : column positions of the pairs that need joint sums.
     known : per column, True where it is known to be 0/1 already (treatments, checked on read).
-    buffer : a float64 array to reuse for ``W`` when it is large enough (saves page faults).
-    pool : a thread pool to fill ``W`` in two halves (the compiled loop releases the GIL).
+
+    Attributes ``sq``, ``cnt``, ``joint`` (the arguments of
+    :func:`scanner.engines.compiled.fold_rows`), ``w`` (addends per row) and ``src``.
     """
 
-    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, known, buffer=None,
-                 pool=None):
+    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, known):
         from . import compiled
         k, m = Y.shape
         # A column's sum is finite only when every value is (a huge sum that overflows merely
         # counts the column as incomplete, which is never wrong).
         full_col = np.isfinite(Y.sum(axis=1))
         binary = compiled.binary_columns(Y, np.asarray(known, np.bool_))
-        sq = np.flatnonzero(~binary).astype(np.int64)
-        cnt = np.flatnonzero(~full_col).astype(np.int64)
+        self.sq = np.flatnonzero(~binary).astype(np.int64)
+        self.cnt = np.flatnonzero(~full_col).astype(np.int64)
         # pairs with a missing value somewhere need their own joint count, sums and squares
-        joint = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)
-        w = k + sq.size + cnt.size + pa.size + 5 * int(joint.sum())
-        if buffer is not None and buffer.size >= m * w:
-            self.W = buffer[:m * w].reshape(m, w)
-        else:
-            self.W = np.empty((m, w))
-        if pool is not None and m > HALVES_FROM:     # two halves of the rows, one per thread
-            h = m // 2
-            list(pool.map(lambda s: compiled.compact_rows(Y[:, s], sq, cnt, pa, pb, joint,
-                                                          self.W[s]),
-                          (slice(0, h), slice(h, m))))
-        else:
-            compiled.compact_rows(Y, sq, cnt, pa, pb, joint, self.W)
-        self.buffer = buffer if buffer is not None and buffer.size >= m * w else self.W.ravel()
-        self.src = _layout(k, sq, cnt, pa, pb, joint)
+        self.joint = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)
+        self.pa, self.pb = pa, pb
+        self.w = k + self.sq.size + self.cnt.size + pa.size + 5 * int(self.joint.sum())
+        self.src = _layout(k, self.sq, self.cnt, pa, pb, self.joint)
 
 
 def _layout(k, sq, cnt, pa, pb, joint) -> np.ndarray:

@@ -75,68 +75,93 @@ def binary_columns(Y, known):
 
 
 @njit(nogil=True, cache=True)
-def compact_rows(Y, sq, cnt, pa, pb, joint, W):
-    """Fill ``W`` (rows × w, row-major) with the addends of a batch that are not known already.
+def _addends(Y, s, e, sq, cnt, pa, pb, joint, W):
+    """Fill rows 0..e-s of ``W`` with the addends of batch rows s..e-1 that are not known
+    already (see :mod:`scanner.engines.compact`).
 
     Columns, in order: y of every tracked column (0 where not finite); y² of the columns in
     ``sq``; the finite indicator of the columns in ``cnt``; per pair q the product ab over rows
-    where both are finite, and when ``joint[q]`` also that row's n, a, b, a², b².  Built once per
-    batch and shared by every running variable (see :mod:`scanner.engines.compact`).
+    where both are finite, and when ``joint[q]`` also that row's n, a, b, a², b².
     """
-    k, m = Y.shape
-    for i in range(m):
+    k = Y.shape[0]
+    for i in range(s, e):
+        r = i - s
         for j in range(k):
             v = Y[j, i]
-            W[i, j] = v if v - v == 0.0 else 0.0
+            W[r, j] = v if v - v == 0.0 else 0.0
         c = k
         for t in range(sq.size):
-            v = W[i, sq[t]]
-            W[i, c] = v * v
+            v = W[r, sq[t]]
+            W[r, c] = v * v
             c += 1
         for t in range(cnt.size):
             v = Y[cnt[t], i]
-            W[i, c] = 1.0 if v - v == 0.0 else 0.0
+            W[r, c] = 1.0 if v - v == 0.0 else 0.0
             c += 1
         for q in range(pa.size):
             a = Y[pa[q], i]
             b = Y[pb[q], i]
             both = a - a == 0.0 and b - b == 0.0
-            W[i, c] = a * b if both else 0.0
+            W[r, c] = a * b if both else 0.0
             c += 1
             if joint[q]:
                 if both:
-                    W[i, c] = 1.0
-                    W[i, c + 1] = a
-                    W[i, c + 2] = b
-                    W[i, c + 3] = a * a
-                    W[i, c + 4] = b * b
+                    W[r, c] = 1.0
+                    W[r, c + 1] = a
+                    W[r, c + 2] = b
+                    W[r, c + 3] = a * a
+                    W[r, c + 4] = b * b
                 else:
                     for u in range(5):
-                        W[i, c + u] = 0.0
+                        W[r, c + u] = 0.0
                 c += 5
 
 
-@njit(nogil=True, cache=True)
-def add_compact(group, x, W, Mc):
-    """Add each row's n, x, x² and its row of ``W`` to row ``group[i]`` of ``Mc`` (a group
-    below 0 or past the last row of ``Mc`` — a row with no finite running value — is skipped).
+BLOCK = 4096    # rows whose addends are formed at a time: 1024 × w floats stay in the cache
 
-    ``Mc`` is the batch's per-group matrix (groups are few and dense, so it stays in cache);
-    the caller adds it to the running totals' slots in one indexed ``+=``.
+
+@njit(nogil=True, cache=True)
+def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M):
+    """Add the addends of batch rows start..stop-1 to every running variable's groups.
+
+    ``groups[v, i]`` is row i's group of running variable v (skipped unless 0 <= it <
+    ``sizes[v]``: no finite running value); its sums go to row ``off[v] + group`` of ``M``
+    (all variables' groups × w addends).  The addends of a block of rows are formed once, in
+    the cache, and added for every running variable before the next block: formed for the
+    whole batch they would be read from memory once per running variable.
     """
-    m = group.size
-    w = W.shape[1]
-    G = Mc.shape[0]
-    for i in range(m):
+    V = groups.shape[0]
+    w = M.shape[1]
+    W = np.empty((BLOCK, w))
+    for s in range(start, stop, BLOCK):
+        e = min(stop, s + BLOCK)
+        _addends(Y, s, e, sq, cnt, pa, pb, joint, W)
+        for v in range(V):
+            o = off[v]
+            G = sizes[v]
+            for i in range(s, e):
+                gi = groups[v, i]
+                if gi < 0 or gi >= G:
+                    continue
+                row = o + gi
+                r = i - s
+                for j in range(w):
+                    M[row, j] += W[r, j]
+
+
+@njit(nogil=True, cache=True)
+def add_n_x(group, x, Mx):
+    """Add each row's 1, x and x² to row ``group[i]`` of ``Mx`` (skipped unless 0 <= group <
+    the rows of ``Mx``: no finite running value)."""
+    G = Mx.shape[0]
+    for i in range(group.size):
         gi = group[i]
         if gi < 0 or gi >= G:
             continue
         xi = x[i]
-        Mc[gi, 0] += 1.0
-        Mc[gi, 1] += xi
-        Mc[gi, 2] += xi * xi
-        for j in range(w):
-            Mc[gi, 3 + j] += W[i, j]
+        Mx[gi, 0] += 1.0
+        Mx[gi, 1] += xi
+        Mx[gi, 2] += xi * xi
 
 
 @njit(nogil=True, cache=True)
@@ -243,28 +268,32 @@ def decimal_codes(x, ok, s):
             seen += 1
             if seen == 64:
                 break
+    # Bounds are kept as floats and failures counted with & and |, so the loop has no branch:
+    # the compiler turns it into vector instructions (a version with integer bounds and
+    # short-circuit tests ran four times slower).
     k = np.empty(m, np.int64)
-    lo = np.int64(4611686018427387904)
-    hi = np.int64(-4611686018427387904)
+    lo = np.inf
+    hi = -np.inf
     n = 0
     bad = 0
     for i in range(m):
-        v = np.rint(x[i] * s)
+        xv = x[i]
+        v = np.rint(xv * s)
+        use = ok[i]
         fits = abs(v) < 4503599627370496.0
-        kv = np.int64(v) if fits else np.int64(0)
-        k[i] = kv
-        if ok[i]:
-            bad += (not fits) or (v != x[i] if unit else v / s != x[i])
-            lo = min(lo, kv)
-            hi = max(hi, kv)
-            n += 1
+        bad += use & ((not fits) | (v / s != xv))     # v / 1 is v: one form for every scale
+        n += use
+        kv = v if (use & fits) else 0.0
+        lo = min(lo, kv if use else np.inf)
+        hi = max(hi, kv if use else -np.inf)
+        k[i] = np.int64(kv)
     if bad:
         return none, none, 0, 1
     if n == 0:
         return np.zeros(m, np.int64), none, 0, 0
     if hi - lo > 4 * n + 1024:
         return none, none, 0, 2
-    g, uniq, nb = _dense_table(k, ok, lo, hi)
+    g, uniq, nb = _dense_table(k, ok, np.int64(lo), np.int64(hi))
     return g, uniq, nb, 0
 
 

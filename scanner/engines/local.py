@@ -39,7 +39,7 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
-from .compact import Addends
+from .compact import Layout
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
 
@@ -320,39 +320,49 @@ class Accumulator:
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
                                  *self.grid, self.forced)
 
-    def add_rows(self, codes, x: np.ndarray, extra, addends) -> None:
-        """Add a batch's rows to the totals (compiled kernel, :mod:`.compiled`).
+    def groups(self, codes, x: np.ndarray, extra):
+        """A batch's groups for the compiled kernel (:mod:`.compiled`), or None with no finite
+        running value: (group per row — skipped unless 0 <= group < G —, G, the groups' n,
+        Σx and Σx² (G × 3), the slot of each group in the running totals).
 
-        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys; ``addends`` the
-        batch's :class:`scanner.engines.compact.Addends`.
+        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys.  The other sums
+        come from :func:`scanner.engines.compiled.fold_rows`, for every running variable at
+        once; :meth:`add_groups` adds them.
         """
         from . import compiled
         g, ukey, nb = codes
-        if nb:
-            if extra is None:
-                ext, span, p0 = _NO_EXT, 1, 0
-            else:
-                ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
-            if span == 1:       # no period or half keys: the dense codes are the groups
-                group, first = g, np.arange(nb, dtype=np.int64)
-            elif nb * span <= LUT_MAX:
-                group, first = compiled.local_groups(g, nb, ext, span)
-            else:       # too many combinations for a dense table: hash them
-                import pandas as pd
-                live = g < nb
-                comp = g[live] * span + (ext[live] if ext.size else 0)
-                codes_, first = pd.factorize(comp)
-                group = np.full(g.size, -1, np.int64)
-                group[live] = codes_
-            b, e = np.divmod(np.asarray(first, np.int64), span)
-            r = np.arange(span) // 3
-            slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
-                                           np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
-                                           (np.arange(span) % 3 - 1).astype(np.int8), e)
-            Mc = np.zeros((b.size, 3 + addends.W.shape[1]))
-            compiled.add_compact(group, x, addends.W, Mc)
-            compiled.scatter_add(self.sums.M, np.asarray(slot, np.int64), Mc, addends.src)
-            self.sums.touch()
+        if not nb:
+            return None
+        if extra is None:
+            ext, span, p0 = _NO_EXT, 1, 0
+        else:
+            ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
+        if span == 1:       # no period or half keys: the dense codes are the groups
+            group, first = g, np.arange(nb, dtype=np.int64)
+        elif nb * span <= LUT_MAX:
+            group, first = compiled.local_groups(g, nb, ext, span)
+        else:       # too many combinations for a dense table: hash them
+            import pandas as pd
+            live = g < nb
+            comp = g[live] * span + (ext[live] if ext.size else 0)
+            codes_, first = pd.factorize(comp)
+            group = np.full(g.size, -1, np.int64)
+            group[live] = codes_
+        b, e = np.divmod(np.asarray(first, np.int64), span)
+        r = np.arange(span) // 3
+        slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
+                                       np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
+                                       (np.arange(span) % 3 - 1).astype(np.int8), e)
+        Mx = np.zeros((b.size, 3))
+        compiled.add_n_x(group, x, Mx)
+        return group, b.size, Mx, np.asarray(slot, np.int64)
+
+    def add_groups(self, slot: np.ndarray, Mc: np.ndarray, src: np.ndarray) -> None:
+        """Add a batch's per-group sums ``Mc`` ([n, Σx, Σx², addends]; ``src`` maps the totals'
+        layout onto its columns) to the totals' ``slot`` rows."""
+        from . import compiled
+        compiled.scatter_add(self.sums.M, slot, Mc, src)
+        self.sums.touch()
         self.add(None)
 
     def finish(self) -> BinnedStats:
@@ -380,7 +390,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         from concurrent.futures import ThreadPoolExecutor
         pool = ThreadPoolExecutor(_threads())
     rows = 0
-    buffer = ybuf = None
+    ybuf = gbuf = None
     try:
         blocks = block_rows(plan) if kernel == "compiled" else None
         for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
@@ -429,14 +439,15 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
-                addends = Addends(Y, pa, pb, [c in plan.treatments for c in plan.columns],
-                                   buffer, pool)
-                buffer = addends.buffer
-                del Y
+                layout = Layout(Y, pa, pb, [c in plan.treatments for c in plan.columns])
+                if gbuf is None or gbuf.shape[1] < m:
+                    gbuf = np.empty((len(plan.running), m), np.int32)
+                groups = gbuf[:, :m]
             else:
                 packed = Columns(cols, plan.columns, plan.pairs, plan.treatments)
 
-            def one(r):
+            def one(v):
+                r = plan.running[v]
                 extra = by_detail[plan.period_of(r)]
                 x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
                 if kernel == "compiled":
@@ -446,16 +457,23 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                     inf = int(m - ok.sum() - nan)
                 a = acc[r]
                 codes = a.codes(x, ok)
+                part = None
                 if kernel == "compiled":
-                    a.add_rows(codes, x, extra, addends)
+                    part = a.groups(codes, x, extra)
+                    groups[v] = part[0] if part else -1
                 else:
                     a.add(fold_raw(codes, x, ok, extra, packed, a.template, kernel)
                           if codes[2] else None)
-                return nan, inf
-            got = list(pool.map(one, plan.running)) if pool else [one(r) for r in plan.running]
-            for r, (nan, inf) in zip(plan.running, got):
+                return nan, inf, part
+            V = range(len(plan.running))
+            got = list(pool.map(one, V)) if pool else [one(v) for v in V]
+            for r, (nan, inf, _) in zip(plan.running, got):
                 missing[r] += nan
                 nonfinite[r] += inf
+            if kernel == "compiled":
+                _fold_together(acc, plan.running, [p for _, _, p in got], groups, Y, layout,
+                               pool)
+                del Y
             rows += m
             if progress:
                 progress(m)
@@ -465,20 +483,46 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
 
 
-ADDEND_BUDGET = 256 * 2 ** 20   # bytes of the per-batch addend matrix (compact.Addends)
+def _fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
+                   layout: Layout, pool) -> None:
+    """Add a batch's addends to every running variable's totals in one compiled pass per half
+    of the rows (:func:`scanner.engines.compiled.fold_rows`).
+
+    The halves are fixed (first and second), folded in the pool's two threads when there is
+    one, and added in that order, so the totals do not depend on the number of threads.
+    """
+    from . import compiled
+    sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
+    off = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    m = groups.shape[1]
+    L = layout
+
+    def half(span):
+        M = np.zeros((int(sizes.sum()), L.w))
+        compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint, span[0],
+                           span[1], M)
+        return M
+    spans = ((0, m // 2), (m // 2, m))
+    first, second = pool.map(half, spans) if pool else map(half, spans)
+    first += second
+    for r, p, o in zip(running, parts, off):
+        if p is None:
+            acc[r].add(None)
+            continue
+        _, G, Mx, slot = p
+        acc[r].add_groups(slot, np.concatenate([Mx, first[o:o + G]], axis=1), L.src)
+
+
+ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
 MIN_BLOCK = 65_536              # rows: smaller blocks cost more in per-block overhead than memory
 
 
 def block_rows(plan: BinPlan) -> int:
-    """Rows folded at a time, so the addend matrix stays within ``ADDEND_BUDGET``.
-
-    Its widest layout — every tracked column incomplete and not 0/1, every pair incomplete —
-    has 3k + 6p columns (treatments are 0/1).  Folding a batch in blocks gives the same bins
-    (no result depends on how rows are batched).
-    """
-    k, p, t = len(plan.columns), len(plan.pairs), len(plan.treatments)
-    width = max(3 * k - t + 6 * p, 1)
-    return max(MIN_BLOCK, ADDEND_BUDGET // (8 * width))
+    """Rows folded at a time, so a block's tracked values (8 bytes per column) and group codes
+    (4 bytes per running variable) stay within ``ADDEND_BUDGET``.  Folding a batch in blocks
+    gives the same bins (no result depends on how rows are batched)."""
+    width = 8 * len(plan.columns) + 4 * len(plan.running)
+    return max(MIN_BLOCK, ADDEND_BUDGET // max(width, 1))
 
 
 def in_blocks(batches, rows: int | None):
