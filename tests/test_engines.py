@@ -333,6 +333,36 @@ def test_compiled_kernel_without_dense_table(monkeypatch):
         assert_same_stats(got.stats[r], ref.stats[r])
 
 
+@pytest.mark.parametrize("cells", [8, 5000])
+def test_slot_table_left_for_hashed_codes(monkeypatch, cells):
+    # The totals find each (bin, period, half) slot in a dense table while it is small, and by
+    # hashing once it would grow past TABLE_CELLS: from the first batch (8 cells) or part way
+    # through the pass (5,000 cells, reached after some batches) — the same bins either way.
+    from scanner.engines import sums
+    df = irregular_table(1500, seed=4)
+    plan = BinPlan(**IRR, date="visit", split_seed=3, batch_rows=400)
+    ref = bin_table(open_table(df), BinPlan(**{**plan.__dict__, "kernel": "bincount"}))
+    left = []
+    real = sums.SlotSums._table
+
+    def watched(self):
+        table = self._codes is None
+        t = real(self)
+        if table and self._codes is not None:         # the moment it leaves the table
+            left.append(self.size)
+        return t
+    monkeypatch.setattr(sums, "TABLE_CELLS", cells)
+    monkeypatch.setattr(sums.SlotSums, "_table", watched)
+    got = bin_table(open_table(df), plan)
+    for r in IRR["running"]:
+        assert_same_stats(got.stats[r], ref.stats[r])
+    assert left                                         # the hashed look-up was used
+    if cells == 5000:
+        assert min(left) > 0                            # ... after slots were in the table
+    else:
+        assert max(left) == 0                           # ... from the first batch
+
+
 def test_compiled_keyed_bins_equal_pandas_groupby():
     # Reference: pandas groupby sums over (value, calendar quarter) on the raw rows.
     df = irregular_table(3000, seed=6)

@@ -117,7 +117,7 @@ def _addends(Y, s, e, sq, cnt, pa, pb, joint, W):
                 c += 5
 
 
-BLOCK = 4096    # rows whose addends are formed at a time: 1024 × w floats stay in the cache
+BLOCK = 4096    # rows whose addends are formed at a time: 4096 × w floats stay in the cache
 
 
 @njit(nogil=True, cache=True)
@@ -125,13 +125,14 @@ def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M):
     """Add the addends of batch rows start..stop-1 to every running variable's groups.
 
     ``groups[v, i]`` is row i's group of running variable v (skipped unless 0 <= it <
-    ``sizes[v]``: no finite running value); its sums go to row ``off[v] + group`` of ``M``
-    (all variables' groups × w addends).  The addends of a block of rows are formed once, in
+    ``sizes[v]``: no finite running value); its addends are added to columns 3.. of row
+    ``off[v] + group`` of ``M`` (all variables' groups × [n, Σx, Σx², addends], the first three
+    filled by :func:`add_n_x`).  The addends of a block of rows are formed once, in
     the cache, and added for every running variable before the next block: formed for the
     whole batch they would be read from memory once per running variable.
     """
     V = groups.shape[0]
-    w = M.shape[1]
+    w = M.shape[1] - 3
     W = np.empty((BLOCK, w))
     for s in range(start, stop, BLOCK):
         e = min(stop, s + BLOCK)
@@ -146,7 +147,7 @@ def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M):
                 row = o + gi
                 r = i - s
                 for j in range(w):
-                    M[row, j] += W[r, j]
+                    M[row, 3 + j] += W[r, j]
 
 
 @njit(nogil=True, cache=True)
@@ -177,24 +178,35 @@ def scatter_add(M, slot, Mc, src):
 
 
 @njit(nogil=True, cache=True)
-def order_by(code, span):
-    """Stable permutation putting rows in order of ``code`` (0..span-1): a counting sort.
+def sorted_positions(code, span):
+    """Each row's position once the rows are put in order of ``code`` (0..span-1), stably: a
+    counting sort's destinations.
 
     Folding a batch in this order keeps the slots a running variable touches at one time to
     those of one period-half code, which fit in the processor's cache; rows scattered over all
-    (bin, period, half) slots spend most of their time waiting for memory.
+    (bin, period, half) slots spend most of their time waiting for memory.  Moving rows to
+    their destinations (:func:`scatter_rows`) writes ``span`` sequential streams, where taking
+    them in sorted order would read every row from a random place.
     """
     count = np.zeros(span + 1, np.int64)
     for i in range(code.size):
         count[code[i] + 1] += 1
     for c in range(span):
         count[c + 1] += count[c]
-    out = np.empty(code.size, np.int64)
+    dest = np.empty(code.size, np.int64)
     for i in range(code.size):
         c = code[i]
-        out[count[c]] = i
+        dest[i] = count[c]
         count[c] += 1
-    return out
+    return dest
+
+
+@njit(nogil=True, cache=True)
+def scatter_rows(src, dest, out):
+    """``out[j, dest[i]] = src[j, i]`` for every row j of the 2-D arrays."""
+    for j in range(src.shape[0]):
+        for i in range(src.shape[1]):
+            out[j, dest[i]] = src[j, i]
 
 
 @njit(nogil=True, cache=True)

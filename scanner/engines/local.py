@@ -391,6 +391,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         pool = ThreadPoolExecutor(_threads())
     rows = 0
     ybuf = gbuf = None
+    kept = [None, None]       # the fold's two matrices, reused (_fold_together)
     try:
         blocks = block_rows(plan) if kernel == "compiled" else None
         for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
@@ -408,13 +409,14 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             details = [plan.period_of(r) for r in plan.running]
             by_detail = {d: _extra(d, quarter, half, m) for d in set(details)}
             common = max(set(details), key=details.count)
-            if kernel == "compiled" and by_detail[common] is not None and _plain(batch):
-                # Rows in order of their (period, half) code: see compiled.order_by.  (Text
-                # columns are parsed in file order, so their messages quote the first values.)
+            dest = None
+            if kernel == "compiled" and by_detail[common] is not None:
+                # Rows are folded in order of their (period, half) code: see
+                # compiled.sorted_positions.  Each column is moved there as it is converted,
+                # so values are read and messages quote them in file order.
                 from . import compiled
-                perm = compiled.order_by(*by_detail[common][:2])
-                batch = _taken(batch, perm, pool)
-                by_detail = {d: None if e is None else (e[0][perm],) + e[1:]
+                dest = compiled.sorted_positions(*by_detail[common][:2])
+                by_detail = {d: None if e is None else (_moved(e[0], dest),) + e[1:]
                              for d, e in by_detail.items()}
             k = len(plan.columns)
             Y = None
@@ -428,7 +430,10 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 v = numeric(batch, plan.columns[j], table.name, _role(plan.columns[j], plan))
                 if Y is None:
                     return v
-                Y[j] = v
+                if dest is None:
+                    Y[j] = v
+                else:
+                    compiled.scatter_rows(v.reshape(1, -1), dest, Y[j:j + 1])
                 return Y[j]          # the copy, so the converted column is not held twice
             cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
                             else map(convert, range(k))))
@@ -450,6 +455,8 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 r = plan.running[v]
                 extra = by_detail[plan.period_of(r)]
                 x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
+                if dest is not None and r not in cols:
+                    x = _moved(x, dest)
                 if kernel == "compiled":
                     ok, nan, inf = compiled.finite_counts(x)
                 else:
@@ -472,7 +479,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 nonfinite[r] += inf
             if kernel == "compiled":
                 _fold_together(acc, plan.running, [p for _, _, p in got], groups, Y, layout,
-                               pool)
+                               pool, kept)
                 del Y
             rows += m
             if progress:
@@ -484,33 +491,42 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
 
 
 def _fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
-                   layout: Layout, pool) -> None:
+                   layout: Layout, pool, kept: list) -> None:
     """Add a batch's addends to every running variable's totals in one compiled pass per half
     of the rows (:func:`scanner.engines.compiled.fold_rows`).
 
     The halves are fixed (first and second), folded in the pool's two threads when there is
     one, and added in that order, so the totals do not depend on the number of threads.
+    ``kept`` holds the two halves' matrices between batches (zeroing a kept matrix is cheaper
+    than the page faults of a new one: with a continuous running variable and period keys
+    they hold about 10^5 groups each).
     """
     from . import compiled
     sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
     off = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
     m = groups.shape[1]
     L = layout
+    shape = (int(sizes.sum()), 3 + L.w)
+    for h in range(2):
+        if kept[h] is None or kept[h].size < shape[0] * shape[1]:
+            kept[h] = np.empty(shape[0] * shape[1])
 
-    def half(span):
-        M = np.zeros((int(sizes.sum()), L.w))
-        compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint, span[0],
-                           span[1], M)
+    def half(h):
+        M = kept[h][:shape[0] * shape[1]].reshape(shape)
+        M.fill(0.0)
+        compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
+                           h * (m // 2), m if h else m // 2, M)
         return M
-    spans = ((0, m // 2), (m // 2, m))
-    first, second = pool.map(half, spans) if pool else map(half, spans)
+    first, second = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
     first += second
     for r, p, o in zip(running, parts, off):
         if p is None:
             acc[r].add(None)
             continue
         _, G, Mx, slot = p
-        acc[r].add_groups(slot, np.concatenate([Mx, first[o:o + G]], axis=1), L.src)
+        Mc = first[o:o + G]
+        Mc[:, :3] = Mx
+        acc[r].add_groups(slot, Mc, L.src)
 
 
 ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
@@ -537,22 +553,12 @@ def in_blocks(batches, rows: int | None):
             yield b.slice(at, size)
 
 
-def _taken(batch, perm: np.ndarray, pool):
-    """``batch.take(perm)``, its columns taken in the pool's threads (pyarrow releases the GIL)."""
-    if pool is None:
-        return batch.take(perm)
-    import pyarrow as pa
-    idx = pa.array(perm)
-    cols = list(pool.map(lambda c: c.take(idx), batch.columns))
-    return pa.RecordBatch.from_arrays(cols, schema=batch.schema)
-
-
-def _plain(batch) -> bool:
-    """True when every column of ``batch`` is numeric, boolean or a date (no text to parse)."""
-    import pyarrow as pa
-    return all(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
-               or pa.types.is_date(t) or pa.types.is_timestamp(t) or pa.types.is_null(t)
-               for t in batch.schema.types)
+def _moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
+    """A copy of ``values`` with each row at its position ``dest``."""
+    from . import compiled
+    out = np.empty_like(values)
+    compiled.scatter_rows(values.reshape(1, -1), dest, out.reshape(1, -1))
+    return out
 
 
 def _threads() -> int:

@@ -19,6 +19,7 @@ import numpy as np
 from ..bins import BinnedStats, _PAIR_FIELDS
 
 _STRIDE = 3 * 2 ** 16          # period slots per bin: up to 65,536 periods × 3 half codes
+TABLE_CELLS = 2 ** 22          # (bin, period-half) table of one running variable: at most 16 MB
 
 
 def _matrix(st: BinnedStats) -> np.ndarray:
@@ -47,7 +48,8 @@ class SlotSums:
         self.bin_keys = np.zeros(0)
         self._bins = pd.Index(self.bin_keys)
         self._periods: dict[int, int] = {}
-        self._codes = pd.Index(self.code)
+        self._codes = None           # hashed codes, once the dense table would be too large
+        self._lut = None
         self._cache = None
 
     @classmethod
@@ -110,9 +112,13 @@ class SlotSums:
         if b.size == 0:
             return np.zeros(0, np.int64)
         self._cache = None
-        code = (self._bin_index(ukey)[b] * _STRIDE
-                + (self._period_index(eper) * 3 + (ehalf.astype(np.int64) + 1))[e])
-        slot = self._codes.get_indexer(code)
+        row = self._bin_index(ukey)[b]
+        col = (self._period_index(eper) * 3 + (ehalf.astype(np.int64) + 1))[e]
+        table = self._table()
+        if table is not None:
+            slot = table[row, col].astype(np.int64)
+        else:
+            slot = self._codes.get_indexer(row * _STRIDE + col)
         new = slot < 0
         if new.any():
             m = int(new.sum())
@@ -121,10 +127,36 @@ class SlotSums:
             slot[new] = at
             self.key[at] = ukey[b[new]]
             self.period[at], self.half[at] = eper[e[new]], ehalf[e[new]]
-            self.code[at] = code[new]
+            self.code[at] = row[new] * _STRIDE + col[new]
             self.size += m
-            self._codes = self._pd.Index(self.code[:self.size])
+            if table is not None:
+                table[row[new], col[new]] = at
+            else:
+                self._codes = self._pd.Index(self.code[:self.size])
         return slot
+
+    def _table(self):
+        """The dense (bin, period-half) → slot table, grown to the bins and periods seen so
+        far; None once it would exceed ``TABLE_CELLS`` (look-ups then hash the combined codes).
+
+        A batch of a continuous running variable with period keys has about 10^5 groups:
+        hashing them, and re-hashing every slot whenever new ones appear, cost several
+        milliseconds per batch."""
+        if self._codes is not None:             # hashing already (the table never comes back)
+            return None
+        rows, cols = self.bin_keys.size, 3 * len(self._periods)
+        if rows * cols > TABLE_CELLS:
+            self._lut = None
+            self._codes = self._pd.Index(self.code[:self.size])
+            return None
+        lut = self._lut
+        if lut is None or lut.shape[0] < rows or lut.shape[1] < cols:
+            grown = 2 * rows if 2 * rows * cols <= TABLE_CELLS else rows   # room for new bins
+            lut = np.full((grown, cols), -1, np.int32)
+            n = self.size
+            lut[self.code[:n] // _STRIDE, self.code[:n] % _STRIDE] = np.arange(n)
+            self._lut = lut
+        return lut
 
     def touch(self) -> None:
         """Forget the cached :meth:`stats` (the slots were added to in place)."""
