@@ -31,6 +31,7 @@ The cost of the pass against plain reading is in ``benchmarks/results/scale.md``
 """
 from __future__ import annotations
 
+import threading
 
 import numpy as np
 
@@ -416,7 +417,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 # so values are read and messages quote them in file order.
                 from . import compiled
                 dest = compiled.sorted_positions(*by_detail[common][:2])
-                by_detail = {d: None if e is None else (_moved(e[0], dest),) + e[1:]
+                by_detail = {d: None if e is None else (_moved(e[0], dest, fresh=True),) + e[1:]
                              for d, e in by_detail.items()}
             k = len(plan.columns)
             Y = None
@@ -509,7 +510,7 @@ def _fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
     shape = (int(sizes.sum()), 3 + L.w)
     for h in range(2):
         if kept[h] is None or kept[h].size < shape[0] * shape[1]:
-            kept[h] = np.empty(shape[0] * shape[1])
+            kept[h] = np.empty(shape[0] * shape[1] * 5 // 4)    # room for the next batches' groups
 
     def half(h):
         M = kept[h][:shape[0] * shape[1]].reshape(shape)
@@ -553,12 +554,24 @@ def in_blocks(batches, rows: int | None):
             yield b.slice(at, size)
 
 
-def _moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
-    """A copy of ``values`` with each row at its position ``dest``."""
+def _moved(values: np.ndarray, dest: np.ndarray, fresh: bool = False) -> np.ndarray:
+    """``values`` with each row at its position ``dest``: a new array with ``fresh``, else in
+    this thread's buffer, valid until the thread's next call (a running variable's values are
+    used only while its codes are formed, and fresh pages for every variable and batch cost
+    more than moving the rows)."""
     from . import compiled
-    out = np.empty_like(values)
+    if fresh:
+        out = np.empty_like(values)
+    else:
+        buf = getattr(_MOVED, "buf", None)
+        if buf is None or buf.size < values.size or buf.dtype != values.dtype:
+            buf = _MOVED.buf = np.empty(values.size, values.dtype)
+        out = buf[:values.size]
     compiled.scatter_rows(values.reshape(1, -1), dest, out.reshape(1, -1))
     return out
+
+
+_MOVED = threading.local()
 
 
 def _threads() -> int:
