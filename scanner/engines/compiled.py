@@ -26,6 +26,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+_NO_X = np.zeros(0)
+
 
 @njit(nogil=True, cache=True)
 def local_groups(g, nb, ext, span):
@@ -261,7 +263,7 @@ def decimal_codes(x, ok, s):
     """:func:`dense_codes` of ``k = x·s`` when that is exactly a whole number for every row with
     ``ok``, in one pass less: returns (codes, sorted distinct k, nb, status) with status 0 (done),
     1 (some x·s is not whole: nothing else returned) or 2 (whole, but too spread for a dense
-    table).  For whole numbers (``s == 1``) the check needs no division.
+    table).
 
     The first pass has no branch the compiler cannot turn into vector instructions (counting
     the rows that fail instead of stopping at the first), several times faster on the rows of
@@ -270,20 +272,18 @@ def decimal_codes(x, ok, s):
     """
     m = x.size
     none = np.zeros(0, np.int64)
-    unit = s == 1.0
     seen = 0
     for i in range(m):                     # early exit on continuous values
         if ok[i]:
             v = np.rint(x[i] * s)
-            if not abs(v) < 4503599627370496.0 or (v != x[i] if unit else v / s != x[i]):
+            if not abs(v) < 4503599627370496.0 or v / s != x[i]:
                 return none, none, 0, 1
             seen += 1
             if seen == 64:
                 break
     # Bounds are kept as floats and failures counted with & and |, so the loop has no branch:
-    # the compiler turns it into vector instructions (a version with integer bounds and
-    # short-circuit tests ran four times slower).
-    k = np.empty(m, np.int64)
+    # the compiler turns it into vector instructions.  The keys are not written out: the
+    # table computes them again from x.
     lo = np.inf
     hi = -np.inf
     n = 0
@@ -298,14 +298,13 @@ def decimal_codes(x, ok, s):
         kv = v if (use & fits) else 0.0
         lo = min(lo, kv if use else np.inf)
         hi = max(hi, kv if use else -np.inf)
-        k[i] = np.int64(kv)
     if bad:
         return none, none, 0, 1
     if n == 0:
         return np.zeros(m, np.int64), none, 0, 0
     if hi - lo > 4 * n + 1024:
         return none, none, 0, 2
-    g, uniq, nb = _dense_table(k, ok, np.int64(lo), np.int64(hi))
+    g, uniq, nb = _dense_table(none, x, s, ok, np.int64(lo), np.int64(hi))
     return g, uniq, nb, 0
 
 
@@ -330,20 +329,27 @@ def dense_codes(k, ok):
         return np.zeros(m, np.int64), none, 0, True
     if hi - lo > 4 * n + 1024:
         return none, none, 0, False
-    g, uniq, nb = _dense_table(k, ok, lo, hi)
+    g, uniq, nb = _dense_table(k, _NO_X, 1.0, ok, lo, hi)
     return g, uniq, nb, True
 
 
 @njit(nogil=True, cache=True)
-def _dense_table(k, ok, lo, hi):
-    """Codes 0..nb-1 of the keys ``k`` (rows with ``ok``; lo..hi), nb elsewhere, and the sorted
-    distinct keys, through a table of hi − lo + 1 entries."""
-    m = k.size
+def _dense_table(k, x, s, ok, lo, hi):
+    """Codes 0..nb-1 of the keys (rows with ``ok``; lo..hi), nb elsewhere, and the sorted
+    distinct keys, through a table of hi − lo + 1 entries.
+
+    The keys are ``k``, or when ``k`` is empty ``rint(x·s)`` computed again on each pass:
+    writing them out would cost more than reading ``x`` twice more (writes of row-sized arrays
+    are the slowest part of the pass).
+    """
+    m = ok.size
+    given = k.size > 0
     size = hi - lo + 1
     lut = np.zeros(size, np.int64)
     for i in range(m):
         if ok[i]:
-            lut[k[i] - lo] = 1
+            kv = k[i] if given else np.int64(np.rint(x[i] * s))
+            lut[kv - lo] = 1
     nb = 0
     uniq = np.empty(size, np.int64)
     for j in range(size):
@@ -353,5 +359,9 @@ def _dense_table(k, ok, lo, hi):
             nb += 1
     g = np.empty(m, np.int64)
     for i in range(m):
-        g[i] = lut[k[i] - lo] if ok[i] else nb
+        if ok[i]:
+            kv = k[i] if given else np.int64(np.rint(x[i] * s))
+            g[i] = lut[kv - lo]
+        else:
+            g[i] = nb
     return g, uniq[:nb], nb

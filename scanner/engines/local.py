@@ -417,7 +417,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 # so values are read and messages quote them in file order.
                 from . import compiled
                 dest = compiled.sorted_positions(*by_detail[common][:2])
-                by_detail = {d: None if e is None else (_moved(e[0], dest, fresh=True),) + e[1:]
+                by_detail = {d: None if e is None else (_moved(e[0], dest),) + e[1:]
                              for d, e in by_detail.items()}
             k = len(plan.columns)
             Y = None
@@ -427,15 +427,13 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 Y = ybuf[:k * m].reshape(k, m)
 
             def convert(j):
-                # pyarrow's casts and the copy release the GIL: columns convert in parallel
-                v = numeric(batch, plan.columns[j], table.name, _role(plan.columns[j], plan))
+                # pyarrow's casts and the compiled copies release the GIL: columns convert in
+                # parallel
+                name = plan.columns[j]
                 if Y is None:
-                    return v
-                if dest is None:
-                    Y[j] = v
-                else:
-                    compiled.scatter_rows(v.reshape(1, -1), dest, Y[j:j + 1])
-                return Y[j]          # the copy, so the converted column is not held twice
+                    return numeric(batch, name, table.name, _role(name, plan))
+                _into(batch, name, table.name, _role(name, plan), Y[j], dest)
+                return Y[j]
             cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
                             else map(convert, range(k))))
             for t in plan.treatments:
@@ -455,9 +453,12 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             def one(v):
                 r = plan.running[v]
                 extra = by_detail[plan.period_of(r)]
-                x = cols[r] if r in cols else numeric(batch, r, table.name, "running variable")
-                if dest is not None and r not in cols:
-                    x = _moved(x, dest)
+                if r in cols:
+                    x = cols[r]
+                elif kernel == "compiled":
+                    x = _into(batch, r, table.name, "running variable", _scratch(m), dest)
+                else:
+                    x = numeric(batch, r, table.name, "running variable")
                 if kernel == "compiled":
                     ok, nan, inf = compiled.finite_counts(x)
                 else:
@@ -554,24 +555,55 @@ def in_blocks(batches, rows: int | None):
             yield b.slice(at, size)
 
 
-def _moved(values: np.ndarray, dest: np.ndarray, fresh: bool = False) -> np.ndarray:
-    """``values`` with each row at its position ``dest``: a new array with ``fresh``, else in
-    this thread's buffer, valid until the thread's next call (a running variable's values are
-    used only while its codes are formed, and fresh pages for every variable and batch cost
-    more than moving the rows)."""
+def _moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
+    """A copy of ``values`` with each row at its position ``dest``."""
     from . import compiled
-    if fresh:
-        out = np.empty_like(values)
-    else:
-        buf = getattr(_MOVED, "buf", None)
-        if buf is None or buf.size < values.size or buf.dtype != values.dtype:
-            buf = _MOVED.buf = np.empty(values.size, values.dtype)
-        out = buf[:values.size]
+    out = np.empty_like(values)
     compiled.scatter_rows(values.reshape(1, -1), dest, out.reshape(1, -1))
     return out
 
 
-_MOVED = threading.local()
+def _into(batch, name: str, source: str, role: str, out: np.ndarray, dest) -> np.ndarray:
+    """Column ``name`` of ``batch`` as float64 in ``out`` (each row at its position ``dest``
+    when given), as :func:`scanner.io.numeric` converts it.
+
+    Integers of up to 32 bits and floats with no missing value are read where they lie and
+    converted as they are copied; anything else goes through ``numeric`` first.  Writing
+    row-sized arrays is the slowest part of the pass, and this saves one per column.
+    """
+    from . import compiled
+    arr = batch.column(batch.schema.get_field_index(name))
+    if arr.null_count == 0 and arr.type in _EXACT:
+        src = arr.to_numpy(zero_copy_only=True)
+    else:
+        src = numeric(batch, name, source, role)
+    if dest is None:
+        np.copyto(out, src, casting="unsafe")      # every value of these types is exact
+    else:
+        compiled.scatter_rows(src.reshape(1, -1), dest, out.reshape(1, -1))
+    return out
+
+
+def _exact_types():
+    import pyarrow as pa
+    return frozenset((pa.int8(), pa.int16(), pa.int32(), pa.uint8(), pa.uint16(), pa.uint32(),
+                      pa.float32(), pa.float64()))
+
+
+_EXACT = _exact_types()
+
+
+def _scratch(m: int) -> np.ndarray:
+    """This thread's float64 buffer of ``m`` values, valid until the thread's next call (a
+    running variable's values are used only while its codes are formed; fresh pages for every
+    variable and batch cost more than the values)."""
+    buf = getattr(_SCRATCH, "buf", None)
+    if buf is None or buf.size < m:
+        buf = _SCRATCH.buf = np.empty(m)
+    return buf[:m]
+
+
+_SCRATCH = threading.local()
 
 
 def _threads() -> int:
