@@ -56,19 +56,22 @@ def _codes(key: np.ndarray, ok: np.ndarray, dense: bool, decimals: bool = True):
 
 
 def _codes_compiled(key: np.ndarray, ok: np.ndarray, dense: bool, hint: int = 0,
-                    fallback: bool = True):
+                    fallback: bool = True, out: np.ndarray | None = None):
     """:func:`_codes` with compiled loops: the same groups and keys; and the number of decimals
     that made the values whole (tried first next time; any that works gives the same keys).
     With ``fallback`` False, (None, hint) where the keys are not short decimals on a dense
-    range (the caller decides how to group them)."""
+    range (the caller decides how to group them).  The compiled codes are int32, written to
+    ``out`` when given (the hashed ones are a new int64 array)."""
     from . import compiled
+    if out is None:
+        out = np.empty(key.size, np.int32)
     if dense:
-        g, uniq, nb, fits = compiled.dense_codes(key, ok)
+        g, uniq, nb, fits = compiled.dense_codes(key, ok, out)
         return (g, uniq, nb) if fits else _codes(key, ok, True), hint
     for d in dict.fromkeys((hint, 0, 1, 2, 3)):
         # Every scale is tried (a hint of 3 decimals whose table is too spread out must not
         # hide integers on a dense one); any scale that works gives the same keys.
-        g, uniq, nb, status = compiled.decimal_codes(key, ok, 10.0 ** d)
+        g, uniq, nb, status = compiled.decimal_codes(key, ok, 10.0 ** d, out)
         if status == 0:
             return (g, uniq / 10.0 ** d, nb), d
     if not fallback:

@@ -30,8 +30,9 @@ _NO_X = np.zeros(0)
 
 
 @njit(nogil=True, cache=True)
-def local_groups(g, nb, ext, span):
-    """Batch-local group of each row (-1 where ``g == nb``: no finite running value).
+def local_groups(g, nb, ext, span, out):
+    """Batch-local group of each row (-1 where ``g == nb``: no finite running value), written
+    to ``out`` (which may be ``g`` itself: each row's code is read before it is replaced).
 
     ``g``: bin code per row (0..nb-1, nb = dropped); ``ext``: period-half code per row
     (0..span-1), or an empty array when there are none.  Returns (group per row, the combined
@@ -39,7 +40,6 @@ def local_groups(g, nb, ext, span):
     """
     m = g.size
     lut = np.full(nb * span, -1, np.int64)
-    out = np.empty(m, np.int64)
     first = np.empty(min(m, nb * span), np.int64)
     k = 0
     keyed = ext.size > 0
@@ -259,10 +259,10 @@ def grid_keys(x, ok, w, p, ten, pw, limit):
 
 
 @njit(nogil=True, cache=True)
-def decimal_codes(x, ok, s):
+def decimal_codes(x, ok, s, out):
     """:func:`dense_codes` of ``k = x·s`` when that is exactly a whole number for every row with
-    ``ok``, in one pass less: returns (codes, sorted distinct k, nb, status) with status 0 (done),
-    1 (some x·s is not whole: nothing else returned) or 2 (whole, but too spread for a dense
+    ``ok``, in one pass less: returns (codes, written to ``out``; sorted distinct k; nb; status) with status 0 (done),
+    1 (some x·s is not whole: the rest is not to be used) or 2 (whole, but too spread for a dense
     table).
 
     The first pass has no branch the compiler cannot turn into vector instructions (counting
@@ -277,7 +277,7 @@ def decimal_codes(x, ok, s):
         if ok[i]:
             v = np.rint(x[i] * s)
             if not abs(v) < 4503599627370496.0 or v / s != x[i]:
-                return none, none, 0, 1
+                return out, none, 0, 1
             seen += 1
             if seen == 64:
                 break
@@ -299,21 +299,23 @@ def decimal_codes(x, ok, s):
         lo = min(lo, kv if use else np.inf)
         hi = max(hi, kv if use else -np.inf)
     if bad:
-        return none, none, 0, 1
+        return out, none, 0, 1
     if n == 0:
-        return np.zeros(m, np.int64), none, 0, 0
+        out[:] = 0
+        return out, none, 0, 0
     if hi - lo > 4 * n + 1024:
-        return none, none, 0, 2
-    g, uniq, nb = _dense_table(none, x, s, ok, np.int64(lo), np.int64(hi))
+        return out, none, 0, 2
+    g, uniq, nb = _dense_table(none, x, s, ok, np.int64(lo), np.int64(hi), out)
     return g, uniq, nb, 0
 
 
 @njit(nogil=True, cache=True)
-def dense_codes(k, ok):
+def dense_codes(k, ok, out):
     """Group codes of whole-number keys through a dense table, as ``local._codes`` does.
 
-    Returns (codes with nb where not ``ok``, sorted distinct keys, nb, dense) — ``dense`` False
-    (and nothing else) when the keys spread over more than 4·rows + 1024 values.
+    Returns (codes with nb where not ``ok``, written to ``out``; sorted distinct keys; nb;
+    dense) — ``dense`` False (the rest not to be used) when the keys spread over more than
+    4·rows + 1024 values.
     """
     m = k.size
     lo = np.int64(4611686018427387904)
@@ -326,17 +328,18 @@ def dense_codes(k, ok):
             n += 1
     none = np.zeros(0, np.int64)
     if n == 0:
-        return np.zeros(m, np.int64), none, 0, True
+        out[:] = 0
+        return out, none, 0, True
     if hi - lo > 4 * n + 1024:
-        return none, none, 0, False
-    g, uniq, nb = _dense_table(k, _NO_X, 1.0, ok, lo, hi)
+        return out, none, 0, False
+    g, uniq, nb = _dense_table(k, _NO_X, 1.0, ok, lo, hi, out)
     return g, uniq, nb, True
 
 
 @njit(nogil=True, cache=True)
-def _dense_table(k, x, s, ok, lo, hi):
+def _dense_table(k, x, s, ok, lo, hi, g):
     """Codes 0..nb-1 of the keys (rows with ``ok``; lo..hi), nb elsewhere, and the sorted
-    distinct keys, through a table of hi − lo + 1 entries.
+    distinct keys, through a table of hi − lo + 1 entries; the codes are written to ``g``.
 
     The keys are ``k``, or when ``k`` is empty ``rint(x·s)`` computed again on each pass:
     writing them out would cost more than reading ``x`` twice more (writes of row-sized arrays
@@ -357,7 +360,6 @@ def _dense_table(k, x, s, ok, lo, hi):
             lut[j] = nb
             uniq[nb] = j + lo
             nb += 1
-    g = np.empty(m, np.int64)
     for i in range(m):
         if ok[i]:
             kv = k[i] if given else np.int64(np.rint(x[i] * s))

@@ -221,6 +221,7 @@ class Accumulator:
             self.stats = BinnedStats.empty(running, plan.columns, plan.pairs)
         self.level = None
         self.decimals = 0
+        self.buffer = None        # where the compiled kernel writes this batch's group codes
 
     @property
     def stats(self) -> BinnedStats:
@@ -262,7 +263,8 @@ class Accumulator:
         if self.state == "exact" and _kernel(self.plan.kernel) == "compiled":
             # Short decimals (most registry values) are coded in two compiled passes; only
             # other values need the look at the batch's head below.
-            out, self.decimals = _codes_compiled(x, ok, False, self.decimals, fallback=False)
+            out, self.decimals = _codes_compiled(x, ok, False, self.decimals, fallback=False,
+                                                 out=self.buffer)
             tried = True
         if out is None:
             if self.state == "exact" and x.size > 8 * f:
@@ -304,7 +306,7 @@ class Accumulator:
     def _codes(self, key, ok, dense):
         if _kernel(self.plan.kernel) != "compiled":
             return _codes(key, ok, dense)
-        out, self.decimals = _codes_compiled(key, ok, dense, self.decimals)
+        out, self.decimals = _codes_compiled(key, ok, dense, self.decimals, out=self.buffer)
         return out
 
     def add(self, raw) -> None:
@@ -321,12 +323,13 @@ class Accumulator:
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
                                  *self.grid, self.forced)
 
-    def groups(self, codes, x: np.ndarray, extra):
+    def groups(self, codes, x: np.ndarray, extra, out: np.ndarray):
         """A batch's groups for the compiled kernel (:mod:`.compiled`), or None with no finite
         running value: (group per row — skipped unless 0 <= group < G —, G, the groups' n,
         Σx and Σx² (G × 3), the slot of each group in the running totals).
 
-        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys.  The other sums
+        ``codes`` as from :meth:`codes`; ``extra`` None or :func:`keyed` keys; the groups are
+        written to ``out`` (int32, which may hold the codes already).  The other sums
         come from :func:`scanner.engines.compiled.fold_rows`, for every running variable at
         once; :meth:`add_groups` adds them.
         """
@@ -339,15 +342,18 @@ class Accumulator:
         else:
             ext, span, p0 = extra if len(extra) == 3 else keyed(*extra)
         if span == 1:       # no period or half keys: the dense codes are the groups
-            group, first = g, np.arange(nb, dtype=np.int64)
+            group, first = out, np.arange(nb, dtype=np.int64)
+            if not np.may_share_memory(g, out):
+                out[:] = g
         elif nb * span <= LUT_MAX:
-            group, first = compiled.local_groups(g, nb, ext, span)
+            group, first = compiled.local_groups(g, nb, ext, span, out)
         else:       # too many combinations for a dense table: hash them
             import pandas as pd
             live = g < nb
-            comp = g[live] * span + (ext[live] if ext.size else 0)
+            comp = g[live].astype(np.int64) * span + (ext[live] if ext.size else 0)
             codes_, first = pd.factorize(comp)
-            group = np.full(g.size, -1, np.int64)
+            group = out
+            group[:] = -1
             group[live] = codes_
         b, e = np.divmod(np.asarray(first, np.int64), span)
         r = np.arange(span) // 3
@@ -465,11 +471,14 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                     ok, nan = np.isfinite(x), int(np.isnan(x).sum())
                     inf = int(m - ok.sum() - nan)
                 a = acc[r]
+                if kernel == "compiled":
+                    a.buffer = groups[v]
                 codes = a.codes(x, ok)
                 part = None
                 if kernel == "compiled":
-                    part = a.groups(codes, x, extra)
-                    groups[v] = part[0] if part else -1
+                    part = a.groups(codes, x, extra, groups[v])
+                    if part is None:
+                        groups[v] = -1
                 else:
                     a.add(fold_raw(codes, x, ok, extra, packed, a.template, kernel)
                           if codes[2] else None)
