@@ -17,21 +17,20 @@ over a sample of the first rows or Parquet min/max statistics because the result
 on the set of values: a table sorted by the running variable, a stray outlier, a different
 batch size or a Spark partitioning cannot change the grid.  An outlier costs one bin.
 
-Speed.  The default kernel (``plan.kernel = "compiled"``, :mod:`scanner.engines.compiled`) adds
-every row straight into the running totals with two numba loops per running variable and batch,
-after putting the batch's rows in order of their (period, half) key so that the totals touched at
-one time stay in the processor's cache; the running variables of a batch are folded in two
-threads (the loops release the GIL).  Group codes of exact values and grid keys come from dense
-integer offsets (compiled too), with hash factorisation where keys are too spread out.  The numpy
-kernels are kept for checking and for machines without numba: one sparse one-hot product per
-running variable (``"sparse"``, scipy) or one ``np.bincount`` per sum (``"bincount"``); all three
-give the same sums to 1e-9 (tested).  numba's import and the loading of the cached machine code
-cost about a second per process, which the pass earns back from about a million rows.
+Speed.  The default kernel (``plan.kernel = "compiled"``, :mod:`scanner.engines.compiled`) codes
+each running variable's rows in compiled loops (the running variables of a batch in two
+threads; the loops release the GIL), then adds every row's sums to all running variables'
+groups in one pass per half of the batch, after moving the rows to the order of their (period,
+half) key so that the totals touched at one time stay in the processor's cache.  Group codes
+of exact values and grid keys come from dense integer offsets, with hash factorisation where
+keys are too spread out.  The numpy kernels are kept for checking and for machines without
+numba: one sparse one-hot product per running variable (``"sparse"``, scipy) or one
+``np.bincount`` per sum (``"bincount"``); all three give the same sums to 1e-9 (tested).
+numba's import and the loading of the cached machine code cost about a second per process,
+which the pass earns back from about a million rows.
 The cost of the pass against plain reading is in ``benchmarks/results/scale.md``.
 """
 from __future__ import annotations
-
-import threading
 
 import numpy as np
 
@@ -40,6 +39,7 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
+from .batchfold import fold_together, into, moved, scratch
 from .compact import Layout
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
@@ -398,7 +398,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         pool = ThreadPoolExecutor(_threads())
     rows = 0
     ybuf = gbuf = None
-    kept = [None, None]       # the fold's two matrices, reused (_fold_together)
+    kept = [None, None]       # the fold's two matrices, reused (batchfold.fold_together)
     try:
         blocks = block_rows(plan) if kernel == "compiled" else None
         for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
@@ -423,7 +423,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 # so values are read and messages quote them in file order.
                 from . import compiled
                 dest = compiled.sorted_positions(*by_detail[common][:2])
-                by_detail = {d: None if e is None else (_moved(e[0], dest),) + e[1:]
+                by_detail = {d: None if e is None else (moved(e[0], dest),) + e[1:]
                              for d, e in by_detail.items()}
             k = len(plan.columns)
             Y = None
@@ -438,7 +438,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 name = plan.columns[j]
                 if Y is None:
                     return numeric(batch, name, table.name, _role(name, plan))
-                _into(batch, name, table.name, _role(name, plan), Y[j], dest)
+                into(batch, name, table.name, _role(name, plan), Y[j], dest)
                 return Y[j]
             cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
                             else map(convert, range(k))))
@@ -462,7 +462,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 if r in cols:
                     x = cols[r]
                 elif kernel == "compiled":
-                    x = _into(batch, r, table.name, "running variable", _scratch(m), dest)
+                    x = into(batch, r, table.name, "running variable", scratch(m), dest)
                 else:
                     x = numeric(batch, r, table.name, "running variable")
                 if kernel == "compiled":
@@ -489,7 +489,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 missing[r] += nan
                 nonfinite[r] += inf
             if kernel == "compiled":
-                _fold_together(acc, plan.running, [p for _, _, p in got], groups, Y, layout,
+                fold_together(acc, plan.running, [p for _, _, p in got], groups, Y, layout,
                                pool, kept)
                 del Y
             rows += m
@@ -499,45 +499,6 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         if pool is not None:
             pool.shutdown()
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
-
-
-def _fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
-                   layout: Layout, pool, kept: list) -> None:
-    """Add a batch's addends to every running variable's totals in one compiled pass per half
-    of the rows (:func:`scanner.engines.compiled.fold_rows`).
-
-    The halves are fixed (first and second), folded in the pool's two threads when there is
-    one, and added in that order, so the totals do not depend on the number of threads.
-    ``kept`` holds the two halves' matrices between batches (zeroing a kept matrix is cheaper
-    than the page faults of a new one: with a continuous running variable and period keys
-    they hold about 10^5 groups each).
-    """
-    from . import compiled
-    sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
-    off = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
-    m = groups.shape[1]
-    L = layout
-    shape = (int(sizes.sum()), 3 + L.w)
-    for h in range(2):
-        if kept[h] is None or kept[h].size < shape[0] * shape[1]:
-            kept[h] = np.empty(shape[0] * shape[1] * 5 // 4)    # room for the next batches' groups
-
-    def half(h):
-        M = kept[h][:shape[0] * shape[1]].reshape(shape)
-        M.fill(0.0)
-        compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
-                           h * (m // 2), m if h else m // 2, M)
-        return M
-    first, second = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
-    first += second
-    for r, p, o in zip(running, parts, off):
-        if p is None:
-            acc[r].add(None)
-            continue
-        _, G, Mx, slot = p
-        Mc = first[o:o + G]
-        Mc[:, :3] = Mx
-        acc[r].add_groups(slot, Mc, L.src)
 
 
 ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
@@ -562,57 +523,6 @@ def in_blocks(batches, rows: int | None):
         size = -(-b.num_rows // parts)
         for at in range(0, b.num_rows, size):
             yield b.slice(at, size)
-
-
-def _moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
-    """A copy of ``values`` with each row at its position ``dest``."""
-    from . import compiled
-    out = np.empty_like(values)
-    compiled.scatter_rows(values.reshape(1, -1), dest, out.reshape(1, -1))
-    return out
-
-
-def _into(batch, name: str, source: str, role: str, out: np.ndarray, dest) -> np.ndarray:
-    """Column ``name`` of ``batch`` as float64 in ``out`` (each row at its position ``dest``
-    when given), as :func:`scanner.io.numeric` converts it.
-
-    Integers of up to 32 bits and floats with no missing value are read where they lie and
-    converted as they are copied; anything else goes through ``numeric`` first.  Writing
-    row-sized arrays is the slowest part of the pass, and this saves one per column.
-    """
-    from . import compiled
-    arr = batch.column(batch.schema.get_field_index(name))
-    if arr.null_count == 0 and arr.type in _EXACT:
-        src = arr.to_numpy(zero_copy_only=True)
-    else:
-        src = numeric(batch, name, source, role)
-    if dest is None:
-        np.copyto(out, src, casting="unsafe")      # every value of these types is exact
-    else:
-        compiled.scatter_rows(src.reshape(1, -1), dest, out.reshape(1, -1))
-    return out
-
-
-def _exact_types():
-    import pyarrow as pa
-    return frozenset((pa.int8(), pa.int16(), pa.int32(), pa.uint8(), pa.uint16(), pa.uint32(),
-                      pa.float32(), pa.float64()))
-
-
-_EXACT = _exact_types()
-
-
-def _scratch(m: int) -> np.ndarray:
-    """This thread's float64 buffer of ``m`` values, valid until the thread's next call (a
-    running variable's values are used only while its codes are formed; fresh pages for every
-    variable and batch cost more than the values)."""
-    buf = getattr(_SCRATCH, "buf", None)
-    if buf is None or buf.size < m:
-        buf = _SCRATCH.buf = np.empty(m)
-    return buf[:m]
-
-
-_SCRATCH = threading.local()
 
 
 def _threads() -> int:

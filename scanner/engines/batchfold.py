@@ -1,0 +1,110 @@
+"""The compiled pass's work on one batch's rows, shared by every running variable.
+
+- :func:`into`: a column converted to float64 straight into the pass's buffers, each row at its
+  period-half position when the rows are reordered;
+- :func:`moved`: a row array in that order;
+- :func:`scratch`: a per-thread buffer for a running variable's values;
+- :func:`fold_together`: every running variable's addends added in one compiled pass per half
+  of the rows (:func:`scanner.engines.compiled.fold_rows`).
+
+On the machine we measure on, writing row-sized arrays is the slowest part of the pass; these
+helpers write each value once and reuse their buffers between batches.
+"""
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+
+from ..io import numeric
+from .compact import Layout
+
+
+def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
+                   layout: Layout, pool, kept: list) -> None:
+    """Add a batch's addends to every running variable's totals in one compiled pass per half
+    of the rows (:func:`scanner.engines.compiled.fold_rows`).
+
+    The halves are fixed (first and second), folded in the pool's two threads when there is
+    one, and added in that order, so the totals do not depend on the number of threads.
+    ``kept`` holds the two halves' matrices between batches (zeroing a kept matrix is cheaper
+    than the page faults of a new one: with a continuous running variable and period keys
+    they hold about 10^5 groups each).
+    """
+    from . import compiled
+    sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
+    off = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    m = groups.shape[1]
+    L = layout
+    shape = (int(sizes.sum()), 3 + L.w)
+    for h in range(2):
+        if kept[h] is None or kept[h].size < shape[0] * shape[1]:
+            kept[h] = np.empty(shape[0] * shape[1] * 5 // 4)    # room for the next batches' groups
+
+    def half(h):
+        M = kept[h][:shape[0] * shape[1]].reshape(shape)
+        M.fill(0.0)
+        compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
+                           h * (m // 2), m if h else m // 2, M)
+        return M
+    first, second = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
+    first += second
+    for r, p, o in zip(running, parts, off):
+        if p is None:
+            acc[r].add(None)
+            continue
+        _, G, Mx, slot = p
+        Mc = first[o:o + G]
+        Mc[:, :3] = Mx
+        acc[r].add_groups(slot, Mc, L.src)
+
+
+def moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
+    """A copy of ``values`` with each row at its position ``dest``."""
+    from . import compiled
+    out = np.empty_like(values)
+    compiled.scatter_rows(values.reshape(1, -1), dest, out.reshape(1, -1))
+    return out
+
+
+def into(batch, name: str, source: str, role: str, out: np.ndarray, dest) -> np.ndarray:
+    """Column ``name`` of ``batch`` as float64 in ``out`` (each row at its position ``dest``
+    when given), as :func:`scanner.io.numeric` converts it.
+
+    Integers of up to 32 bits and floats with no missing value are read where they lie and
+    converted as they are copied; anything else goes through ``numeric`` first.  Writing
+    row-sized arrays is the slowest part of the pass, and this saves one per column.
+    """
+    from . import compiled
+    arr = batch.column(batch.schema.get_field_index(name))
+    if arr.null_count == 0 and arr.type in _EXACT:
+        src = arr.to_numpy(zero_copy_only=True)
+    else:
+        src = numeric(batch, name, source, role)
+    if dest is None:
+        np.copyto(out, src, casting="unsafe")      # every value of these types is exact
+    else:
+        compiled.scatter_rows(src.reshape(1, -1), dest, out.reshape(1, -1))
+    return out
+
+
+def _exact_types():
+    import pyarrow as pa
+    return frozenset((pa.int8(), pa.int16(), pa.int32(), pa.uint8(), pa.uint16(), pa.uint32(),
+                      pa.float32(), pa.float64()))
+
+
+_EXACT = _exact_types()
+
+
+def scratch(m: int) -> np.ndarray:
+    """This thread's float64 buffer of ``m`` values, valid until the thread's next call (a
+    running variable's values are used only while its codes are formed; fresh pages for every
+    variable and batch cost more than the values)."""
+    buf = getattr(_SCRATCH, "buf", None)
+    if buf is None or buf.size < m:
+        buf = _SCRATCH.buf = np.empty(m)
+    return buf[:m]
+
+
+_SCRATCH = threading.local()
