@@ -537,3 +537,32 @@ def test_narrow_column_types_read_in_place(keys):
     st = got.stats["five"]
     z_present = pd.Series(cols["z"].is_valid().to_numpy(zero_copy_only=False))
     assert int(st.cnt[:, 2].sum()) == int(z_present.sum()) < n
+
+
+def test_compiled_quarters_equal_pyarrow_year_and_quarter(monkeypatch):
+    # Reference: pyarrow's year() and quarter() functions (scanner.io.period_codes).  Dates
+    # from 1700 to 2300 — before 1970, across leap days and century years — as date32, date64
+    # and time stamps in every unit with times of day, all through the compiled loop (the
+    # reference is made unreachable for them); a time zone and nulls take pyarrow's route.
+    import pyarrow as pa
+    import scanner.io
+    from scanner.engines.batchfold import quarters
+    from scanner.io import period_codes
+    rng = np.random.default_rng(12)
+    days = np.r_[rng.integers(-100_000, 120_000, 20_000), np.arange(-800, 800),
+                 [-25_567, -25_568, 10_956, 10_957, 11_016, 11_017, 47_541]].astype(np.int64)
+    arrays = [pa.array(days.astype(np.int32), pa.date32()),
+              pa.array(days * 86_400_000, pa.date64())]
+    for unit, per in (("s", 1), ("ms", 1_000), ("us", 10 ** 6), ("ns", 10 ** 9)):
+        keep = np.abs(days) < 100_000 if unit == "ns" else slice(None)
+        stamps = days[keep] * 86_400 * per + rng.integers(0, 86_400 * per, days[keep].size)
+        arrays.append(pa.array(stamps, pa.timestamp(unit)))
+    arrays.append(pa.array(days * 86_400, pa.timestamp("s", tz="Pacific/Auckland")))
+    arrays.append(pa.array(np.where(days % 7 == 0, None, days).tolist(), pa.date32()))
+    for i, arr in enumerate(arrays):
+        batch = pa.RecordBatch.from_arrays([arr], ["visit"])
+        ref = period_codes(batch, "visit", "t")
+        if i < 6:
+            monkeypatch.setattr(scanner.io, "period_codes", None)      # the compiled loop only
+        assert_array_equal(quarters(batch, "visit", "t"), ref, err_msg=str(arr.type))
+        monkeypatch.undo()

@@ -4,6 +4,7 @@
   period-half position when the rows are reordered;
 - :func:`moved`: a row array in that order;
 - :func:`scratch`: a per-thread buffer for a running variable's values;
+- :func:`quarters`: calendar quarters of the date column in one compiled loop;
 - :func:`fold_together`: every running variable's addends added in one compiled pass per half
   of the rows (:func:`scanner.engines.compiled.fold_rows`).
 
@@ -108,3 +109,27 @@ def scratch(m: int) -> np.ndarray:
 
 
 _SCRATCH = threading.local()
+
+
+def quarters(batch, column: str, source: str) -> np.ndarray:
+    """:func:`scanner.io.period_codes` of a batch's date column: through one compiled loop for
+    dates and time stamps with no time zone and no missing value (most registry dates), where
+    pyarrow's year and quarter functions make several temporaries of the batch."""
+    import pyarrow as pa
+    from . import compiled
+    from ..io import period_codes
+    arr = batch.column(batch.schema.get_field_index(column))
+    t = arr.type
+    per_day = None
+    if pa.types.is_date32(t):
+        per_day, raw = 1, pa.int32()
+    elif pa.types.is_date64(t):
+        per_day, raw = 86_400_000, pa.int64()
+    elif pa.types.is_timestamp(t) and t.tz is None:
+        per_day, raw = 86_400 * _PER_SECOND[t.unit], pa.int64()
+    if per_day is None or arr.null_count:
+        return period_codes(batch, column, source)
+    return compiled.quarter_codes(arr.view(raw).to_numpy(), per_day)
+
+
+_PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}

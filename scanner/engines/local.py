@@ -39,7 +39,7 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
-from .batchfold import fold_together, into, moved, scratch
+from .batchfold import fold_together, into, moved, quarters, scratch
 from .compact import Layout
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
@@ -406,7 +406,10 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             if m == 0:
                 continue
             dated = plan.date in plan.needed if plan.date else False
-            quarter = period_codes(batch, plan.date, table.name) if dated else None
+            quarter = None
+            if dated:
+                quarter = (quarters(batch, plan.date, table.name) if kernel == "compiled"
+                           else period_codes(batch, plan.date, table.name))
             half = None
             if plan.split_seed is not None:
                 if plan.split_unit:
