@@ -566,3 +566,28 @@ def test_compiled_quarters_equal_pyarrow_year_and_quarter(monkeypatch):
             monkeypatch.setattr(scanner.io, "period_codes", None)      # the compiled loop only
         assert_array_equal(quarters(batch, "visit", "t"), ref, err_msg=str(arr.type))
         monkeypatch.undo()
+
+
+def test_compiled_period_and_half_keys_equal_numpy():
+    # Reference: the numpy keys (local.half_split, local.keyed through local._extra).  Row
+    # halves from several starts and seeds; period-half codes with quarters, whole years or no
+    # period, with and without halves, with missing dates and a batch with no date at all.
+    from scanner.engines import compiled, local
+    rng = np.random.default_rng(3)
+    for m in (1, 7, 1000):
+        q = rng.integers(7900, 8100, m).astype(np.int32)
+        q[rng.random(m) < 0.2] = -1
+        h = rng.integers(0, 2, m).astype(np.int8)
+        for start, seed in ((0, 1), (10 ** 9, 20240601), (5, 0)):
+            assert_array_equal(compiled.row_halves(start, m, seed),
+                               local.half_split(np.arange(start, start + m), seed))
+        for detail in ("none", "quarter", "year"):
+            for halves in (None, h):
+                for quarter in (None, q, np.full(m, -1, np.int32)):
+                    ref = local._extra(detail, quarter, halves, m)
+                    got = local._extra(detail, quarter, halves, m, True)
+                    if ref is None:
+                        assert got is None
+                        continue
+                    assert_array_equal(got[0], ref[0])
+                    assert got[1:] == ref[1:]

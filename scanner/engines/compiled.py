@@ -242,6 +242,47 @@ def quarter_codes(values, per_day):
 
 
 @njit(nogil=True, cache=True)
+def row_halves(start, m, seed):
+    """``local.half_split`` of the row positions start..start+m-1 in one loop (the same
+    splitmix64 finaliser in wrapping unsigned arithmetic; the numpy version makes a dozen
+    temporaries of the batch)."""
+    out = np.empty(m, np.int8)
+    base = np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15)
+    one = np.uint64(1)
+    for i in range(m):
+        z = np.uint64(start + i) + base
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        z = z ^ (z >> np.uint64(31))
+        out[i] = np.int8(z & one)
+    return out
+
+
+@njit(nogil=True, cache=True)
+def period_keys(quarter, year, half):
+    """``local.keyed`` of the periods of quarter codes (whole years when ``year``; -1 or an
+    empty ``quarter``: no period) and the halves (empty: none), in two loops: (code per row,
+    number of codes, first period)."""
+    m = quarter.size if quarter.size else half.size
+    p0 = np.int64(2 ** 62)
+    for i in range(quarter.size):
+        q = np.int64(quarter[i])
+        if q >= 0:
+            p0 = min(p0, q // 4 * 4 if year else q)
+    if p0 == 2 ** 62:
+        p0 = 0
+    ext = np.empty(m, np.int32)
+    top = 0
+    for i in range(m):
+        q = np.int64(quarter[i]) if quarter.size else np.int64(-1)
+        r = ((q // 4 * 4 if year else q) - p0 + 1) if q >= 0 else 0
+        e = r * 3 + (np.int64(half[i]) + 1 if half.size else 0)
+        ext[i] = e
+        top = max(top, e)
+    return ext, top + 1, p0
+
+
+@njit(nogil=True, cache=True)
 def finite_counts(x):
     """(finite mask, NaN count, ±inf count) of a running variable's values, in one pass."""
     m = x.size

@@ -414,10 +414,14 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             if plan.split_seed is not None:
                 if plan.split_unit:
                     half = unit_halves(batch.column(plan.split_unit), plan.split_seed)
+                elif kernel == "compiled":
+                    from . import compiled
+                    half = compiled.row_halves(rows, m, plan.split_seed)
                 else:
                     half = half_split(np.arange(rows, rows + m), plan.split_seed)
             details = [plan.period_of(r) for r in plan.running]
-            by_detail = {d: _extra(d, quarter, half, m) for d in set(details)}
+            by_detail = {d: _extra(d, quarter, half, m, kernel == "compiled")
+                         for d in set(details)}
             common = max(set(details), key=details.count)
             dest = None
             if kernel == "compiled" and by_detail[common] is not None:
@@ -548,11 +552,18 @@ def _kernel(name: str) -> str:
     return name
 
 
-def _extra(detail: str, quarter, half, m: int):
-    """(period, half) keys of a batch's rows for one running variable, or None for neither."""
+def _extra(detail: str, quarter, half, m: int, fast: bool = False):
+    """(period, half) keys of a batch's rows for one running variable, or None for neither
+    (:func:`keyed` of them; with ``fast``, the same through one compiled loop)."""
+    if (detail == "none" or quarter is None) and half is None:
+        return None
+    if fast:
+        from . import compiled
+        none = np.zeros(0, np.int32)
+        return compiled.period_keys(none if detail == "none" or quarter is None else quarter,
+                                    detail == "year", none.astype(np.int8) if half is None
+                                    else half)
     if detail == "none" or quarter is None:
-        if half is None:
-            return None
         return keyed(np.full(m, -1, np.int32), half)
     period = quarter if detail == "quarter" else np.where(quarter >= 0, quarter // 4 * 4, -1)
     return keyed(period, np.full(m, -1, np.int8) if half is None else half)
