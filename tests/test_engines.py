@@ -263,7 +263,10 @@ IRR = dict(running=("skew", "half", "five"), columns=("d", "y", "z"), treatments
 
 @pytest.mark.parametrize("keys", [{}, dict(date="visit", split_seed=3),
                                   dict(date="visit", split_seed=3,
-                                       periods={"skew": "year", "half": "none"})])
+                                       periods={"skew": "year", "half": "none"}),
+                                  # rows move to year order; "five" has no keys at all
+                                  dict(date="visit",
+                                       periods={"skew": "year", "half": "year", "five": "none"})])
 def test_compiled_kernel_equals_numpy_kernels(keys, monkeypatch):
     # Reference: the plain numpy bincount kernel (one np.bincount per sum).  The compiled pass
     # reorders each batch's rows by period and half and folds variables in two threads; counts
