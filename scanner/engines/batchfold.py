@@ -28,9 +28,8 @@ def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
 
     The halves are fixed (first and second), folded in the pool's two threads when there is
     one, and added in that order, so the totals do not depend on the number of threads.
-    ``kept`` holds the two halves' matrices between batches (zeroing a kept matrix is cheaper
-    than the page faults of a new one: with a continuous running variable and period keys
-    they hold about 10^5 groups each).
+    ``kept`` holds the two halves' matrices between batches (fresh ones would cost page
+    faults: with a continuous running variable and period keys they hold about 10^5 groups).
     """
     from . import compiled
     sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
@@ -44,12 +43,12 @@ def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
 
     def half(h):
         M = kept[h][:shape[0] * shape[1]].reshape(shape)
-        M.fill(0.0)
+        seen = np.zeros(shape[0], np.uint8)
         compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
-                           h * (m // 2), m if h else m // 2, M)
-        return M
-    first, second = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
-    first += second
+                           h * (m // 2), m if h else m // 2, M, seen)
+        return M, seen
+    (first, seen_a), (second, seen_b) = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
+    compiled.merge_halves(first, seen_a, second, seen_b)
     for r, p, o in zip(running, parts, off):
         if p is None:
             acc[r].add(None)
