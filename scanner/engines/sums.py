@@ -82,7 +82,11 @@ class SlotSums:
         if need <= self.M.shape[0]:
             return
         cap = max(need + need // 2, 2 * self.M.shape[0], 1024)
-        self.M = np.concatenate([self.M, np.zeros((cap - self.M.shape[0], self.width))])
+        # np.zeros leaves untouched pages to the system (zero until first written), where
+        # concatenating would write every slot of the new matrix at once
+        M = np.zeros((cap, self.width))
+        M[:self.M.shape[0]] = self.M
+        self.M = M
         for name, dtype in (("key", float), ("period", np.int32), ("half", np.int8),
                             ("code", np.int64)):
             old = getattr(self, name)
