@@ -4,7 +4,9 @@ The data are invented (simulated registry-like columns, no real setting): runnin
 ``r0..`` alternate between an integer score (exact-support bins), a lab value recorded to one
 decimal (exact-support bins) and a continuous score (fixed-width bins); treatments ``t0..`` are
 0/1 with a planted jump at a round cutoff of one running variable each; covariates ``c0..`` are
-smooth, one with 5% missing values.  Files of ``rows_per_file`` rows keep generation memory flat.
+smooth, one with 5% missing values.  The irregular table (``irregular=True``) puts at every
+second position a skewed lab value or a half-integer score, both with 999 missing codes, or a
+coarse float32 lattice.  Files of ``rows_per_file`` rows keep generation memory flat.
 """
 from __future__ import annotations
 
@@ -22,7 +24,8 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 DATA = HERE / "data"
 RESULTS = HERE / "results"
-CUTOFFS = (60.0, 6.5, 0.0)          # per running-variable type: integer, decimal, continuous
+CUTOFFS = (60.0, 6.5, 0.0,          # per running-variable type: integer, decimal, continuous,
+           7.0, 21.5, 50.0)         # and (irregular table) skewed, half lattice, coarse lattice
 DATE_START = 16436                  # 2015-01-01 as days since 1970-01-01
 DATE_DAYS = 3653                    # ten years of visit dates
 
@@ -32,15 +35,28 @@ def running_values(rng, kind: int, n: int) -> np.ndarray:
         return rng.integers(18, 100, n).astype(np.int16)
     if kind == 1:
         return np.round(rng.normal(6.0, 1.2, n), 1)
+    if kind == 3:       # a skewed lab value with a long right tail, 0.5% coded 999 for missing
+        v = rng.lognormal(1.6, 0.7, n)
+        v[rng.random(n) < 0.005] = 999.0
+        return v
+    if kind == 4:       # a score on a half-integer lattice, 3% coded 999 for missing
+        v = np.round(rng.normal(20.0, 4.0, n) * 2) / 2
+        v[rng.random(n) < 0.03] = 999.0
+        return v
+    if kind == 5:       # a coarse lattice (multiples of 5) stored as float32
+        return (rng.integers(0, 21, n) * 5).astype(np.float32)
     return rng.normal(0.0, 1.0, n)
 
 
 def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, seed: int = 1,
-             rows_per_file: int = 2_000_000, dated: bool = False) -> Path:
+             rows_per_file: int = 2_000_000, dated: bool = False,
+             irregular: bool = False) -> Path:
     """Write the folder unless it already holds a complete copy (marker file).
 
     ``dated`` adds a ``visit`` date column spread evenly over ten years (2015-01-01 to
-    2024-12-31), as a registry extract nearly always has one.
+    2024-12-31), as a registry extract nearly always has one.  ``irregular`` makes every
+    second running variable one of the shapes real extracts have: a skewed lab value and a
+    half-integer score, both with 999 missing codes, and a coarse float32 lattice.
     """
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -53,10 +69,11 @@ def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, 
     rng = np.random.default_rng(seed)
     for i, start in enumerate(range(0, rows, rows_per_file)):
         m = min(rows_per_file, rows - start)
-        cols = {f"r{j}": running_values(rng, j % 3, m) for j in range(n_running)}
+        kinds = [_kind(j, irregular) for j in range(n_running)]
+        cols = {f"r{j}": running_values(rng, kinds[j], m) for j in range(n_running)}
         for t in range(n_treat):
             j = t % n_running
-            above = np.asarray(cols[f"r{j}"], float) >= CUTOFFS[j % 3]
+            above = np.asarray(cols[f"r{j}"], float) >= CUTOFFS[kinds[j]]
             cols[f"t{t}"] = (rng.random(m) < 0.15 + 0.4 * above).astype(np.int8)
         for c in range(n_cov):
             v = rng.normal(0.0, 1.0, m).astype(np.float32)
@@ -69,6 +86,14 @@ def generate(folder: Path, rows: int, n_running: int, n_treat: int, n_cov: int, 
         pq.write_table(pa.table(cols), folder / f"part-{i:04d}.parquet", row_group_size=500_000)
     marker.write_text(f"{rows}\n")
     return folder
+
+
+def _kind(j: int, irregular: bool) -> int:
+    """Type of running variable r<j>: 0-2 cycle (integer, decimal, continuous); the irregular
+    table puts a skewed, half-lattice or coarse variable (3-5) at every odd position."""
+    if irregular and j % 2:
+        return 3 + (j // 2) % 3
+    return j % 3
 
 
 def spec_for(folder: Path, n_running: int, n_treat: int, n_cov: int, batch_rows: int = 1_000_000,

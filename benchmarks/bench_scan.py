@@ -138,13 +138,19 @@ def main() -> None:
     ap.add_argument("--modes", nargs="*", default=list(MODES))
     ap.add_argument("--repeat", type=int, default=3,
                     help="runs per mode (fresh processes); the median wall time is reported")
+    ap.add_argument("--irregular", action="store_true",
+                    help="the irregular table: every second running variable skewed, on a "
+                         "half-integer lattice (both with 999 missing codes) or coarse float32")
     ap.add_argument("--child", nargs="+")
     a = ap.parse_args()
     if a.child:
         print(json.dumps(measure(a.child[0], a.child[1], int(a.child[2]), *a.child[3:])))
         return
-    lines = ["## Scan speed and memory (`benchmarks/bench_scan.py`)", "",
-             f"Machine: {bd.machine()}. Table: {SHAPE[0]} running variables, {SHAPE[1]} "
+    shape = ("; every second running variable skewed or on a half-integer lattice (both with "
+             "999 missing codes) or coarse float32" if a.irregular else "")
+    lines = ["## Scan speed and memory (`benchmarks/bench_scan.py" +
+             (" --irregular" if a.irregular else "") + "`)", "",
+             f"Machine: {bd.machine()}. Table: {SHAPE[0]} running variables{shape}, {SHAPE[1]} "
              f"treatments, {SHAPE[2]} covariates and a ten-year visit date, Parquet folder, "
              f"batches of {a.batch_rows:,} rows. Wall time on this shared 2-core machine moves "
              "with the load of other jobs (last column: 1/5/15-minute load averages when the "
@@ -156,7 +162,9 @@ def main() -> None:
              "CPU vs baseline | CPU vs plain pass | one-time start (s) | load |",
              "|---:|---|---:|---:|---:|---:|---:|---:|---|---:|---:|---:|---:|---|"]
     for n in map(int, a.rows):
-        folder = bd.generate(bd.DATA / f"scan_dated_{n}", n, *SHAPE, dated=True)
+        name = "scan_irregular" if a.irregular else "scan_dated"
+        folder = bd.generate(bd.DATA / f"{name}_{n}", n, *SHAPE, dated=True,
+                             irregular=a.irregular)
         bd.child(Path(__file__), "read", folder, a.batch_rows)      # warm the page cache
         runs, grids = {m: [] for m in a.modes}, "{}"
         # Rounds over all modes, so a burst of other jobs' load spreads over the modes; each
@@ -191,12 +199,14 @@ def main() -> None:
                          f"{rel} | {r['cpu_seconds'] / plain:.2f}× | {start} | {r['load']} |")
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",
-              "", "Reproduce: `python benchmarks/bench_scan.py --rows " +
+              "", "Reproduce: `python benchmarks/bench_scan.py" +
+              (" --irregular" if a.irregular else "") + " --rows " +
               " ".join(f"{int(n)}" for n in a.rows) +
               ("" if a.repeat == 3 else f" --repeat {a.repeat}") +
               ("" if list(a.modes) == list(MODES) else
                " --modes " + " ".join(f'"{m}"' if " " in m else m for m in a.modes)) + "`."]
-    print(bd.write_section("bench_scan", "\n".join(lines)))
+    print(bd.write_section("bench_scan_irregular" if a.irregular else "bench_scan",
+                           "\n".join(lines)))
 
 
 if __name__ == "__main__":
