@@ -99,6 +99,8 @@ def _kind(j: int, irregular: bool) -> int:
 def spec_for(folder: Path, n_running: int, n_treat: int, n_cov: int, batch_rows: int = 1_000_000,
              dated: bool = False):
     data = {"source": str(folder), "batch_rows": batch_rows}
+    if "irregular" in Path(folder).name:
+        data["missing"] = [999]         # the irregular table's missing code, declared
     if dated:
         data["date"] = "visit"
     return {"title": "scale benchmark", "data": data,

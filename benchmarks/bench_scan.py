@@ -140,14 +140,16 @@ def main() -> None:
                     help="runs per mode (fresh processes); the median wall time is reported")
     ap.add_argument("--irregular", action="store_true",
                     help="the irregular table: every second running variable skewed, on a "
-                         "half-integer lattice (both with 999 missing codes) or coarse float32")
+                         "half-integer lattice (both with 999 missing codes, declared in the "
+                         "scans' spec; the bare passes bin 999 as a value) or coarse float32")
     ap.add_argument("--child", nargs="+")
     a = ap.parse_args()
     if a.child:
         print(json.dumps(measure(a.child[0], a.child[1], int(a.child[2]), *a.child[3:])))
         return
     shape = ("; every second running variable skewed or on a half-integer lattice (both with "
-             "999 missing codes) or coarse float32" if a.irregular else "")
+             "999 missing codes, declared in the scans' spec; the bare passes bin 999 as a "
+             "value) or coarse float32" if a.irregular else "")
     lines = ["## Scan speed and memory (`benchmarks/bench_scan.py" +
              (" --irregular" if a.irregular else "") + "`)", "",
              f"Machine: {bd.machine()}. Table: {SHAPE[0]} running variables{shape}, {SHAPE[1]} "

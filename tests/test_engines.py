@@ -299,8 +299,9 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
     from scanner.engines import local
     real = local.in_blocks
     for workers, budget in (("1", local.ADDEND_BUDGET), ("2", 28 * 150)):
-        # two workers: the two halves of the rows are folded in two threads; a small budget
-        # (28 bytes per row: 3 columns and 1 running variable): batches are folded in blocks
+        # a small budget (28 bytes per row: 3 columns and 1 running variable): batches are
+        # folded in blocks.  (With one running variable there is no thread pool; two threads
+        # are tested in test_compiled_kernel_equals_numpy_kernels.)
         monkeypatch.setenv("CUTSCAN_WORKERS", workers)
         monkeypatch.setattr(local, "ADDEND_BUDGET", budget)
         monkeypatch.setattr(local, "MIN_BLOCK", 97)
@@ -514,10 +515,11 @@ def test_compiled_decimal_codes_equal_numpy_codes(hint):
 
 
 @pytest.mark.parametrize("keys", [{}, dict(date="visit", split_seed=3)])
-def test_narrow_column_types_read_in_place(keys):
+def test_narrow_column_types_read_in_place(keys, monkeypatch):
     # The compiled pass converts integers of up to 32 bits and floats with no missing value as
-    # it copies them (and moves them to their period order); nullable, 64-bit and boolean
-    # columns go through the general conversion.  Both must give the numpy kernel's bins.
+    # it copies them (and moves them to their period order); a nullable column goes through
+    # the general conversion.  Both must give the numpy kernel's bins, and the narrow columns
+    # must not reach the general conversion.
     import pyarrow as pa
     df = irregular_table(1800, seed=9)
     rng = np.random.default_rng(9)
@@ -533,7 +535,16 @@ def test_narrow_column_types_read_in_place(keys):
     table = pa.table(cols)
     plan = dict(IRR, **keys)
     ref = bin_table(open_table(table), BinPlan(**plan, batch_rows=700, kernel="bincount"))
+    from scanner.engines import batchfold
+    general = []
+    real = batchfold.numeric
+
+    def counted(batch, name, *a, **k):
+        general.append(name)
+        return real(batch, name, *a, **k)
+    monkeypatch.setattr(batchfold, "numeric", counted)
     got = bin_table(open_table(table), BinPlan(**plan, batch_rows=700, kernel="compiled"))
+    assert set(general) == {"z"}                       # only the nullable column
     for r in IRR["running"]:
         assert_same_stats(got.stats[r], ref.stats[r])
     # and the counts against the raw rows: the int32 column's nulls are missing values
@@ -546,7 +557,8 @@ def test_compiled_quarters_equal_pyarrow_year_and_quarter(monkeypatch):
     # Reference: pyarrow's year() and quarter() functions (scanner.io.period_codes).  Dates
     # from 1700 to 2300 — before 1970, across leap days and century years — as date32, date64
     # and time stamps in every unit with times of day, all through the compiled loop (the
-    # reference is made unreachable for them); a time zone and nulls take pyarrow's route.
+    # reference is made unreachable for them); a time zone and nulls must take pyarrow's route
+    # (the compiled loop is made unreachable for them).
     import pyarrow as pa
     import scanner.io
     from scanner.engines.batchfold import quarters
@@ -561,13 +573,17 @@ def test_compiled_quarters_equal_pyarrow_year_and_quarter(monkeypatch):
         keep = np.abs(days) < 100_000 if unit == "ns" else slice(None)
         stamps = days[keep] * 86_400 * per + rng.integers(0, 86_400 * per, days[keep].size)
         arrays.append(pa.array(stamps, pa.timestamp(unit)))
-    arrays.append(pa.array(days * 86_400, pa.timestamp("s", tz="Pacific/Auckland")))
+    # west of UTC, local quarters differ from UTC ones near midnight at a quarter's start
+    arrays.append(pa.array(days * 86_400, pa.timestamp("s", tz="America/New_York")))
     arrays.append(pa.array(np.where(days % 7 == 0, None, days).tolist(), pa.date32()))
+    from scanner.engines import compiled
     for i, arr in enumerate(arrays):
         batch = pa.RecordBatch.from_arrays([arr], ["visit"])
         ref = period_codes(batch, "visit", "t")
         if i < 7:
             monkeypatch.setattr(scanner.io, "period_codes", None)      # the compiled loop only
+        else:
+            monkeypatch.setattr(compiled, "quarter_codes", None)       # pyarrow's route only
         assert_array_equal(quarters(batch, "visit", "t"), ref, err_msg=str(arr.type))
         monkeypatch.undo()
 
@@ -595,3 +611,52 @@ def test_compiled_period_and_half_keys_equal_numpy():
                         continue
                     assert_array_equal(got[0], ref[0])
                     assert got[1:] == ref[1:]
+
+
+
+def test_compiled_pass_long_batches_late_values_and_old_dates():
+    # Batches of 20,000 rows (each half folded in several blocks of rows), a running variable
+    # with no finite value in its first batch (its groups are skipped while the others fold),
+    # and visit dates before 1970 or missing: the numpy kernel's bins.
+    rng = np.random.default_rng(17)
+    n = 50_000
+    late = np.round(rng.normal(40, 8, n), 1)
+    late[:20_000] = np.nan
+    visit = pd.to_datetime("1965-06-30") + pd.to_timedelta(rng.integers(0, 9000, n), "D")
+    df = pd.DataFrame({"a": rng.integers(0, 90, n) * 1.0, "late": late,
+                       "d": (rng.random(n) < 0.3) * 1.0, "y": rng.normal(size=n),
+                       "visit": visit})
+    df.loc[rng.random(n) < 0.02, "visit"] = pd.NaT
+    plan = dict(running=("a", "late"), columns=("d", "y"), treatments=("d",),
+                pairs=(("d", "y"),), date="visit", split_seed=5, batch_rows=20_000)
+    ref = bin_table(open_table(df), BinPlan(**plan, kernel="bincount"))
+    got = bin_table(open_table(df), BinPlan(**plan, kernel="compiled"))
+    for r in ("a", "late"):
+        assert_same_stats(got.stats[r], ref.stats[r])
+    assert (ref.stats["a"].period[ref.stats["a"].period >= 0] < 1970 * 4).any()
+
+
+def test_tied_period_details_give_the_same_sums_under_any_hash_seed():
+    # Rows are folded in the order of the period detail most running variables keep; with a
+    # tie the first in plan order must win, not the order of a set (which follows the hash
+    # seed): the sums would then differ in their last bits between runs.
+    code = ("import hashlib, numpy as np\n"
+            "from tests.test_engines import irregular_table, IRR\n"
+            "from scanner.engines import BinPlan, bin_table\n"
+            "from scanner.io import open_table\n"
+            "plan = BinPlan(**dict(IRR, date='visit', split_seed=3, batch_rows=400,\n"
+            "    periods={'skew': 'year', 'half': 'quarter', 'five': 'none'}))\n"
+            "res = bin_table(open_table(irregular_table(3000, seed=2)), plan)\n"
+            "h = hashlib.sha256()\n"
+            "for r in IRR['running']:\n"
+            "    for f in ('sx', 'sxx', 's1', 's2', 'pa', 'pb', 'paa', 'pbb', 'pab'):\n"
+            "        h.update(np.ascontiguousarray(getattr(res.stats[r], f)).tobytes())\n"
+            "print(h.hexdigest())\n")
+    out = []
+    for seed in ("1", "4", "7"):       # seeds under which a set of the three puts each first
+        env = dict(__import__("os").environ, PYTHONHASHSEED=seed, PYTHONPATH=str(ROOT))
+        run = subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env,
+                             capture_output=True, text=True)
+        assert run.returncode == 0, run.stderr[-2000:]
+        out.append(run.stdout.strip())
+    assert len(set(out)) == 1

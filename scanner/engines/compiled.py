@@ -21,10 +21,11 @@ With period keys the rows are first moved to their period-half order
 
 On the 2-core machine we measure on, writing row-sized arrays is the slowest thing the pass
 does, so the loops write as few as they can: keys are computed again rather than stored, codes
-are int32 and land directly in the buffer the fold reads.  Each group's sums are accumulated in
-row order within each of two fixed halves of a batch's rows, so the totals equal the numpy
-kernels' up to the order of floating-point additions (agreement to 1e-9 is tested) and do not
-depend on the number of threads.  The loops release the GIL.  Compiled code is cached on disk
+are int32 and land directly in the buffer the fold reads.  Each group's n, Σx and Σx² are
+accumulated in row order over the batch, its other sums in row order within each of two fixed
+halves of the batch's rows, so the totals equal the numpy kernels' up to the order of
+floating-point additions (agreement to 1e-9 is tested) and do not depend on the number of
+threads.  The loops release the GIL.  Compiled code is cached on disk
 (``cache=True``): only the first run on a machine compiles.
 """
 from __future__ import annotations

@@ -39,7 +39,7 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
-from .batchfold import fold_together, into, moved, quarters, scratch
+from .batchfold import fold_together, into, moved, quarters, release, scratch
 from .compact import Layout
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
@@ -422,7 +422,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             details = [plan.period_of(r) for r in plan.running]
             by_detail = {d: _extra(d, quarter, half, m, kernel == "compiled")
                          for d in set(details)}
-            common = max(set(details), key=details.count)
+            common = max(details, key=details.count)     # a tie: the first in plan order
             dest = None
             if kernel == "compiled" and by_detail[common] is not None:
                 # Rows are folded in order of their (period, half) code: see
@@ -505,6 +505,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     finally:
         if pool is not None:
             pool.shutdown()
+        release()
     return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
 
 

@@ -3,9 +3,10 @@
 Adding a batch's BinnedStats to the totals used to mean concatenating both and re-sorting every
 (bin, period, half) key — with period and half keys, hundreds of thousands of keys per running
 variable and batch.  Here every (bin key, period, half) seen so far owns a slot (a row of one
-float64 matrix); a batch's groups find their slots with two hash look-ups (:meth:`SlotSums.slots`)
-and are added with one indexed ``+=``, or the compiled kernel adds each row straight into its
-group's slot (:mod:`scanner.engines.compiled`).  Nothing is sorted until the totals are read (:meth:`SlotSums.stats`), so the cost
+float64 matrix); a batch's groups find their slots through a dense (bin, period-half) table
+while it is small, by hashing after (:meth:`SlotSums.slots_grouped`), and are added with one
+indexed ``+=`` (the compiled kernel adds its per-group sums the same way,
+:func:`scanner.engines.compiled.scatter_add`).  Nothing is sorted until the totals are read (:meth:`SlotSums.stats`), so the cost
 of a batch grows with the number of its groups, not with the totals, and memory with the
 (bin, period, half) combinations that actually occur.  Counts are held as float64, exact up to
 2^53 rows.
