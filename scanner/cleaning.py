@@ -266,7 +266,7 @@ def _code_hits(arr, with_codes, codes, column, source, roles, reader=None) -> in
         s = pc.utf8_trim_whitespace(arr.cast(pa.string()))
         hits = int(pc.sum(pc.is_in(s, value_set=pa.array(sorted(text)))).as_py() or 0) if text else 0
         base = text_to_numbers(arr, column, source, roles.get(column, "scanned"), sorted(text),
-                               reader)
+                               reader, count=False)     # the cells were counted when parsed
         return hits + int(np.isnan(with_codes).sum() - np.isnan(base).sum())
     return int(np.isnan(with_codes).sum() - np.isnan(numeric_plain(arr)).sum())
 

@@ -140,8 +140,11 @@ def _toml_key(text: str) -> str:
 
 
 def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=(),
-                    reader: NumberReader | None = None) -> np.ndarray:
-    """Parse a text column as float64 or refuse it (see module docstring for the rules)."""
+                    reader: NumberReader | None = None, count: bool = True) -> np.ndarray:
+    """Parse a text column as float64 or refuse it (see module docstring for the rules).
+
+    ``count`` False parses without adding to ``reader.comma_cells`` (a second parse of the same
+    cells, to tell which a declared code made missing, must not count them again)."""
     text_codes, num_codes = split_codes(codes)
     s = pc.utf8_trim_whitespace(arr.cast(pa.string()))
     low = pc.utf8_lower(s)
@@ -163,7 +166,7 @@ def text_to_numbers(arr: pa.Array, column: str, source: str, role: str, codes=()
         mark = reader.decide(column, shown, role)
         if mark == ",":
             is_comma = pc.fill_null(pc.match_substring_regex(s, _DEC_COMMA), False)
-            hits = int(pc.sum(pc.and_(is_comma, present)).as_py() or 0)
+            hits = int(pc.sum(pc.and_(is_comma, present)).as_py() or 0) if count else 0
             reader.comma_cells[column] = reader.comma_cells.get(column, 0) + hits
             if hits and column not in reader.example:
                 reader.example[column] = pc.filter(s, pc.and_(is_comma, present))[0].as_py()

@@ -190,6 +190,19 @@ def test_decimal_commas_read_or_refused_never_misread(tmp_path, base):
         run(tmp_path, "y.parquet", lambda p: mixed.to_parquet(p, index=False))
 
 
+def test_decimal_commas_counted_once_with_a_declared_code(tmp_path, base):
+    # A declared missing code makes the cleaning parse a text column a second time (to tell
+    # which cells the code turned missing); its decimal commas must still be counted once.
+    df, _ = base
+    age = [f"{v:.1f}".replace(".", ",") for v in df.age]
+    age[::25] = ["999"] * len(age[::25])
+    comma = df.assign(age=age)
+    got = run(tmp_path, "c.parquet", lambda p: comma.to_parquet(p, index=False),
+              data="missing = [999]")
+    w = [x for x in got.warnings if x["kind"] == "decimal_comma"]
+    assert [(x["column"], x["count"]) for x in w] == [("age", len(df) - len(age[::25]))]
+
+
 def test_inputs_are_never_modified(tmp_path, base):
     df, _ = base
     path = tmp_path / "keep.csv"
