@@ -128,6 +128,14 @@ def test_honest_critical_value_matches_scipy_and_published_value():
     # The direct scipy.special call is the value scipy.stats.ncx2.ppf gives, to the last bit.
     for t in np.linspace(1e-6, 12.0, 301):
         assert honest_cv(t) == float(np.sqrt(sps.ncx2.ppf(0.95, 1, t * t)))
+    # Past t = 20 the closed form t + Φ⁻¹(0.95) (the other tail is below double precision):
+    # equal to scipy's noncentral χ² where that is finite, and finite where it is not (NaN
+    # from t ≈ 3·10^5 in scipy).
+    for t in (20.0 + 1e-9, 50.0, 1e3, 1e5):
+        assert_allclose(honest_cv(t), np.sqrt(sps.ncx2.ppf(0.95, 1, t * t)), rtol=1e-14)
+    for t in (1e6, 1e8):
+        assert_allclose(honest_cv(t), t + sps.norm.ppf(0.95), rtol=1e-15)
+    assert abs(honest_cv(20.0 - 1e-9) - honest_cv(20.0 + 1e-9)) < 1e-8       # continuous at 20
 
 
 def test_honest_interval_equals_rowlevel(design):

@@ -155,8 +155,11 @@ def fits_at(stats, columns, cutoffs, bandwidths, right_closed, kernel: str = "tr
     if P == 0:
         return out
     K_fn = kernel_fn(kernel)
+    unused: dict[str, list[int]] = {}      # positions of each name (a name may be listed twice)
+    for j, nm in enumerate(columns):
+        unused.setdefault(nm, []).append(j)
     for names, data in side_data_many(st, columns, 0.0):     # u = x here: centred below
-        idx = [list(columns).index(nm) for nm in names]
+        idx = [unused[nm].pop(0) for nm in names]
         x, n = data.u, data.n
         S1, S2 = data.s1.reshape(x.size, -1), data.s2.reshape(x.size, -1)
         good = np.isfinite(h) & (h > 0)

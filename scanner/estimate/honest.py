@@ -36,6 +36,11 @@ def honest_cv(t: float, alpha: float = 0.05) -> float:
         return float("nan")
     if t < 1e-10:
         return float(special.ndtri(1 - alpha / 2))
+    if t > 20.0:
+        # Φ(−c − t) < Φ(−40) is below double precision, so the quantile solves Φ(c − t) = 1 − α
+        # exactly: c = t + Φ⁻¹(1 − α).  (chndtrix returns NaN from t ≈ 3·10^5, which would
+        # leave a nearly noiseless fit without an interval.)
+        return float(t + special.ndtri(1 - alpha))
     # scipy.stats.ncx2.ppf computes chndtrix; called directly it gives the same values (tested)
     # without the distribution machinery's per-call cost (~0.1 ms, four calls per candidate).
     with np.errstate(over="ignore"):
