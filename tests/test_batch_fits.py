@@ -68,24 +68,40 @@ def test_fits_at_equal_one_fit_per_candidate(kernel, degree):
     assert None in reasons and len(reasons) >= 3
 
 
-def test_fits_at_equal_row_level_statsmodels_wls():
-    # Reference: statsmodels WLS of y on (1, D, v, D·v) over the rows inside each window,
-    # triangular weights, HC1 errors (Hahn, Todd & van der Klaauw 2001; White 1980).  Bins are
-    # exact support, so the binned fit is the row-level fit.
+# The kernels written out from their textbook definitions on |u| < 1 (scale does not matter to
+# WLS), not taken from scanner.estimate.kernels.
+ROW_KERNELS = {"triangular": lambda u: 1 - np.abs(u), "uniform": lambda u: np.ones_like(u),
+               "epanechnikov": lambda u: 0.75 * (1 - u * u)}
+
+
+@pytest.mark.parametrize("kernel", ["triangular", "uniform", "epanechnikov"])
+@pytest.mark.parametrize("degree", [0, 1, 2])
+def test_fits_at_equal_row_level_statsmodels_wls(kernel, degree):
+    # Reference: statsmodels WLS of y on (1, D, v^k, D·v^k for k = 1..degree) over the rows
+    # inside each window, kernel weights, HC1 errors (Hahn, Todd & van der Klaauw 2001; White
+    # 1980).  Bins are exact support, so the binned fit is the row-level fit.
     x, cols, st = _irregular(seed=3)
     pts = [(12.0, 6.0, True), (9.5, 5.0, False), (20.0, 8.0, True)]
-    got = fits_at(st, ["d", "skew", "gap"], *zip(*pts))
+    got = fits_at(st, ["d", "skew", "gap"], *zip(*pts), kernel=kernel, degree=degree)
+    checked = 0
     for (cut, h, rc), fits in zip(pts, got):
         for name, fit in zip(("d", "skew", "gap"), fits):
             y = cols[name]
             v = x - cut
-            w = np.clip(1 - np.abs(v) / h, 0, None)
-            keep = (w > 0) & np.isfinite(y)
-            D = (v >= 0 if rc else v > 0).astype(float)
-            X = np.column_stack([np.ones(keep.sum()), D[keep], v[keep], D[keep] * v[keep]])
+            inside = np.abs(v) < h
+            w = np.where(inside, ROW_KERNELS[kernel](np.where(inside, v / h, 0.0)), 0.0)
+            keep = inside & np.isfinite(y)
+            D = (v >= 0 if rc else v > 0).astype(float)[keep]
+            vk = v[keep]
+            X = np.column_stack([np.ones(keep.sum()), D]
+                                + [f for k in range(1, degree + 1) for f in (vk ** k, D * vk ** k)])
+            if not np.isfinite(fit.jump):
+                continue
             res = sm.WLS(y[keep], X, weights=w[keep]).fit(cov_type="HC1")
-            np.testing.assert_allclose(fit.jump, res.params[1], rtol=1e-9, atol=1e-12)
+            np.testing.assert_allclose(fit.jump, res.params[1], rtol=1e-8, atol=1e-12)
             np.testing.assert_allclose(fit.se, res.bse[1], rtol=1e-7)
+            checked += 1
+    assert checked >= 6
 
 
 def test_fits_at_singular_point_alone_is_not_estimable(monkeypatch):
