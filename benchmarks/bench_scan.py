@@ -195,9 +195,11 @@ def main() -> None:
             rel = (f"{BASELINE[mode]} | {r['seconds'] / b['seconds']:.1f}× | "
                    f"{r['cpu_seconds'] / b['cpu_seconds']:.1f}×" if b else "— | — | —")
             start = f"{r['start_seconds']:.2f}" if "start_seconds" in r else "—"
+            vs_read = (f"{r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}×"
+                       if base == base else "— | —")        # no "read" step in this round
             lines.append(f"| {n:,} | {mode} | {r['seconds']:.2f} | {r['range']} | "
                          f"{r['cpu_seconds']:.2f} | "
-                         f"{peak} | {r['seconds'] / base:.1f}× | {r['cpu_seconds'] / cbase:.1f}× | "
+                         f"{peak} | {vs_read} | "
                          f"{rel} | {r['cpu_seconds'] / plain:.2f}× | {start} | {r['load']} |")
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",

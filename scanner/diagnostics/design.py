@@ -29,7 +29,10 @@ def design_checks(stats, cand, spec, fit, data, cache: dict, binary: bool | None
     ``binary`` (the raw data's ``Variation.binary``) says whether the treatment is 0/1; ``data``
     may be variance-floored, which hides that.  ``raw`` is the side data before the floor: the
     placebo check needs it to see that uptake is constant around a placebo point (a floored
-    side looks spread out, and its placebos would count as finding nothing).
+    side looks spread out, and its placebos would count as finding nothing).  The real jump's
+    z comes from the floored data, so where a side varies a little a raw placebo can show a
+    larger z than the floored real one: that errs only towards a larger placebo p (more
+    caution), never towards a confident "usable".
     """
     c, h, rc = cand.cutoff, fit.bandwidth, cand.right_closed
     row = {}

@@ -22,8 +22,9 @@ With period keys the rows are first moved to their period-half order
 On the 2-core machine we measure on, writing row-sized arrays is the slowest thing the pass
 does, so the loops write as few as they can: keys are computed again rather than stored, codes
 are int32 and land directly in the buffer the fold reads.  Each group's n, Σx and Σx² are
-accumulated in row order over the batch, its other sums in row order within each of two fixed
-halves of the batch's rows, so the totals equal the numpy kernels' up to the order of
+accumulated over the batch in the order the pass holds its rows (period-half order when they
+are moved), its other sums in that order within each of two fixed halves of the batch's
+positions (not the held-out discovery halves), so the totals equal the numpy kernels' up to the order of
 floating-point additions (agreement to 1e-9 is tested) and do not depend on the number of
 threads.  The loops release the GIL.  Compiled code is cached on disk
 (``cache=True``): only the first run on a machine compiles.

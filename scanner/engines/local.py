@@ -268,8 +268,10 @@ class Accumulator:
             tried = True
         if out is None:
             if self.state == "exact" and x.size > 8 * f:
-                # The batch's first rows alone may hold more than fine_keys values: then it
-                # leaves exact bins without grouping a batch's worth of distinct floats first.
+                # The first 8·fine_keys rows as the pass holds them (in period-half order when
+                # rows are moved) may hold more than fine_keys values: then it leaves exact bins
+                # without grouping a batch's worth of distinct floats first.  Any such set of
+                # values certifies the same settled level (see _leave_exact).
                 head = np.unique(x[:8 * f][ok[:8 * f]])
                 if head.size > f:
                     self._leave_exact(np.union1d(head, self.sums.bin_keys))
@@ -543,7 +545,8 @@ def _threads() -> int:
 
 
 def _kernel(name: str) -> str:
-    """The kernel to run: "compiled" falls back to "sparse" where numba cannot be imported."""
+    """The kernel to run: "compiled" falls back to "sparse" where numba cannot be imported (it
+    is a dependency, so only on a broken install)."""
     if name != "compiled":
         return name
     try:
