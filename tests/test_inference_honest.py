@@ -341,3 +341,14 @@ def test_headline_of_a_discovered_row_whose_bias_cannot_be_bounded():
     assert h.interval == "none" and h.verdict == "inconclusive"
     assert h.verdict_reason.startswith("no test: too few support values")
     assert h.method.startswith("no test: too few support values")
+
+
+def test_every_estimation_module_imports_on_its_own():
+    # A fresh interpreter per module: honest and robust import each other, and importing
+    # honest first used to fail with a circular ImportError.
+    import subprocess
+    import sys
+    for mod in ("honest", "robust", "batch", "local", "bandwidth"):
+        run = subprocess.run([sys.executable, "-c", f"import scanner.estimate.{mod}"],
+                             capture_output=True, text=True)
+        assert run.returncode == 0, (mod, run.stderr[-500:])
