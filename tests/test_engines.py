@@ -485,6 +485,9 @@ def test_compiled_grid_keys_equal_numpy_keys(p, d):
     with np.errstate(over="ignore", invalid="ignore"):
         ref = np.where(ok, grid.keys(np.where(ok, x, 0.0), p, d), 0)
     assert_array_equal(grid.keys_compiled(x, ok, p, d), ref)
+    # into a reused buffer holding the last batch's keys: rows with no finite value get 0 too
+    dirty = np.full(x.size, 77, np.int64)
+    assert_array_equal(grid.keys_compiled(x, ok, p, d, out=dirty), ref)
     got_ok, nan, inf = compiled.finite_counts(x)
     assert_array_equal(got_ok, ok)
     assert (nan, inf) == (1, 2)

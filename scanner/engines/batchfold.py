@@ -43,23 +43,30 @@ def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
     for h in range(2):
         if kept[h] is None or kept[h].size < shape[0] * shape[1]:
             kept[h] = np.empty(shape[0] * shape[1] * 5 // 4)    # room for the next batches' groups
+        if kept[2 + h] is None or kept[2 + h].size < shape[0]:
+            kept[2 + h] = np.empty(shape[0] * 5 // 4, np.uint8)
 
     def half(h):
         M = kept[h][:shape[0] * shape[1]].reshape(shape)
-        seen = np.zeros(shape[0], np.uint8)
+        seen = kept[2 + h][:shape[0]]
+        seen[:] = 0
         compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
                            h * (m // 2), m if h else m // 2, M, seen)
         return M, seen
     (first, seen_a), (second, seen_b) = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
     compiled.merge_halves(first, seen_a, second, seen_b)
-    for r, p, o in zip(running, parts, off):
+
+    def to_totals(v):
+        # each variable adds to its own totals: the variables are spread over the threads
+        p = parts[v]
         if p is None:
-            acc[r].add(None)
-            continue
+            acc[running[v]].add(None)
+            return
         _, G, Mx, slot = p
-        Mc = first[o:o + G]
+        Mc = first[off[v]:off[v] + G]
         Mc[:, :3] = Mx
-        acc[r].add_groups(slot, Mc, L.src)
+        acc[running[v]].add_groups(slot, Mc, L.src)
+    list(pool.map(to_totals, range(len(parts))) if pool else map(to_totals, range(len(parts))))
 
 
 def moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:
@@ -100,13 +107,14 @@ def _exact_types():
 _EXACT = _exact_types()
 
 
-def scratch(m: int) -> np.ndarray:
-    """This thread's float64 buffer of ``m`` values, valid until the thread's next call (a
-    running variable's values are used only while its codes are formed; fresh pages for every
-    variable and batch cost more than the values)."""
-    buf = getattr(_SCRATCH, "buf", None)
+def scratch(m: int, dtype=np.float64) -> np.ndarray:
+    """This thread's buffer of ``m`` values of ``dtype``, valid until the thread's next call
+    for that type (a running variable's values and grid keys are used only while its codes are
+    formed; fresh pages for every variable and batch cost more than the values)."""
+    key = np.dtype(dtype).str
+    buf = _SCRATCH.__dict__.get(key)
     if buf is None or buf.size < m:
-        buf = _SCRATCH.buf = np.empty(m)
+        buf = _SCRATCH.__dict__[key] = np.empty(m, dtype)
     return buf[:m]
 
 

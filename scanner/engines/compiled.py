@@ -352,16 +352,17 @@ def finite_counts(x):
 
 
 @njit(nogil=True, cache=True)
-def grid_keys(x, ok, w, p, ten, pw, limit):
-    """:func:`scanner.engines.grid.keys` of the rows with ``ok`` (0 elsewhere), in one pass.
+def grid_keys(x, ok, w, p, ten, pw, limit, out):
+    """:func:`scanner.engines.grid.keys` of the rows with ``ok`` (0 elsewhere), in one pass,
+    written to ``out`` (int64, one per row).
 
     The same operations in the same order (edges ``k·p / ten`` when ``ten > 0``, else
     ``k·pw``), so the keys are identical; the numpy version makes ten temporaries of the batch.
     """
     m = x.size
-    out = np.zeros(m, np.int64)
     for i in range(m):
         if not ok[i]:
+            out[i] = 0
             continue
         v = x[i]
         k = np.floor(v / w)

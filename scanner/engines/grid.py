@@ -63,13 +63,17 @@ def keys(x: np.ndarray, p: float, d: int) -> np.ndarray:
     return np.clip(k, -KEY_LIMIT, KEY_LIMIT).astype(np.int64)
 
 
-def keys_compiled(x: np.ndarray, ok: np.ndarray, p: float, d: int) -> np.ndarray:
+def keys_compiled(x: np.ndarray, ok: np.ndarray, p: float, d: int,
+                  out: np.ndarray | None = None) -> np.ndarray:
     """:func:`keys` of the rows with ``ok`` and 0 elsewhere, with one compiled loop
-    (:func:`scanner.engines.compiled.grid_keys`; the same keys, tested)."""
+    (:func:`scanner.engines.compiled.grid_keys`; the same keys, tested), written to ``out``
+    (int64) when given."""
     from . import compiled
     ten = 10.0 ** d if d > 0 else 0.0
     pw = p * 10.0 ** (-d) if d <= 0 else 0.0
-    return compiled.grid_keys(x, ok, width_of(p, d), float(p), ten, pw, KEY_LIMIT)
+    if out is None:
+        out = np.empty(x.size, np.int64)
+    return compiled.grid_keys(x, ok, width_of(p, d), float(p), ten, pw, KEY_LIMIT, out)
 
 
 def power_grid(e: int) -> tuple[float, int]:

@@ -222,6 +222,7 @@ class Accumulator:
         self.level = None
         self.decimals = 0
         self.buffer = None        # where the compiled kernel writes this batch's group codes
+        self._mx = None           # its groups' n, Σx and Σx² (compiled kernel), reused
 
     @property
     def stats(self) -> BinnedStats:
@@ -242,7 +243,7 @@ class Accumulator:
         if self.state == "exact":
             return x, False, 1
         if _kernel(self.plan.kernel) == "compiled":
-            k = grid.keys_compiled(x, ok, *self.grid)
+            k = grid.keys_compiled(x, ok, *self.grid, out=scratch(x.size, np.int64))
         else:
             k = np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0)
         inn = grid.inner(self.forced, *self.grid)
@@ -362,7 +363,10 @@ class Accumulator:
         slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
                                        np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
                                        (np.arange(span) % 3 - 1).astype(np.int8), e)
-        Mx = np.zeros((b.size, 3))
+        if self._mx is None or self._mx.shape[0] < b.size:
+            self._mx = np.empty((b.size * 5 // 4, 3))     # kept: room for the next batches
+        Mx = self._mx[:b.size]
+        Mx[:] = 0.0
         compiled.add_n_x(group, x, Mx)
         return group, b.size, Mx, np.asarray(slot, np.int64)
 
@@ -400,7 +404,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
         pool = ThreadPoolExecutor(_threads())
     rows = 0
     ybuf = gbuf = None
-    kept = [None, None]       # the fold's two matrices, reused (batchfold.fold_together)
+    kept = [None] * 4         # the fold's two matrices and seen flags, reused (batchfold.fold_together)
     try:
         blocks = block_rows(plan) if kernel == "compiled" else None
         for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
@@ -504,11 +508,15 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             rows += m
             if progress:
                 progress(m)
+        # Settling sorts and regroups every (bin, period, half) slot of a variable: with
+        # period keys 10^5 of them for each continuous one.  Variables settle independently
+        # (numpy's sorts and gathers release the GIL), so both threads share the work.
+        done = list((pool.map if pool else map)(lambda a: a.finish().validate(), acc.values()))
     finally:
         if pool is not None:
             pool.shutdown()
         release()
-    return BinResult({r: a.finish().validate() for r, a in acc.items()}, rows, missing, nonfinite)
+    return BinResult(dict(zip(acc, done)), rows, missing, nonfinite)
 
 
 ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
