@@ -296,15 +296,15 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
     plan = dict(running=("x",), columns=("d", "flag", "y"), treatments=("d",),
                 pairs=(("d", "y"), ("flag", "y"), ("d", "flag")))
     ref = bin_table(open_table(df), BinPlan(**plan, batch_rows=500, kernel="bincount"))
-    from scanner.engines import local
+    from scanner.engines import local, resources
     real = local.in_blocks
-    for workers, budget in (("1", local.ADDEND_BUDGET), ("2", 28 * 150)):
+    for workers, budget in (("1", resources.ADDEND_BUDGET), ("2", 28 * 150)):
         # a small budget (28 bytes per row: 3 columns and 1 running variable): batches are
         # folded in blocks.  (With one running variable there is no thread pool; two threads
         # are tested in test_compiled_kernel_equals_numpy_kernels.)
         monkeypatch.setenv("CUTSCAN_WORKERS", workers)
-        monkeypatch.setattr(local, "ADDEND_BUDGET", budget)
-        monkeypatch.setattr(local, "MIN_BLOCK", 97)
+        monkeypatch.setattr(resources, "ADDEND_BUDGET", budget)
+        monkeypatch.setattr(resources, "MIN_BLOCK", 97)
         blocks = []
 
         def counted(batches, rows):
@@ -663,3 +663,4 @@ def test_tied_period_details_give_the_same_sums_under_any_hash_seed():
         assert run.returncode == 0, run.stderr[-2000:]
         out.append(run.stdout.strip())
     assert len(set(out)) == 1
+

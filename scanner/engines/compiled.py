@@ -38,17 +38,20 @@ _NO_X = np.zeros(0)
 
 
 @njit(nogil=True, cache=True)
-def local_groups(g, nb, ext, span, out):
+def local_groups(g, nb, ext, span, out, lut, first):
     """Batch-local group of each row (-1 where ``g == nb``: no finite running value), written
     to ``out`` (which may be ``g`` itself: each row's code is read before it is replaced).
 
     ``g``: bin code per row (0..nb-1, nb = dropped); ``ext``: period-half code per row
     (0..span-1), or an empty array when there are none.  Returns (group per row, the combined
-    code ``bin * span + ext`` of each group in order of first appearance).
+    code ``bin * span + ext`` of each group in order of first appearance, a view of ``first``).
+
+    ``lut`` (int32, at least ``nb * span`` entries, all -1) and ``first`` (int64, at least
+    ``min(rows, nb * span)``) are the caller's, kept between batches: fresh ones cost page
+    faults on every call (about 2 MB each for a continuous running variable with year keys).
+    The entries used are set back to -1 before returning.
     """
     m = g.size
-    lut = np.full(nb * span, -1, np.int64)
-    first = np.empty(min(m, nb * span), np.int64)
     k = 0
     keyed = ext.size > 0
     for i in range(m):
@@ -64,6 +67,8 @@ def local_groups(g, nb, ext, span, out):
             first[k] = c
             k += 1
         out[i] = s
+    for j in range(k):
+        lut[first[j]] = -1
     return out, first[:k]
 
 

@@ -40,6 +40,7 @@ from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
 from .batchfold import fold_together, into, moved, quarters, release, scratch
+from .resources import _kernel, _threads, block_rows, in_blocks
 from .compact import Layout
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums, unpack
@@ -223,6 +224,7 @@ class Accumulator:
         self.decimals = 0
         self.buffer = None        # where the compiled kernel writes this batch's group codes
         self._mx = None           # its groups' n, Σx and Σx² (compiled kernel), reused
+        self._lut = self._first = None    # compiled.local_groups's buffers, reused
 
     @property
     def stats(self) -> BinnedStats:
@@ -349,7 +351,8 @@ class Accumulator:
             if not np.may_share_memory(g, out):
                 out[:] = g
         elif nb * span <= LUT_MAX:
-            group, first = compiled.local_groups(g, nb, ext, span, out)
+            lut, first = self._local_buffers(nb * span, min(x.size, nb * span))
+            group, first = compiled.local_groups(g, nb, ext, span, out, lut, first)
         else:       # too many combinations for a dense table: hash them
             import pandas as pd
             live = g < nb
@@ -370,6 +373,18 @@ class Accumulator:
         compiled.add_n_x(group, x, Mx)
         return group, b.size, Mx, np.asarray(slot, np.int64)
 
+    def _local_buffers(self, cells: int, groups: int):
+        """:func:`compiled.local_groups`'s look-up table (all -1) and group list: kept between
+        batches up to ``KEEP_CELLS`` cells (fresh ones cost page faults on every batch), made
+        for the call above that."""
+        if cells > KEEP_CELLS:
+            return np.full(cells, -1, np.int32), np.empty(groups, np.int64)
+        if self._lut is None or self._lut.size < cells:
+            self._lut = np.full(min(cells * 5 // 4, KEEP_CELLS), -1, np.int32)  # room for more bins
+        if self._first is None or self._first.size < groups:
+            self._first = np.empty(min(groups * 5 // 4, KEEP_CELLS), np.int64)
+        return self._lut, self._first
+
     def add_groups(self, slot: np.ndarray, Mc: np.ndarray, src: np.ndarray) -> None:
         """Add a batch's per-group sums ``Mc`` ([n, Σx, Σx², addends]; ``src`` maps the totals'
         layout onto its columns) to the totals' ``slot`` rows."""
@@ -384,7 +399,8 @@ class Accumulator:
 
 
 _NO_EXT = np.zeros(0, np.int64)
-LUT_MAX = 1 << 22         # dense (bin, period-half) look-up table of one batch: at most 32 MB
+LUT_MAX = 1 << 22         # dense (bin, period-half) look-up table of one batch: at most 16 MB
+KEEP_CELLS = 1 << 20      # such tables up to 4 MB (and their group lists) are kept between batches
 
 
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
@@ -517,51 +533,6 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             pool.shutdown()
         release()
     return BinResult(dict(zip(acc, done)), rows, missing, nonfinite)
-
-
-ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
-MIN_BLOCK = 65_536              # rows: smaller blocks cost more in per-block overhead than memory
-
-
-def block_rows(plan: BinPlan) -> int:
-    """Rows folded at a time, so a block's tracked values (8 bytes per column) and group codes
-    (4 bytes per running variable) stay within ``ADDEND_BUDGET``.  Folding a batch in blocks
-    gives the same bins (no result depends on how rows are batched)."""
-    width = 8 * len(plan.columns) + 4 * len(plan.running)
-    return max(MIN_BLOCK, ADDEND_BUDGET // max(width, 1))
-
-
-def in_blocks(batches, rows: int | None):
-    """Each batch as equal slices of at most ``rows`` rows (zero-copy), in order."""
-    for b in batches:
-        if rows is None or b.num_rows <= rows:
-            yield b
-            continue
-        parts = -(-b.num_rows // rows)
-        size = -(-b.num_rows // parts)
-        for at in range(0, b.num_rows, size):
-            yield b.slice(at, size)
-
-
-def _threads() -> int:
-    """Threads for the compiled pass: ``CUTSCAN_WORKERS`` if set, else up to 2 (the cores)."""
-    import os
-    env = os.environ.get("CUTSCAN_WORKERS")
-    if env and env.strip().isdigit():
-        return max(1, int(env))
-    return max(1, min(2, os.cpu_count() or 1))
-
-
-def _kernel(name: str) -> str:
-    """The kernel to run: "compiled" falls back to "sparse" where numba cannot be imported (it
-    is a dependency, so only on a broken install)."""
-    if name != "compiled":
-        return name
-    try:
-        from . import compiled  # noqa: F401
-    except ImportError:
-        return "sparse"
-    return name
 
 
 def _extra(detail: str, quarter, half, m: int, fast: bool = False):

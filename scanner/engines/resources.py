@@ -1,0 +1,56 @@
+"""How the binning pass uses the machine: threads, kernel and row blocks.
+
+The compiled kernel (numba) folds in up to two threads; ``CUTSCAN_WORKERS`` sets their number,
+and the numpy kernels are the fallback where numba cannot be imported.  A batch is folded in
+slices small enough for its per-row arrays to stay within ``ADDEND_BUDGET``.
+"""
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from .plan import BinPlan
+
+ADDEND_BUDGET = 256 * 2 ** 20   # bytes of a batch's per-row arrays (tracked values, group codes)
+MIN_BLOCK = 65_536              # rows: smaller blocks cost more in per-block overhead than memory
+
+
+def block_rows(plan: "BinPlan") -> int:
+    """Rows folded at a time, so a block's tracked values (8 bytes per column) and group codes
+    (4 bytes per running variable) stay within ``ADDEND_BUDGET``.  Folding a batch in blocks
+    gives the same bins (no result depends on how rows are batched)."""
+    width = 8 * len(plan.columns) + 4 * len(plan.running)
+    return max(MIN_BLOCK, ADDEND_BUDGET // max(width, 1))
+
+
+def in_blocks(batches, rows: int | None):
+    """Each batch as equal slices of at most ``rows`` rows (zero-copy), in order."""
+    for b in batches:
+        if rows is None or b.num_rows <= rows:
+            yield b
+            continue
+        parts = -(-b.num_rows // rows)
+        size = -(-b.num_rows // parts)
+        for at in range(0, b.num_rows, size):
+            yield b.slice(at, size)
+
+
+def _threads() -> int:
+    """Threads for the compiled pass: ``CUTSCAN_WORKERS`` if set, else up to 2 (the cores)."""
+    import os
+    env = os.environ.get("CUTSCAN_WORKERS")
+    if env and env.strip().isdigit():
+        return max(1, int(env))
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+def _kernel(name: str) -> str:
+    """The kernel to run: "compiled" falls back to "sparse" where numba cannot be imported (it
+    is a dependency, so only on a broken install)."""
+    if name != "compiled":
+        return name
+    try:
+        from . import compiled  # noqa: F401
+    except ImportError:
+        return "sparse"
+    return name
