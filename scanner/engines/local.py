@@ -291,6 +291,12 @@ class Accumulator:
         if parts > 1:       # part j of grid bin k has key k + j/SUB
             g, u, nb = out
             out = (g, np.floor_divide(u, parts) + np.mod(u, parts) / grid.SUB, nb)
+        if self.state == "fine" and out[2] > f and self._coarsen(_base(np.asarray(out[1]))):
+            # The batch alone held more grid bins than the pass keeps: the grid is coarsened
+            # now, as add() would do right after folding it, and the batch is coded again at
+            # the level it ends at (a skewed lab value's first batch had 3·10^5 groups with
+            # year keys, its later ones 5·10^4: the fold's matrices are sized by the first).
+            return self.codes(x, ok)
         return out
 
     def _leave_exact(self, vals: np.ndarray) -> None:
@@ -319,14 +325,28 @@ class Accumulator:
         holds too many bins."""
         if raw is not None:
             self.sums.add_raw(*raw)
+        self._coarsen()
+
+    def _coarsen(self, batch=None) -> bool:
+        """Coarsen the power-of-ten grid while the bins held (and the grid bins ``batch`` of a
+        batch about to be folded) are more than ``fine_keys``; True if it was coarsened."""
+        f = self.plan.fine_keys
+        if self.state != "fine" or (batch is None and self.sums.n_keys <= f):
+            return False
+        keys = np.unique(_base(self.sums.bin_keys))
+        if batch is not None:
+            keys = np.union1d(keys, batch)
+        coarsened = False
         # Whole grid bins are counted, not the parts a declared cutoff splits one into (as the
         # Spark engine counts them): declaring a cutoff must not coarsen the grid.
-        while (self.state == "fine" and self.sums.n_keys > self.plan.fine_keys
-               and np.unique(_base(self.sums.bin_keys)).size > self.plan.fine_keys):
+        while keys.size > f:
             self.level += 1
             self.grid = grid.power_grid(self.level)
             self.stats = regroup(self.stats, np.floor_divide(_base(self.stats.key), 10),
                                  *self.grid, self.forced)
+            keys = np.unique(np.floor_divide(keys, 10))
+            coarsened = True
+        return coarsened
 
     def groups(self, codes, x: np.ndarray, extra, out: np.ndarray):
         """A batch's groups for the compiled kernel (:mod:`.compiled`), or None with no finite
