@@ -29,7 +29,8 @@ from .engines.plan import weighted_quantile
 from .units import PLAUSIBLE, plausible_range, units_for
 
 KINDS = ("mixed_units", "sentinel_values", "decimal_comma", "cutoff_off_lattice",
-         "rule_outside_data", "repeated_units", "no_variation", "value_map", "wrong_unit")
+         "rule_outside_data", "repeated_units", "no_variation", "value_map", "wrong_unit",
+         "period_dates")
 SENTINELS = (-1.0, -9.0, -99.0, -999.0, -9999.0, 8.0, 9.0, 88.0, 99.0, 888.0, 999.0, 8888.0,
              9999.0, 99999.0)
 PROFILE_ROWS = 200_000
@@ -439,3 +440,24 @@ def note_warnings(notes: list[str]) -> tuple[list[dict], list[str]]:
         else:
             rest.append(n)
     return out, rest
+
+
+def period_warnings(problems: dict | None) -> list[dict]:
+    """``period_dates``: observation-period rows (long layout) that cannot be observed time —
+    a start or end date missing, or an end before the start — and were left out of it.  An
+    index row whose only period was such a row is counted in ``data.dropped`` as "window not
+    observed"; this says why, so a swapped pair of date columns is not read as sparse follow-up."""
+    if not problems:
+        return []
+    out = []
+    for key, what in (("reversed", "end before they start"),
+                      ("undated", "lack a start or end date")):
+        k = problems[key]
+        if k:
+            out.append(warning(
+                "period_dates", None,
+                f"{problems['source']}: {k:,} of {problems['rows']:,} observation-period rows "
+                f"{what}; they were left out of observed time, so index rows they alone would "
+                "cover count as 'window not observed' in data.dropped. Check the period's date "
+                "columns (swapped start and end?) and fix or drop those rows.", k))
+    return out

@@ -261,9 +261,12 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
         data_info["dropped"] = layout_dropped(data_info["dropped"], spec, registry)
         data_info["index_rows"] = [{"column": k, "rows": v}
                                   for k, v in registry.index_rows().items()]
+        periods = registry.period_problems()
         registry.close()
     add_cleaning_info(data_info, coded, spec, no_unit)
     warnings = collect_warnings(spec, checks, cleaning, binned.stats, rules, binned.rows_read)
+    if registry is not None:
+        warnings += quality.period_warnings(periods)
     return ScanResult(spec, rows, data_info, binned.stats, notes,
                       dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), search,
                       warnings)

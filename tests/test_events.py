@@ -140,6 +140,46 @@ def test_index_rows_and_windows_equal_pandas(index, observed):
         reg.close()
 
 
+def test_periods_with_end_before_start_or_no_date_are_left_out_and_reported(tmp_path):
+    # A swapped pair of period dates (end before start) and a missing end cannot be observed
+    # time: the rows they alone would cover are dropped as "window not observed", exactly as
+    # the pandas reference does without those period rows, and the scan says how many there
+    # were (warning period_dates) instead of leaving the user to guess at sparse follow-up.
+    from scanner import quality
+    meas, ev, periods = registry(seed=11)
+    bad = periods.copy()
+    bad.loc[:29, ["start", "end"]] = bad.loc[:29, ["end", "start"]].to_numpy().copy()
+    bad.loc[40:46, "end"] = pd.NaT
+    bad.loc[47:48, "start"] = pd.NaT
+    want, _ = reference(meas, ev, bad[(bad.end >= bad.start)], "first", True)
+    reg, got = build(meas, ev, bad, "first", True)
+    try:
+        assert len(got) == len(want) and len(want) < len(reference(meas, ev, periods)[0])
+        assert sorted(got.pid) == sorted(want.pid)
+        problems = reg.period_problems()
+        assert (problems["rows"], problems["undated"], problems["reversed"]) == (400, 9, 30)
+    finally:
+        reg.close()
+    warned = quality.period_warnings(problems)
+    assert [(w["kind"], w["column"], w["count"]) for w in warned] == \
+        [("period_dates", None, 30), ("period_dates", None, 9)]
+    assert "30 of 400" in warned[0]["message"] and "end before they start" in warned[0]["message"]
+    # The scan carries them into its warnings (results.json, terminal, report).
+    import scanner
+    bad.to_parquet(tmp_path / "p.parquet")
+    write_small(tmp_path / "spec.toml", meas, ev,
+                data='periods = "p.parquet"\nperiod_start = "start"\nperiod_end = "end"\n')
+    res = scanner.scan(tmp_path / "spec.toml")
+    assert [(w["kind"], w["count"]) for w in res.warnings if w["kind"] == "period_dates"] == \
+        [("period_dates", 30), ("period_dates", 9)]
+    # Without observation periods, nothing to say.
+    reg, _ = build(meas, ev, periods, "first", False)
+    try:
+        assert reg.period_problems() is None and quality.period_warnings(None) == []
+    finally:
+        reg.close()
+
+
 def test_window_ends_inclusive_and_day_zero():
     """Hand-made: events on day 0, day 180 and day 181; a prior event on day −1."""
     meas = pd.DataFrame({"pid": ["a", "b", "c", "d"], "on": [DAY0] * 4, "test": "HBA1C",
@@ -305,6 +345,8 @@ def test_spark_sql_equals_duckdb(tmp_path):
     from scanner.events.spark_sql import SparkRegistry
     from scanner.io import open_table
     meas, ev, periods = registry(seed=5, n=300)
+    periods.loc[:4, ["start", "end"]] = periods.loc[:4, ["end", "start"]].to_numpy().copy()  # swapped
+    periods.loc[10:12, "end"] = pd.NaT
     raw = {**SPEC, "data": {**SPEC["data"], "periods": "p.parquet", "period_start": "start",
                             "period_end": "end"}}
     lay = parse_layout(raw, "<t>", ("female",))
@@ -320,6 +362,9 @@ def test_spark_sql_equals_duckdb(tmp_path):
         pd.testing.assert_frame_equal(a.reset_index(drop=True), b.reset_index(drop=True),
                                       check_dtype=False)
         assert duck.dropped() == sp.dropped() and duck.index_rows() == sp.index_rows()
+        want = {"rows": 300, "undated": 3, "reversed": 5}
+        assert {k: duck.period_problems()[k] for k in want} == want
+        assert {k: sp.period_problems()[k] for k in want} == want
         plan = BinPlan(running=("hba1c",), columns=("mtf", "any_late", "female"),
                        treatments=("mtf", "any_late"), date="on")
         s1 = bin_table(open_table(pa.Table.from_batches(list(duck.batches(cols, 10_000)))), plan).stats["hba1c"]

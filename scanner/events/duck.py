@@ -13,7 +13,8 @@ from pathlib import Path
 
 from ..errors import InputError
 from .layout import Layout
-from .sql import DIALECTS, analysis_steps, dropped_entries, dropped_sql, literal, scan_sql, view_sql
+from .sql import (DIALECTS, analysis_steps, dropped_entries, dropped_sql, literal, period_check_sql,
+                  scan_sql, view_sql)
 
 MEMORY_LIMIT = "1GB"       # DuckDB spills to disk above this; keeps the whole scan near 2 GB
 
@@ -217,6 +218,18 @@ class Registry:
         if rows is None:
             rows = self.con.execute(dropped_sql(self.lay)).fetchall()
         return dropped_entries(self.lay, rows)
+
+    def period_problems(self) -> dict | None:
+        """Observation-period rows left out of observed time (``sql.period_check_sql``), with
+        the file they come from; None without observation periods."""
+        lay = self.lay
+        if not (lay.periods or lay.omop):
+            return None
+        n, undated, reversed_ = self.con.execute(period_check_sql()).fetchone()
+        src = (str(Path(self.name) / "observation_period") if lay.omop
+               else lay.periods or "observation periods")
+        return {"source": src, "rows": int(n or 0), "undated": int(undated or 0),
+                "reversed": int(reversed_ or 0)}
 
     def index_rows(self) -> dict:
         """Index rows per running variable (before observed-time drops)."""

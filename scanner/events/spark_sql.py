@@ -8,7 +8,8 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import ColumnNotFoundError, InputError
-from .sql import OMOP_TABLES, analysis_sql, scan_sql, dropped_entries, dropped_sql, omop_view_sql, view_sql
+from .sql import (OMOP_TABLES, analysis_sql, scan_sql, dropped_entries, dropped_sql, omop_view_sql,
+                  period_check_sql, view_sql)
 
 
 def _read(spark, path: Path, what: str):
@@ -68,6 +69,16 @@ class SparkRegistry:
     def dropped(self) -> list[dict]:
         rows = [tuple(r) for r in self.spark.sql(dropped_sql(self.lay, "_analysis", "spark")).collect()]
         return dropped_entries(self.lay, rows)
+
+    def period_problems(self) -> dict | None:
+        """As the DuckDB registry's: observation-period rows left out of observed time."""
+        lay = self.lay
+        if not (lay.periods or lay.omop):
+            return None
+        n, undated, reversed_ = tuple(self.spark.sql(period_check_sql()).collect()[0])
+        src = "observation_period" if lay.omop else (lay.periods or "observation periods")
+        return {"source": src, "rows": int(n or 0), "undated": int(undated or 0),
+                "reversed": int(reversed_ or 0)}
 
     def index_rows(self) -> dict:
         rows = self.spark.sql("SELECT _score, count(*) FROM _analysis GROUP BY _score").collect()

@@ -270,12 +270,20 @@ def view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
                   f"FROM {rels['events']} WHERE {q(lay.events_date)} IS NOT NULL")}
     out.update(code_map(lay))
     if "periods" in rels:
-        out["obs"] = merged_periods(
-            f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
-            f"{d.day(q(lay.period_start))} AS start_day, {d.day(q(lay.period_end))} AS end_day "
-            f"FROM {rels['periods']} WHERE {q(lay.period_start)} IS NOT NULL "
-            f"AND {q(lay.period_end)} IS NOT NULL")
+        out["obs_rows"] = (f"SELECT CAST({q(lay.person)} AS STRING) AS person, "
+                           f"{d.day(q(lay.period_start))} AS start_day, "
+                           f"{d.day(q(lay.period_end))} AS end_day FROM {rels['periods']}")
+        out["obs"] = merged_periods("SELECT person, start_day, end_day FROM obs_rows")
     return out
+
+
+def period_check_sql() -> str:
+    """Observation-period rows (view ``obs_rows``) that cannot count as observed time: (rows,
+    rows missing a start or end date, rows ending before they start).  :func:`merged_periods`
+    leaves both out; the scan says how many (``quality.period_warnings``)."""
+    return ("SELECT count(*) AS n, "
+            "sum(CASE WHEN start_day IS NULL OR end_day IS NULL THEN 1 ELSE 0 END) AS undated, "
+            "sum(CASE WHEN end_day < start_day THEN 1 ELSE 0 END) AS reversed FROM obs_rows")
 
 
 def merged_periods(periods: str) -> str:
@@ -328,10 +336,11 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
         ev += (f" UNION ALL SELECT CAST(person_id AS STRING) AS person, {d.day('procedure_date')} AS day, "
                f"CAST(procedure_concept_id AS STRING) AS code FROM {rels['procedure_occurrence']} "
                f"WHERE procedure_date IS NOT NULL")
-    obs = merged_periods(
-        f"SELECT CAST(person_id AS STRING) AS person, {d.day('observation_period_start_date')} "
-        f"AS start_day, {d.day('observation_period_end_date')} AS end_day "
-        f"FROM {rels['observation_period']}")
+    obs_rows = (f"SELECT CAST(person_id AS STRING) AS person, "
+                f"{d.day('observation_period_start_date')} AS start_day, "
+                f"{d.day('observation_period_end_date')} AS end_day "
+                f"FROM {rels['observation_period']}")
+    obs = merged_periods("SELECT person, start_day, end_day FROM obs_rows")
     own = " UNION ALL ".join(f"SELECT {j} AS j, {int(c)} AS concept"
                              for j, u in enumerate(lay.uptakes) for c in u.concepts)
     uc = f"SELECT j, CAST(concept AS STRING) AS code FROM ({own}) o"
@@ -339,7 +348,8 @@ def omop_view_sql(lay: Layout, dialect: str, rels: dict) -> dict:
         uc = (f"SELECT DISTINCT j, code FROM ({uc} UNION ALL SELECT o.j, "
               f"CAST(a.descendant_concept_id AS STRING) AS code FROM ({own}) o "
               f"JOIN {rels['concept_ancestor']} a ON a.ancestor_concept_id = o.concept) z")
-    return {"meas": meas, "ev": ev, "obs": obs, "uc": uc, "ucp": code_map(lay)["ucp"]}
+    return {"meas": meas, "ev": ev, "obs_rows": obs_rows, "obs": obs, "uc": uc,
+            "ucp": code_map(lay)["ucp"]}
 
 
 
