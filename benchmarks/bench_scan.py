@@ -14,6 +14,9 @@ measurement runs in a fresh process so its peak resident memory is its own:
   them (``scanner.io.numeric``) — the fair baseline of a pass without periods;
 - ``read+convert dated``: the same plus the date turned into calendar quarters
   (``scanner.io.period_codes``) — the baseline of a pass that keeps periods;
+- ``read+convert jemalloc``: ``read+convert`` with arrow's jemalloc pool, the pool the pass
+  decodes its batches into (``scanner.engines.resources.reading_pool``) — shown to check that
+  the baselines, read with pyarrow's default pool, are the faster way to read;
 - ``bin plain``: the binning pass with no period and no half keys (its one-time start — importing
   numba and loading the compiled loops from the on-disk cache — is timed apart, on 5,000 rows,
   and shown in its own column: it does not grow with the rows);
@@ -40,8 +43,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_data as bd  # noqa: E402
 
 SHAPE = (10, 3, 5)     # running variables, treatments, covariates
-MODES = ("read", "read+convert", "read+convert dated", "bin plain", "bin keys", "bin quarters",
-         "duckdb", "scan", "scan no date")
+MODES = ("read", "read+convert", "read+convert dated", "read+convert jemalloc", "bin plain",
+         "bin keys", "bin quarters", "duckdb", "scan", "scan no date")
 # The fair baseline of each pass: reading the columns it reads and converting them into the
 # arrays it works on (float64 values; calendar quarters of the date where it keeps periods).
 BASELINE = {"bin plain": "read+convert", "bin keys": "read+convert dated",
@@ -95,6 +98,9 @@ def measure(mode: str, folder: str, batch_rows: int, extra: str = "{}") -> dict:
     elif mode.startswith("read+convert"):
         from scanner.io import numeric, period_codes
         dated = mode.endswith("dated")
+        if mode.endswith("jemalloc"):
+            import pyarrow as pa
+            pa.set_memory_pool(pa.jemalloc_memory_pool())
         use = cols if dated else cols[:-1]
 
         def run():

@@ -150,6 +150,29 @@ def test_unknown_engine_is_an_input_error():
         bin_table(open_table(small_table(20)), BinPlan(("age",), ("d",)), engine="spork")
 
 
+def test_pass_reads_into_jemalloc_and_restores_the_pool(parquet_file, monkeypatch):
+    # The pass decodes its batches into arrow's jemalloc pool (mimalloc's returned pages cost
+    # more kernel time than the folding), and only while it runs; a pool the user chose
+    # through ARROW_DEFAULT_MEMORY_POOL is kept.
+    try:
+        pa.jemalloc_memory_pool()
+    except NotImplementedError:
+        pytest.skip("this pyarrow build has no jemalloc")
+    before = pa.default_memory_pool()
+    seen = []
+    plan = BinPlan(**PLAN, batch_rows=100)
+    monkeypatch.delenv("ARROW_DEFAULT_MEMORY_POOL", raising=False)
+    bin_table(open_table(parquet_file), plan,
+              progress=lambda m: seen.append(pa.default_memory_pool().backend_name))
+    assert seen == ["jemalloc"] * 3
+    assert pa.default_memory_pool().backend_name == before.backend_name
+    seen.clear()
+    monkeypatch.setenv("ARROW_DEFAULT_MEMORY_POOL", "system")
+    bin_table(open_table(parquet_file), plan,
+              progress=lambda m: seen.append(pa.default_memory_pool().backend_name))
+    assert seen == [before.backend_name] * 3
+
+
 def test_pandas_scan_never_imports_pyspark():
     code = ("import sys, numpy as np, pandas as pd, scanner\n"
             "rng = np.random.default_rng(0); x = rng.integers(-30, 31, 3000).astype(float)\n"

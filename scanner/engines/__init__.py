@@ -13,7 +13,9 @@ def bin_table(table, plan: BinPlan, engine: str = "local", progress=None) -> Bin
     """Run the one pass over ``table`` with the chosen engine."""
     if engine == "local":
         from .local import bin_local
-        return bin_local(table, plan, progress=progress)
+        from .resources import reading_pool
+        with reading_pool():
+            return bin_local(table, plan, progress=progress)
     if engine == "spark":
         from .spark import bin_spark  # imported only here: pyspark is optional
         return bin_spark(table, plan, progress=progress)
