@@ -348,6 +348,27 @@ def test_compiled_kernel_known_sums_per_batch(monkeypatch):
     assert_array_equal(st.pn[:, 1], both.groupby(df.x).sum().to_numpy())
 
 
+def test_local_groups_numbered_by_period_half_then_bin():
+    # Batch-local groups are numbered period-half by period-half, bins in order within each:
+    # the totals give the first batch its slots in that order, so later batches are added
+    # walking forwards.  Each row's group is its (bin, period-half) cell; dropped rows get -1.
+    from scanner.engines import compiled
+    rng = np.random.default_rng(4)
+    nb, span, m = 7, 5, 400
+    g = rng.integers(0, nb + 1, m).astype(np.int32)          # nb: no finite running value
+    ext = rng.integers(0, span, m).astype(np.int64)
+    lut = np.full(nb * span, -1, np.int32)
+    out, first = compiled.local_groups(g, nb, ext, span, np.empty(m, np.int32), lut,
+                                       np.empty(nb * span, np.int64))
+    live = g < nb
+    cells = g[live].astype(np.int64) * span + ext[live]
+    want = np.array(sorted(set(cells.tolist()), key=lambda c: (c % span, c // span)))
+    assert_array_equal(first, want)
+    assert_array_equal(first[out[live]], cells)
+    assert (out[~live] == -1).all()
+    assert (lut == -1).all()                                  # left ready for the next batch
+
+
 def test_compiled_kernel_without_dense_table(monkeypatch):
     # Too many (bin, period, half) combinations for the dense table: hashed instead, same bins.
     from scanner.engines import local

@@ -7,7 +7,7 @@ Per running variable and batch:
    the rows where numpy would make a temporary array per operation;
 2. :func:`local_groups` gives each row the batch-local group of its (bin, period-half) pair
    through a dense look-up table of ``bins × period-half codes`` (both small ranges within a
-   batch), numbering groups in order of first appearance (without period or half keys the bin
+   batch), numbering groups by period-half code, then bin (without period or half keys the bin
    codes are the groups and this loop is skipped);
 3. :func:`add_n_x` adds each row's 1, x and x² to its group.
 
@@ -44,7 +44,13 @@ def local_groups(g, nb, ext, span, out, lut, first):
 
     ``g``: bin code per row (0..nb-1, nb = dropped); ``ext``: period-half code per row
     (0..span-1), or an empty array when there are none.  Returns (group per row, the combined
-    code ``bin * span + ext`` of each group in order of first appearance, a view of ``first``).
+    code ``bin * span + ext`` of each group, a view of ``first``).
+
+    Groups are numbered period-half by period-half, bins in order within each (the bin codes
+    are in order of their keys): the totals give a variable's first batch its slots in the
+    same order, so adding every later batch to them (:func:`scatter_add`) walks the totals
+    forwards instead of jumping between distant rows (numbered in order of first appearance,
+    the 10M-row keyed pass spent 0.5 s of CPU there).
 
     ``lut`` (int32, at least ``nb * span`` entries, all -1) and ``first`` (int64, at least
     ``min(rows, nb * span)``) are the caller's, kept between batches: fresh ones cost page
@@ -52,21 +58,22 @@ def local_groups(g, nb, ext, span, out, lut, first):
     The entries used are set back to -1 before returning.
     """
     m = g.size
-    k = 0
     keyed = ext.size > 0
+    for i in range(m):                      # mark the (bin, period-half) cells that occur
+        b = g[i]
+        if b < nb:
+            lut[b * span + (ext[i] if keyed else 0)] = -2
+    k = 0
+    for e in range(span):
+        for b in range(nb):
+            c = b * span + e
+            if lut[c] == -2:
+                lut[c] = k
+                first[k] = c
+                k += 1
     for i in range(m):
         b = g[i]
-        if b >= nb:
-            out[i] = -1
-            continue
-        c = b * span + (ext[i] if keyed else 0)
-        s = lut[c]
-        if s < 0:
-            s = k
-            lut[c] = k
-            first[k] = c
-            k += 1
-        out[i] = s
+        out[i] = -1 if b >= nb else lut[b * span + (ext[i] if keyed else 0)]
     for j in range(k):
         lut[first[j]] = -1
     return out, first[:k]
