@@ -369,6 +369,21 @@ def test_local_groups_numbered_by_period_half_then_bin():
     assert (lut == -1).all()                                  # left ready for the next batch
 
 
+@pytest.mark.parametrize("kernel", ["compiled", "bincount"])
+@pytest.mark.parametrize("bad", [2.0, np.inf, -1.0, 0.5])
+def test_treatment_not_zero_one_is_refused_by_every_kernel(kernel, bad):
+    # The compiled pass checks treatments in one compiled loop; it must refuse what numpy's
+    # check refuses (anything but 0, 1 and missing, infinities included) with the same message.
+    df = pd.DataFrame({"x": np.arange(50.0), "d": np.r_[np.zeros(30), np.ones(19), bad]})
+    df.loc[3, "d"] = np.nan                                   # missing is allowed
+    plan = BinPlan(running=("x",), columns=("d",), treatments=("d",), kernel=kernel)
+    with pytest.raises(InputError, match="treatment column 'd' must be 0/1.*values seen: ") as e:
+        bin_table(open_table(df), plan)
+    assert f"{bad:g}" in str(e.value).split("values seen: ")[1]
+    df.loc[49, "d"] = 1.0
+    assert bin_table(open_table(df), plan).rows_read == 50
+
+
 def test_compiled_kernel_without_dense_table(monkeypatch):
     # Too many (bin, period, half) combinations for the dense table: hashed instead, same bins.
     from scanner.engines import local

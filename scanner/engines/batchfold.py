@@ -5,6 +5,7 @@
 - :func:`moved`: a row array in that order;
 - :func:`scratch`: a per-thread buffer for a running variable's values;
 - :func:`quarters`: calendar quarters of the date column in one compiled loop;
+- :func:`check_treatment`: a treatment's values checked to be 0/1 in one compiled loop;
 - :func:`fold_together`: every running variable's addends added in one compiled pass per half
   of the rows (:func:`scanner.engines.compiled.fold_rows`).
 
@@ -17,7 +18,7 @@ import threading
 
 import numpy as np
 
-from ..io import numeric
+from ..io import check_binary, numeric
 from .compact import Layout
 
 
@@ -96,6 +97,14 @@ def into(batch, name: str, source: str, role: str, out: np.ndarray, dest) -> np.
     else:
         compiled.scatter_rows(src.reshape(1, -1), dest, out.reshape(1, -1))
     return out
+
+
+def check_treatment(values: np.ndarray, column: str, source: str) -> None:
+    """:func:`scanner.io.check_binary` in one compiled pass over the values (numpy's check makes
+    three temporaries of the batch); its message where a value is not 0/1."""
+    from . import compiled
+    if not compiled.zero_one(values):
+        check_binary(values, column, source)
 
 
 def _exact_types():

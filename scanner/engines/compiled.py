@@ -80,6 +80,16 @@ def local_groups(g, nb, ext, span, out, lut, first):
 
 
 @njit(nogil=True, cache=True)
+def zero_one(values):
+    """Every value is 0, 1 or NaN (a treatment's values; stops at the first other)."""
+    for i in range(values.size):
+        v = values[i]
+        if v != 0.0 and v != 1.0 and v == v:
+            return False
+    return True
+
+
+@njit(nogil=True, cache=True)
 def binary_columns(Y, known):
     """Per tracked column of a batch: every finite value is 0 or 1 (stops at the first other;
     columns with ``known`` set were checked already)."""

@@ -39,7 +39,7 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from . import grid
 from .plan import BinPlan, BinResult
 from .codes import _codes, _codes_compiled
-from .batchfold import fold_together, into, moved, quarters, release, scratch
+from .batchfold import check_treatment, fold_together, into, moved, quarters, release, scratch
 from .resources import _kernel, _threads, block_rows, in_blocks
 from .compact import Layout
 from .settle import base_index as _base, regroup, settle
@@ -492,7 +492,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             cols = dict(zip(plan.columns, pool.map(convert, range(k)) if pool
                             else map(convert, range(k))))
             for t in plan.treatments:
-                check_binary(cols[t], t, table.name)
+                (check_binary if Y is None else check_treatment)(cols[t], t, table.name)
             if kernel == "compiled":
                 from . import compiled
                 pos = {c: j for j, c in enumerate(plan.columns)}
