@@ -384,6 +384,32 @@ def test_treatment_not_zero_one_is_refused_by_every_kernel(kernel, bad):
     assert bin_table(open_table(df), plan).rows_read == 50
 
 
+@pytest.mark.parametrize("kernel", ["compiled", "bincount"])
+def test_many_cutoffs_inside_one_bin(kernel):
+    # Part j of a bin split at cutoffs has key k + j/SUB: with SUB or more cutoffs inside one
+    # bin it would reach the next bin's keys and mix rows of two bins silently.  Up to the
+    # limit every row is in the bin its bounds say; beyond it the pass refuses, saying why.
+    rng = np.random.default_rng(1)
+    x = rng.uniform(0, 1, 20_000)
+    x[:40] = 0.5 + rng.uniform(0, 2e-4, 40)              # rows among and above the cutoffs
+    df = pd.DataFrame({"x": x, "d": (x > 0.5) * 1.0})
+
+    def plan(count):
+        return BinPlan(running=("x",), columns=("d",), treatments=("d",), kernel=kernel,
+                       edges={"x": tuple((0.5 + i * 1e-7, True) for i in range(count))})
+    st = bin_table(open_table(df), plan(300)).stats["x"]
+    lo, hi = st.bounds()
+    inside = (x[None, :] >= lo[:, None]) & (x[None, :] < hi[:, None])
+    assert_array_equal(st.n, inside.sum(axis=1))
+    assert_allclose(st.sx, (inside * x).sum(axis=1), rtol=1e-12)
+    cuts = np.array([0.5 + i * 1e-7 for i in range(300)])
+    for b in np.flatnonzero((hi > 0.5) & (lo < 0.5003)):    # no bin holds rows from both sides
+        side = np.searchsorted(cuts, x[inside[b]], "right")  # of a cutoff (x >= c: above it)
+        assert side.min() == side.max()
+    with pytest.raises(InputError, match=r"cutoffs .* fall inside one bin .* at most 1,023 can"):
+        bin_table(open_table(df), plan(1100))
+
+
 def test_compiled_kernel_without_dense_table(monkeypatch):
     # Too many (bin, period, half) combinations for the dense table: hashed instead, same bins.
     from scanner.engines import local

@@ -267,6 +267,22 @@ def test_rule_errors(tmp_path, capsys, code, text, match):
     refused(capsys, spec, match)
 
 
+def test_V7_too_many_cutoffs_inside_one_bin(tmp_path, capsys):
+    # Part j of a bin split at cutoffs is keyed k + j/1024: 1,024 cutoffs or more inside one bin
+    # would mix two bins' rows, so the scan refuses them instead.
+    df = frame(30000)
+    df["score"] = np.random.default_rng(8).uniform(0, 100, len(df))      # on a grid, not exact
+    rules = "".join(f'[[rule]]\nid = "r{i}"\nquantity = "egfr"\ncutoff = {50 + i * 1e-5!r}\n'
+                    'eligible = "at_or_above"\nsource = "invented for a test"\n\n'
+                    for i in range(1100))
+    (tmp_path / "rules.toml").write_text(rules)
+    spec = setup(tmp_path, df=df, running='quantity = "egfr"',
+                 rest='[rules]\ncatalogues = ["rules.toml"]')
+    refused(capsys, spec, r"1,\d{3} cutoffs \(declared, or added around declared ones\) fall inside "
+                          r"one bin of the binning grid, \[50, .*at most 1,023 can\. Declare fewer "
+                          r"cutoffs on running variable 'score'")
+
+
 # ---------------------------------------------------------------------- columns
 def test_C1_column_not_in_table(tmp_path, capsys):
     spec = setup(tmp_path)

@@ -136,30 +136,31 @@ def final_grid(values_or_keys: np.ndarray, level: int | None, max_bins: int) -> 
 
 
 # ---------------------------------------------------------------------- forced edges
-def inner(forced, p: float, d: int):
+def inner(forced, p: float, d: int, name: str = ""):
     """Forced edges lying inside a bin of the grid (p, d), sorted by value.
 
     ``forced`` holds pairs ``(value, right_closed)``.  An edge is inside bin k when
     ``edge(k) < value``; a left-closed edge on a bin's lower edge also counts, since rows at the
     value belong below it.  Returns arrays (bin k, value, right_closed), read-only (a settled
     grid's edges are looked up for every fit, so the answer is cached per tuple of edges).
+    ``name`` (the running variable) is quoted if a bin holds too many edges to split.
     """
     if not forced:
         return np.zeros(0, np.int64), np.zeros(0), np.zeros(0, bool)
     if isinstance(forced, tuple):
-        return _inner_cached(forced, float(p), int(d))
-    return _inner(forced, p, d)
+        return _inner_cached(forced, float(p), int(d), name)
+    return _inner(forced, p, d, name)
 
 
 @functools.lru_cache(maxsize=64)
-def _inner_cached(forced: tuple, p: float, d: int):
-    out = _inner(forced, p, d)
+def _inner_cached(forced: tuple, p: float, d: int, name: str):
+    out = _inner(forced, p, d, name)
     for a in out:
         a.flags.writeable = False
     return out
 
 
-def _inner(forced, p: float, d: int):
+def _inner(forced, p: float, d: int, name: str = ""):
     pairs = np.array([(float(v), bool(rc)) for v, rc in forced], float).reshape(-1, 2)
     v, rc = pairs[:, 0], pairs[:, 1] > 0
     order = np.lexsort((rc, v))                 # by value, left-closed first (as sorted tuples)
@@ -170,7 +171,28 @@ def _inner(forced, p: float, d: int):
     k = keys(v, p, d)
     lo = edges(k.astype(float), p, d)
     keep = (lo < v) | ((lo == v) & ~rc)
-    return k[keep], v[keep], rc[keep]
+    k, v, rc = k[keep], v[keep], rc[keep]
+    _check_parts(k, v, p, d, name)
+    return k, v, rc
+
+
+def _check_parts(k: np.ndarray, v: np.ndarray, p: float, d: int, name: str) -> None:
+    """Refuse a bin split into more than ``SUB`` parts: part j's key ``k + j/SUB`` would reach
+    the next bin's keys and mix its rows with another bin's, silently."""
+    if k.size < SUB:
+        return
+    u, first, count = np.unique(k, return_index=True, return_counts=True)
+    worst = int(np.argmax(count))
+    if count[worst] < SUB:
+        return
+    from ..errors import InputError
+    lo, hi = edges(np.array([u[worst], u[worst] + 1], float), p, d)
+    raise InputError(
+        f"{count[worst]:,} cutoffs (declared, or added around declared ones) fall inside one bin "
+        f"of the binning grid, [{lo:g}, {hi:g}) — from {v[first[worst]]:g} on; at most "
+        f"{int(SUB) - 1:,} can. Declare fewer cutoffs on "
+        f"{f'running variable {name!r}' if name else 'this running variable'}: cutoffs this "
+        "close together cannot be told apart at this data's resolution.")
 
 
 def _blocks(kk: np.ndarray, k: np.ndarray):

@@ -248,7 +248,7 @@ class Accumulator:
             k = grid.keys_compiled(x, ok, *self.grid, out=scratch(x.size, np.int64))
         else:
             k = np.where(ok, grid.keys(np.where(ok, x, 0.0), *self.grid), 0)
-        inn = grid.inner(self.forced, *self.grid)
+        inn = grid.inner(self.forced, *self.grid, self.template.running)
         j = grid.sub_index(k, np.where(ok, x, 0.0), inn) if inn[0].size else None
         if j is None:
             return k, True, 1

@@ -54,7 +54,7 @@ def regroup(stats: BinnedStats, key: np.ndarray, p: float, d: int, forced=()) ->
     base = replace(stats, kind="width", width=grid.width_of(p, d), origin=0.0, edges=forced)
     key = np.asarray(key, np.int64)
     lo, hi = stats.bounds()
-    j = grid.sub_index(key, (lo + hi) / 2, grid.inner(forced, p, d))
+    j = grid.sub_index(key, (lo + hi) / 2, grid.inner(forced, p, d, stats.running))
     fkey = key.astype(float) if j is None else key + j / grid.SUB
     return base._grouped(fkey, stats.period, stats.half, stats._arrays())
 

@@ -95,10 +95,10 @@ def spark_keys(F, x, p: float, d: int):
     return k.cast("long")
 
 
-def spark_split_keys(F, x, p: float, d: int, forced):
+def spark_split_keys(F, x, p: float, d: int, forced, name: str = ""):
     """Grid keys with the parts of bins split at forced edges: ``k + j/SUB`` (as the local engine)."""
     k = spark_keys(F, x, p, d)
-    kk, v, rc = grid.inner(forced, p, d)
+    kk, v, rc = grid.inner(forced, p, d, name)
     key = k.cast("double")
     for b, e, r in zip(kk, v, rc):
         above = (x >= F.lit(float(e))) if r else (x > F.lit(float(e)))
@@ -198,7 +198,7 @@ def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
         rows = rows.withColumn("period", per.cast("int"))
     acc = Accumulator(running, plan)
     if acc.state == "user":
-        binned = rows.groupBy(spark_split_keys(F, x, *acc.grid, acc.forced).alias("key"),
+        binned = rows.groupBy(spark_split_keys(F, x, *acc.grid, acc.forced, running).alias("key"),
                               "period", "half") \
             .agg(*_row_aggs(F, x, cols, plan))
         acc.stats = _collect(binned, acc.stats, plan)
@@ -224,7 +224,7 @@ def _bin_one(F, base, xcol, running, cols, plan) -> BinnedStats:
         level = (over[0] if over else e) + 1
         sums = [c for c in exact.columns if c not in ("key", "period", "half")]
         fine = exact.groupBy(spark_split_keys(F, F.col("key"), *grid.power_grid(level),
-                                              acc.forced).alias("key"),
+                                              acc.forced, running).alias("key"),
                              "period", "half").agg(*[F.sum(c).alias(c) for c in sums])
         acc.state, acc.level, acc.grid = "fine", level, grid.power_grid(level)
         acc.stats = _collect(fine, BinnedStats.empty(running, plan.columns, plan.pairs, "width",
