@@ -583,7 +583,8 @@ def test_compiled_decimal_codes_equal_numpy_codes(hint):
     # Reference: the numpy grouping (codes._codes).  Whole numbers, half and 3-decimal
     # lattices, 0.1 + 0.2 (not a short decimal), the 2^52 edge, -0.0, a value that is not a
     # short decimal after the first 64 rows, integers too spread for a dense table at 3
-    # decimals (a hint of 3 must not hide their dense table at 0), NaN and inf.
+    # decimals (a hint of 3 must not hide their dense table at 0), NaN and inf, and negative
+    # decimals only (the bounds, kept as whole numbers, start far outside on both sides).
     from scanner.engines.codes import _codes, _codes_compiled
     rng = np.random.default_rng(8)
     cases = [rng.integers(0, 100, 500).astype(float), rng.integers(0, 60, 500) * 0.5,
@@ -591,7 +592,8 @@ def test_compiled_decimal_codes_equal_numpy_codes(hint):
              np.r_[rng.integers(0, 9, 100).astype(float), 2.0 ** 52, -0.0],
              np.r_[rng.integers(0, 9, 100).astype(float), 1 / 3],
              rng.integers(0, 10_000, 2_000).astype(float),
-             np.r_[rng.integers(0, 50, 300).astype(float), np.nan, np.inf, -np.inf]]
+             np.r_[rng.integers(0, 50, 300).astype(float), np.nan, np.inf, -np.inf],
+             np.r_[np.nan, rng.integers(-400, -100, 300) * 0.1]]         # negative bounds only
     for x in cases:
         ok = np.isfinite(x)
         (g, keys, nb), _ = _codes_compiled(x, ok, False, hint)
