@@ -16,6 +16,29 @@ class InputError(ScanError, ValueError):
     """A file, column or value cannot be used as given."""
 
 
+class CrowdedBin(InputError):
+    """More cutoffs inside one bin of the binning grid than its parts can be told apart by
+    (:func:`scanner.engines.grid.inner`); ``lo``/``hi`` bound that bin."""
+
+    def __init__(self, message: str, running: str, lo: float, hi: float):
+        super().__init__(message)
+        self.running, self.lo, self.hi = running, lo, hi
+
+    def citing(self, candidates) -> "CrowdedBin":
+        """This error naming the rule catalogue lines that declare cutoffs inside the bin."""
+        lines: dict[str, set] = {}
+        for c in candidates:
+            rule = getattr(c, "rule", None)
+            if rule is not None and rule.file and self.lo <= c.cutoff < self.hi:
+                lines.setdefault(rule.file, set()).add(rule.line)
+        if not lines:
+            return self
+        where = "; ".join(f"{f}:line {min(n)}" if len(n) == 1 else
+                          f"{f} ({len(n):,} rules, lines {min(n)}–{max(n)})"
+                          for f, n in lines.items())
+        return CrowdedBin(f"{self} They are declared in {where}.", self.running, self.lo, self.hi)
+
+
 class SpecError(InputError):
     """A scan spec or rule catalogue is malformed; the message names file and line."""
 

@@ -17,7 +17,7 @@ from .candidates import Candidate, declared, on_lattice, round_cutoffs
 from .diagnostics import covariate_balance
 from .diagnostics.design import design_checks
 from .engines import BinPlan, bin_table
-from .errors import InputError
+from .errors import CrowdedBin, InputError
 from .estimate import fit_jump, side_data
 from .estimate.inference import inference_fields
 from .estimate.local import floor_variance
@@ -205,9 +205,12 @@ def scan(spec_or_path, data=None, progress=None) -> ScanResult:
     tick = (lambda m: progress("bin", m, getattr(table, "num_rows", None))) if progress else None
     registry = getattr(table, "registry", None)
     # Long-format registries: the bins are GROUP BY sums inside DuckDB (scanner.events.bins_sql).
-    binned = registry.bin(table, plan) if registry is not None and engine == "local" else None
-    if binned is None:
-        binned = bin_table(table, plan, engine=engine, progress=tick)
+    try:
+        binned = registry.bin(table, plan) if registry is not None and engine == "local" else None
+        if binned is None:
+            binned = bin_table(table, plan, engine=engine, progress=tick)
+    except CrowdedBin as exc:       # name the catalogue lines the crowded cutoffs come from
+        raise exc.citing(decl.get(exc.running, ([], []))[0]) from None
     for r in spec.running:
         if binned.stats[r.column].total == 0:
             raise InputError(f"{getattr(table, 'name', 'table')}: running variable '{r.column}' "

@@ -406,7 +406,8 @@ def test_many_cutoffs_inside_one_bin(kernel):
     for b in np.flatnonzero((hi > 0.5) & (lo < 0.5003)):    # no bin holds rows from both sides
         side = np.searchsorted(cuts, x[inside[b]], "right")  # of a cutoff (x >= c: above it)
         assert side.min() == side.max()
-    with pytest.raises(InputError, match=r"cutoffs .* fall inside one bin .* at most 1,023 can"):
+    with pytest.raises(InputError, match=r"cutoffs .* fall inside one bin .* at most 1,023 can"
+                                          r".* on running variable 'x'"):
         bin_table(open_table(df), plan(1100))
 
 

@@ -280,7 +280,8 @@ def test_V7_too_many_cutoffs_inside_one_bin(tmp_path, capsys):
                  rest='[rules]\ncatalogues = ["rules.toml"]')
     refused(capsys, spec, r"1,\d{3} cutoffs \(declared, or added around declared ones\) fall inside "
                           r"one bin of the binning grid, \[50, .*at most 1,023 can\. Declare fewer "
-                          r"cutoffs on running variable 'score'")
+                          r"cutoffs on running variable 'score'.* They are declared in "
+                          r"\S*rules\.toml \(1,100 rules, lines 1–\d+\)\.")
 
 
 # ---------------------------------------------------------------------- columns

@@ -55,27 +55,29 @@ def local_groups(g, nb, ext, span, out, lut, first):
     ``lut`` (int32, at least ``nb * span`` entries, all -1) and ``first`` (int64, at least
     ``min(rows, nb * span)``) are the caller's, kept between batches: fresh ones cost page
     faults on every call (about 2 MB each for a continuous running variable with year keys).
-    The entries used are set back to -1 before returning.
+    The table is indexed ``ext * nb + bin``, so numbering reads it once, front to back (indexed
+    bin-major, numbering in this order read it with a stride of ``span`` entries: slower than
+    numbering in order of first appearance on the irregular table's skewed lab values).  The
+    entries used are set back to -1 before returning.
     """
     m = g.size
     keyed = ext.size > 0
-    for i in range(m):                      # mark the (bin, period-half) cells that occur
+    for i in range(m):                      # mark the (period-half, bin) cells that occur
         b = g[i]
         if b < nb:
-            lut[b * span + (ext[i] if keyed else 0)] = -2
+            lut[(ext[i] if keyed else 0) * nb + b] = -2
     k = 0
-    for e in range(span):
-        for b in range(nb):
-            c = b * span + e
-            if lut[c] == -2:
-                lut[c] = k
-                first[k] = c
-                k += 1
+    for c in range(nb * span):              # in order: period-half by period-half, then bin
+        if lut[c] == -2:
+            lut[c] = k
+            first[k] = (c % nb) * span + c // nb
+            k += 1
     for i in range(m):
         b = g[i]
-        out[i] = -1 if b >= nb else lut[b * span + (ext[i] if keyed else 0)]
+        out[i] = -1 if b >= nb else lut[(ext[i] if keyed else 0) * nb + b]
     for j in range(k):
-        lut[first[j]] = -1
+        f = first[j]
+        lut[(f % span) * nb + f // span] = -1
     return out, first[:k]
 
 

@@ -172,27 +172,27 @@ def _inner(forced, p: float, d: int, name: str = ""):
     lo = edges(k.astype(float), p, d)
     keep = (lo < v) | ((lo == v) & ~rc)
     k, v, rc = k[keep], v[keep], rc[keep]
-    _check_parts(k, v, p, d, name)
+    _check_parts(k, p, d, name)
     return k, v, rc
 
 
-def _check_parts(k: np.ndarray, v: np.ndarray, p: float, d: int, name: str) -> None:
+def _check_parts(k: np.ndarray, p: float, d: int, name: str) -> None:
     """Refuse a bin split into more than ``SUB`` parts: part j's key ``k + j/SUB`` would reach
     the next bin's keys and mix its rows with another bin's, silently."""
     if k.size < SUB:
         return
-    u, first, count = np.unique(k, return_index=True, return_counts=True)
+    u, count = np.unique(k, return_counts=True)
     worst = int(np.argmax(count))
     if count[worst] < SUB:
         return
-    from ..errors import InputError
+    from ..errors import CrowdedBin
     lo, hi = edges(np.array([u[worst], u[worst] + 1], float), p, d)
-    raise InputError(
+    raise CrowdedBin(
         f"{count[worst]:,} cutoffs (declared, or added around declared ones) fall inside one bin "
-        f"of the binning grid, [{lo:g}, {hi:g}) — from {v[first[worst]]:g} on; at most "
-        f"{int(SUB) - 1:,} can. Declare fewer cutoffs on "
-        f"{f'running variable {name!r}' if name else 'this running variable'}: cutoffs this "
-        "close together cannot be told apart at this data's resolution.")
+        f"of the binning grid, [{lo:g}, {hi:g}); at most {int(SUB) - 1:,} can. Declare fewer "
+        f"cutoffs on {f'running variable {name!r}' if name else 'this running variable'}: "
+        "cutoffs this close together cannot be told apart at this data's resolution.",
+        name, float(lo), float(hi))
 
 
 def _blocks(kk: np.ndarray, k: np.ndarray):

@@ -65,7 +65,8 @@ def reading_pool():
     Every batch is a fresh set of column buffers of the same sizes.  pyarrow's default pool
     (mimalloc) hands those pages back to the system between batches, and faulting them in again
     cost the 10M-row pass more kernel time than its folding (about 1.6 s against 0.3 s with
-    jemalloc on the 2-core machine; ``benchmarks/bench_scan.py --modes "bin plain"``).  The
+    jemalloc on the 2-core machine, per-thread CPU read once from ``/proc``; the pass's wall
+    time with and without it: ``benchmarks/bench_scan.py --modes "bin plain" "bin keys"``).  The
     choice holds while the pass runs and the previous pool is restored after it.  A pool the
     user chose through ``ARROW_DEFAULT_MEMORY_POOL`` is left alone, and so is a build without
     jemalloc.

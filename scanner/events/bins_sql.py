@@ -221,11 +221,11 @@ def occupancy_sql(rows: str, k: int, levels) -> str:
     return f"SELECT {cnt} FROM ({vals}) v"
 
 
-def key_expr(grid_pd, forced) -> str:
+def key_expr(grid_pd, forced, name: str = "") -> str:
     """Bin key of a row: grid key ``k`` plus ``j/SUB`` for part ``j`` of a bin split at forced edges."""
     p, d = grid_pd
     k = _keys_expr("x", p, d)
-    kk, v, rc = grid.inner(forced, p, d)
+    kk, v, rc = grid.inner(forced, p, d, name)
     if kk.size == 0:
         return f"CAST({k} AS DOUBLE)"
     parts = " + ".join(f"CASE WHEN k = {int(b)} AND x {'>=' if r else '>'} {_num(e)} THEN 1 ELSE 0 END"
@@ -320,7 +320,7 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str, keep: dict 
             continue
         n, big = distinct[k]
         if acc.state == "user":
-            keys[k] = key_expr(acc.grid, acc.forced)
+            keys[k] = key_expr(acc.grid, acc.forced, acc.template.running)
         elif n <= plan.fine_keys:
             keys[k] = "x"
         else:
@@ -336,7 +336,7 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str, keep: dict 
                 e -= 6
             acc.level = (over[0] if over else e) + 1
             acc.state, acc.grid = "fine", grid.power_grid(acc.level)
-            keys[k] = key_expr(acc.grid, acc.forced)
+            keys[k] = key_expr(acc.grid, acc.forced, acc.template.running)
             acc.stats = BinnedStats.empty(r, plan.columns, plan.pairs, "width",
                                           grid.width_of(*acc.grid), 0.0, acc.forced)
     stats = {}
