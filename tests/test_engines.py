@@ -413,11 +413,11 @@ def test_many_cutoffs_inside_one_bin(kernel):
 
 def test_compiled_kernel_without_dense_table(monkeypatch):
     # Too many (bin, period, half) combinations for the dense table: hashed instead, same bins.
-    from scanner.engines import local
+    from scanner.engines import accumulate
     df = irregular_table(1500, seed=4)
     plan = BinPlan(**IRR, date="visit", split_seed=3, batch_rows=400)
     ref = bin_table(open_table(df), BinPlan(**{**plan.__dict__, "kernel": "bincount"}))
-    monkeypatch.setattr(local, "LUT_MAX", 8)
+    monkeypatch.setattr(accumulate, "LUT_MAX", 8)
     got = bin_table(open_table(df), plan)
     for r in IRR["running"]:
         assert_same_stats(got.stats[r], ref.stats[r])

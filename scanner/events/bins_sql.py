@@ -11,7 +11,7 @@ that holds at most ``plan.fine_keys`` bins, with keys computed by the same doubl
 (``floor(x/w)`` corrected against the exact-decimal edges ``(k·p)/10^d``) and split at the forced
 edges (part ``j`` of grid bin ``k`` has key ``k + j/SUB``).  The settling step — exact bins up to
 ``plan.max_exact`` values, else the final 1-2-5 width and round-number edges — then runs
-unchanged in :meth:`scanner.engines.local.Accumulator.finish`.
+unchanged in :meth:`scanner.engines.accumulate.Accumulator.finish`.
 
 Cleaning.  Declared missing codes, the data-quality profile's sentinel values and other-unit
 ranges (:mod:`scanner.cleaning`, :mod:`scanner.quality`) become ``CASE`` expressions, and their
@@ -291,7 +291,7 @@ def bin_registry(con_query, lay, plan, cl, dialect: str, table: str, keep: dict 
     :func:`scanner.events.sql.dropped_sql`, from the same aggregate).
     """
     from ..bins import BinnedStats
-    from ..engines.local import Accumulator
+    from ..engines.accumulate import Accumulator
     from ..engines.plan import BinResult
     if plan.pairs:
         return None
