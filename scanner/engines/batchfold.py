@@ -23,20 +23,29 @@ from .compact import Layout
 
 
 def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
-                   layout: Layout, pool, kept: list) -> None:
+                  layout: Layout, pool, kept: list, split: int) -> None:
     """Add a batch's addends to every running variable's totals in one compiled pass per half
-    of the rows (:func:`scanner.engines.compiled.fold_rows`).
+    of the rows (:func:`scanner.engines.compiled.fold_rows`): rows ``0..split-1``, then the
+    rest.
 
-    The halves are fixed (first and second), folded in the pool's two threads when there is
-    one, and added in that order, so the totals do not depend on the number of threads.
-    ``kept`` holds the two halves' matrices between batches (fresh ones would cost page
-    faults: with a continuous running variable and period keys they hold about 10^5 groups).
-    They take 2 × 1.25 × (the batch's groups of all running variables) × (3 + w) floats — about
-    110 MB for the benchmark's ten running variables with year and half keys — bounded by the
-    batch's rows times the running variables, and are dropped with the pass.
+    The halves are fixed, folded in the pool's two threads when there is one.  ``parts[v]`` is
+    None (no finite running value) or (group per row, G, Mx, slots) from
+    :meth:`Accumulator.groups <scanner.engines.accumulate.Accumulator.groups>`:
+
+    - Mx None: the groups are the variable's slots, and no slot has rows in both halves (the
+      caller splits rows held in order of keys at least as coarse as the variable's).  Both
+      threads add straight to the totals, each to its own slots.
+    - otherwise: each half adds to its own matrix of the batch's G groups, the second is added
+      to the first, and the sums (with n, Σx and Σx² from ``Mx``) are added to the totals'
+      slots.  ``kept`` holds the two halves' matrices between batches (fresh ones would cost
+      page faults); they take 2 × 1.25 × (these variables' groups) × (3 + w) floats.
+
+    Either way each sum is added in an order that does not depend on the number of threads.
     """
+    from numba.typed import List
     from . import compiled
-    sizes = np.array([0 if p is None else p[1] for p in parts], np.int64)
+    direct = np.array([p is not None and p[2] is None for p in parts], np.uint8)
+    sizes = np.array([0 if p is None or d else p[1] for p, d in zip(parts, direct)], np.int64)
     off = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
     m = groups.shape[1]
     L = layout
@@ -46,28 +55,36 @@ def fold_together(acc: dict, running, parts, groups: np.ndarray, Y: np.ndarray,
             kept[h] = np.empty(shape[0] * shape[1] * 5 // 4)    # room for the next batches' groups
         if kept[2 + h] is None or kept[2 + h].size < shape[0]:
             kept[2 + h] = np.empty(shape[0] * 5 // 4, np.uint8)
+    totals = List()
+    for v, r in enumerate(running):
+        totals.append(acc[r].sums.M if direct[v] else _NO_TOTALS)
 
     def half(h):
         M = kept[h][:shape[0] * shape[1]].reshape(shape)
         seen = kept[2 + h][:shape[0]]
         seen[:] = 0
         compiled.fold_rows(groups, sizes, off, Y, L.sq, L.cnt, L.pa, L.pb, L.joint,
-                           h * (m // 2), m if h else m // 2, M, seen)
+                           split if h else 0, m if h else split, M, seen, direct, totals)
         return M, seen
     (first, seen_a), (second, seen_b) = pool.map(half, (0, 1)) if pool else map(half, (0, 1))
-    compiled.merge_halves(first, seen_a, second, seen_b)
+    if shape[0]:
+        compiled.merge_halves(first, seen_a, second, seen_b)
 
     def to_totals(v):
         # each variable adds to its own totals: the variables are spread over the threads
         p = parts[v]
-        if p is None:
-            acc[running[v]].add(None)
-            return
-        _, G, Mx, slot = p
-        Mc = first[off[v]:off[v] + G]
-        Mc[:, :3] = Mx
-        acc[running[v]].add_groups(slot, Mc, L.src)
+        a = acc[running[v]]
+        if p is not None and not direct[v]:
+            _, G, Mx, slot = p
+            Mc = first[off[v]:off[v] + G]
+            Mc[:, :3] = Mx
+            compiled.scatter_add(a.sums.M, slot, Mc)
+        a.sums.touch()
+        a.add(None)
     list(pool.map(to_totals, range(len(parts))) if pool else map(to_totals, range(len(parts))))
+
+
+_NO_TOTALS = np.zeros((0, 1))
 
 
 def moved(values: np.ndarray, dest: np.ndarray) -> np.ndarray:

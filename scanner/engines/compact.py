@@ -29,11 +29,18 @@ class Layout:
     pa, pb : column positions of the pairs that need joint sums.
     known : per column, True where it is known to be 0/1 already (treatments, checked on read).
 
+    wider : the layout of the batches before, or None: the addends it has are formed too, so
+        the running totals keep one layout for the whole pass (:meth:`SlotSums.compact
+        <scanner.engines.sums.SlotSums.compact>`); it only widens, when a later batch has a
+        column that is not 0/1 or has a missing value.
+
     Attributes ``sq``, ``cnt``, ``joint`` (the arguments of
-    :func:`scanner.engines.compiled.fold_rows`), ``w`` (addends per row) and ``src``.
+    :func:`scanner.engines.compiled.fold_rows`), ``w`` (addends per row), ``src`` and ``rep``
+    (for each column of ``[n, Σx, Σx², ΣW]``, one sum of the totals' layout it holds: the
+    columns of a matrix in that layout that make up one in this).
     """
 
-    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, known):
+    def __init__(self, Y: np.ndarray, pa: np.ndarray, pb: np.ndarray, known, wider=None):
         from . import compiled
         k, m = Y.shape
         # A column's sum is finite only when every value is (a huge sum that overflows merely
@@ -44,9 +51,21 @@ class Layout:
         self.cnt = np.flatnonzero(~full_col).astype(np.int64)
         # pairs with a missing value somewhere need their own joint count, sums and squares
         self.joint = ~(full_col[pa] & full_col[pb]) if pa.size else np.zeros(0, bool)
+        if wider is not None:
+            self.sq = np.union1d(self.sq, wider.sq).astype(np.int64)
+            self.cnt = np.union1d(self.cnt, wider.cnt).astype(np.int64)
+            self.joint = self.joint | wider.joint
         self.pa, self.pb = pa, pb
         self.w = k + self.sq.size + self.cnt.size + pa.size + 5 * int(self.joint.sum())
         self.src = _layout(k, self.sq, self.cnt, pa, pb, self.joint)
+        # every column of [n, Σx, Σx², ΣW] holds one sum at least; its first one stands for it
+        held, self.rep = np.unique(self.src, return_index=True)
+        assert held.size == 3 + self.w
+
+    def same(self, other) -> bool:
+        """The same addends as ``other`` (a Layout or None)."""
+        return (other is not None and np.array_equal(self.sq, other.sq)
+                and np.array_equal(self.cnt, other.cnt) and np.array_equal(self.joint, other.joint))
 
 
 def _layout(k, sq, cnt, pa, pb, joint) -> np.ndarray:

@@ -8,25 +8,29 @@ Per running variable and batch:
 2. :func:`local_groups` gives each row the batch-local group of its (bin, period-half) pair
    through a dense look-up table of ``bins × period-half codes`` (both small ranges within a
    batch), numbering groups by period-half code, then bin (without period or half keys the bin
-   codes are the groups and this loop is skipped);
-3. :func:`add_n_x` adds each row's 1, x and x² to its group.
+   codes are the groups and this loop is skipped); where the rows go straight to the totals
+   (below), :func:`to_slots` replaces each group by its slot in them;
+3. :func:`add_n_x` adds each row's 1, x and x² to its group, or its slot.
 
 Then, once per batch for every running variable together, :func:`fold_rows` forms the addends
 of a block of rows in the cache — only those not known already: y² of a 0/1 column is y, and
-the count of a column with no missing value in the batch is the row count
-(:mod:`scanner.engines.compact`) — and adds them to each variable's groups; the groups' sums go
-to the running totals' slots (:class:`scanner.engines.sums.SlotSums`, :func:`scatter_add`).
-With period keys the rows are first moved to their period-half order
-(:func:`sorted_positions`, :func:`scatter_rows`).
+the count of a column with no missing value is the row count (:mod:`scanner.engines.compact`)
+— and adds them to each variable's groups.  With period or half keys the rows are first moved
+to their period-half order (:func:`sorted_positions`, :func:`scatter_rows`) and the two threads
+take the rows on either side of a change of code near the middle: a variable keyed at least
+that finely has no group on both sides, so its rows go straight to its running totals'
+slots (:class:`scanner.engines.sums.SlotSums`).  Otherwise each thread adds its half of the
+rows to its own matrix of the batch's groups, and the two matrices' sums go to the slots
+(:func:`merge_halves`, :func:`scatter_add`).
 
 On the 2-core machine we measure on, writing row-sized arrays is the slowest thing the pass
 does, so the loops write as few as they can: keys are computed again rather than stored, codes
 are int32 and land directly in the buffer the fold reads.  Each group's n, Σx and Σx² are
-accumulated over the batch in the order the pass holds its rows (period-half order when they
-are moved), its other sums in that order within each of two fixed halves of the batch's
-positions (not the held-out discovery halves), so the totals equal the numpy kernels' up to the order of
+accumulated in the order the pass holds its rows (period-half order when they are moved), its
+other sums in that order within each of two fixed halves of the batch's positions (not the
+held-out discovery halves), so the totals equal the numpy kernels' up to the order of
 floating-point additions (agreement to 1e-9 is tested) and do not depend on the number of
-threads.  The loops release the GIL.  Compiled code is cached on disk
+threads (tested bit for bit).  The loops release the GIL.  Compiled code is cached on disk
 (``cache=True``): only the first run on a machine compiles.
 """
 from __future__ import annotations
@@ -155,19 +159,25 @@ BLOCK = 4096    # rows whose addends are formed at a time: 4096 × w floats stay
 
 
 @njit(nogil=True, cache=True)
-def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M, seen):
+def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M, seen, direct,
+              totals):
     """Add the addends of batch rows start..stop-1 to every running variable's groups.
 
-    ``groups[v, i]`` is row i's group of running variable v (skipped unless 0 <= it <
-    ``sizes[v]``: no finite running value); its addends are added to columns 3.. of row
-    ``off[v] + group`` of ``M`` (all variables' groups × [n, Σx, Σx², addends], the first three
-    filled by :func:`add_n_x`).  The addends of a block of rows are formed once, in
-    the cache, and added for every running variable before the next block: formed for the
-    whole batch they would be read from memory once per running variable.
+    ``groups[v, i]`` is row i's group of running variable v (skipped when negative or, unless
+    ``direct[v]``, not below ``sizes[v]``: no finite running value).
 
-    A row of ``M`` is written, not added to, the first time it is reached (``seen``, zeros on
-    entry, marks it): zeroing every group's row beforehand cost as much as the adding with
-    10^5 groups.  Rows never reached hold anything; :func:`merge_halves` reads only the others.
+    - ``direct[v]``: the group is a slot of the variable's running totals ``totals[v]``
+      (slots × [n, Σx, Σx², addends]), and the addends go straight to columns 3.. of it.  The
+      caller gives each thread rows whose slots no other thread touches.
+    - otherwise: to columns 3.. of row ``off[v] + group`` of ``M`` (the batch's groups of these
+      variables × [n, Σx, Σx², addends]).  A row of ``M`` is written, not added to, the first
+      time it is reached (``seen``, zeros on entry, marks it): zeroing every group's row
+      beforehand cost as much as the adding with 10^5 groups.  Rows never reached hold
+      anything; :func:`merge_halves` reads only the others.
+
+    The addends of a block of rows are formed once, in the cache, and added for every running
+    variable before the next block: formed for the whole batch they would be read from memory
+    once per running variable.
     """
     V = groups.shape[0]
     w = M.shape[1] - 3
@@ -176,6 +186,16 @@ def fold_rows(groups, sizes, off, Y, sq, cnt, pa, pb, joint, start, stop, M, see
         e = min(stop, s + BLOCK)
         _addends(Y, s, e, sq, cnt, pa, pb, joint, W)
         for v in range(V):
+            if direct[v]:
+                T = totals[v]
+                for i in range(s, e):
+                    gi = groups[v, i]
+                    if gi < 0:
+                        continue
+                    r = i - s
+                    for j in range(w):
+                        T[gi, 3 + j] += W[r, j]
+                continue
             o = off[v]
             G = sizes[v]
             for i in range(s, e):
@@ -224,15 +244,24 @@ def add_n_x(group, x, Mx):
 
 
 @njit(nogil=True, cache=True)
-def scatter_add(M, slot, Mc, src):
-    """``M[slot[g], c] += Mc[g, src[c]]`` for every group g and column c of the totals' layout
-    (``slot`` holds distinct rows; no temporary of groups × columns)."""
-    G = slot.size
-    w = src.size
-    for g in range(G):
+def scatter_add(M, slot, Mc):
+    """``M[slot[g]] += Mc[g]`` for every group g (``slot`` holds distinct rows; no temporary of
+    groups × columns)."""
+    w = M.shape[1]
+    for g in range(slot.size):
         s = slot[g]
         for c in range(w):
-            M[s, c] += Mc[g, src[c]]
+            M[s, c] += Mc[g, c]
+
+
+@njit(nogil=True, cache=True)
+def to_slots(group, slot):
+    """Replace each row's group by its slot in the running totals, in place (-1 unless 0 <=
+    group < the groups: no finite running value)."""
+    G = slot.size
+    for i in range(group.size):
+        g = group[i]
+        group[i] = slot[g] if 0 <= g < G else -1
 
 
 @njit(nogil=True, cache=True)

@@ -21,7 +21,8 @@ Speed.  The default kernel (``plan.kernel = "compiled"``, :mod:`scanner.engines.
 each running variable's rows in compiled loops (the running variables of a batch in two
 threads; the loops release the GIL), then adds every row's sums to all running variables'
 groups in one pass per half of the batch, after moving the rows to the order of their (period,
-half) key so that the totals touched at one time stay in the processor's cache.  Group codes
+half) key so that the totals touched at one time stay in the processor's cache; split where
+that key changes, the halves add to the running totals directly.  Group codes
 of exact values and grid keys come from dense integer offsets, with hash factorisation where
 keys are too spread out.  The numpy kernels are kept for checking and for machines without
 numba: one sparse one-hot product per running variable (``"sparse"``, scipy) or one
@@ -195,9 +196,10 @@ def fold(running: str, codes, x: np.ndarray, ok: np.ndarray, extra, batch: Colum
 def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     """One streaming pass over ``table`` (a :class:`scanner.io.Table`).
 
-    With the compiled kernel the running variables of a batch are folded in two threads (the
-    loops release the GIL; each thread owns whole running variables, so the totals do not
-    depend on the split); ``CUTSCAN_WORKERS=1`` keeps one.
+    With the compiled kernel the running variables of a batch are coded in two threads, each
+    owning whole running variables, and the rows folded in two fixed halves (the loops release
+    the GIL; :func:`scanner.engines.batchfold.fold_together`), so the totals do not depend on
+    the number of threads; ``CUTSCAN_WORKERS=1`` keeps one.
     """
     acc = {r: Accumulator(r, plan) for r in plan.running}
     missing = dict.fromkeys(plan.running, 0)
@@ -210,6 +212,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
     rows = 0
     ybuf = gbuf = None
     kept = [None] * 4         # the fold's two matrices and seen flags, reused (batchfold.fold_together)
+    layout = None             # the addends formed, widened as batches need (compact.Layout)
     try:
         blocks = block_rows(plan) if kernel == "compiled" else None
         for batch in in_blocks(prefetched(table.batches(plan.needed, plan.batch_rows)), blocks):
@@ -243,6 +246,10 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 dest = compiled.sorted_positions(*by_detail[common][:2])
                 by_detail = {d: None if e is None else (moved(e[0], dest),) + e[1:]
                              for d, e in by_detail.items()}
+            split = None if dest is None else _middle(by_detail[common][0])
+            # Split there, no group of a variable keyed at least as finely as the rows' order
+            # has rows on both sides: both threads add such variables' rows to their totals.
+            direct = [split is not None and _FINER[d] >= _FINER[common] for d in details]
             k = len(plan.columns)
             Y = None
             if kernel == "compiled":
@@ -267,7 +274,11 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 pos = {c: j for j, c in enumerate(plan.columns)}
                 pa = np.array([pos[a] for a, _ in plan.pairs], np.int64)
                 pb = np.array([pos[b] for _, b in plan.pairs], np.int64)
-                layout = Layout(Y, pa, pb, [c in plan.treatments for c in plan.columns])
+                wider = Layout(Y, pa, pb, [c in plan.treatments for c in plan.columns], layout)
+                if not wider.same(layout):
+                    for a in acc.values():
+                        a.relayout(wider)
+                layout = wider
                 if gbuf is None or gbuf.shape[1] < m:
                     gbuf = np.empty((len(plan.running), m), np.int32)
                 groups = gbuf[:, :m]
@@ -294,7 +305,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 codes = a.codes(x, ok)
                 part = None
                 if kernel == "compiled":
-                    part = a.groups(codes, x, extra, groups[v])
+                    part = a.groups(codes, x, extra, groups[v], direct[v])
                     if part is None:
                         groups[v] = -1
                 else:
@@ -308,7 +319,7 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 nonfinite[r] += inf
             if kernel == "compiled":
                 fold_together(acc, plan.running, [p for _, _, p in got], groups, Y, layout,
-                               pool, kept)
+                              pool, kept, m // 2 if split is None else split)
                 del Y
             rows += m
             if progress:
@@ -322,6 +333,20 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             pool.shutdown()
         release()
     return BinResult(dict(zip(acc, done)), rows, missing, nonfinite)
+
+
+_FINER = {"none": 0, "year": 1, "quarter": 2}     # period details, coarse to fine
+
+
+def _middle(code: np.ndarray):
+    """The boundary between codes nearest the middle of rows held in order of their code, or
+    None where it leaves either side less than a quarter of the rows (a batch within one
+    period and no halves)."""
+    m = code.size
+    c = code[m // 2]
+    lo, hi = int(np.searchsorted(code, c, "left")), int(np.searchsorted(code, c, "right"))
+    s = lo if m // 2 - lo <= hi - m // 2 else hi
+    return s if min(s, m - s) >= m // 4 else None
 
 
 def _extra(detail: str, quarter, half, m: int, fast: bool = False):
