@@ -141,8 +141,8 @@ class BinnedStats:
         new = np.ones(len(key), bool)
         new[1:] = (key[1:] != key[:-1]) | (period[1:] != period[:-1]) | (half[1:] != half[:-1])
         starts = np.flatnonzero(new)
-        out = {name: np.add.reduceat(a[order], starts, axis=0) if a.shape[0] else a
-               for name, a in arrays.items()}
+        out = {name: np.add.reduceat(np.take(a, order, axis=0), starts, axis=0) if a.shape[0]
+               else a for name, a in arrays.items()}
         return replace(self, key=key[starts], period=period[starts], half=half[starts], **out)
 
     def _same_layout(self, other: "BinnedStats") -> None:

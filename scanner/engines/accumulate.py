@@ -224,21 +224,21 @@ class Accumulator:
             group[:] = -1
             group[live] = codes_
         b, e = np.divmod(np.asarray(first, np.int64), span)
+        G = b.size
         r = np.arange(span) // 3
         slot = self.sums.slots_grouped(np.asarray(ukey, float), b,
                                        np.where(r > 0, r - 1 + p0, -1).astype(np.int32),
                                        (np.arange(span) % 3 - 1).astype(np.int8), e)
         slot = np.asarray(slot, np.int64)
         if direct:
-            compiled.to_slots(group, slot)
-            compiled.add_n_x(group, x, self.sums.M)
-            return group, b.size, None, slot
-        if self._mx is None or self._mx.shape[0] < b.size:
-            self._mx = np.empty((b.size * 5 // 4, 3))     # kept: room for the next batches
-        Mx = self._mx[:b.size]
+            compiled.to_slots(group, slot, x, self.sums.M)
+            return group, G, None, slot
+        if self._mx is None or self._mx.shape[0] < G:
+            self._mx = np.empty((G * 5 // 4, 3))     # kept: room for the next batches
+        Mx = self._mx[:G]
         Mx[:] = 0.0
         compiled.add_n_x(group, x, Mx)
-        return group, b.size, Mx, slot
+        return group, G, Mx, slot
 
     def _local_buffers(self, cells: int, groups: int):
         """:func:`compiled.local_groups`'s look-up table (all -1) and group list: kept between
