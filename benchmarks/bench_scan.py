@@ -137,6 +137,25 @@ def measure(mode: str, folder: str, batch_rows: int, extra: str = "{}") -> dict:
             "load": load, **info}
 
 
+# The two ratios, each from runs of one round (a minute apart at most): the machine's
+# speed drifts by up to half within an hour, so a ratio of two medians from different rounds
+# can mislead.
+PAIRS = (("bin keys", "bin plain", "cpu_seconds", "CPU of the keyed pass ÷ the plain pass"),
+         ("bin plain", "read+convert", "seconds", "wall time of the plain pass ÷ read+convert"))
+
+
+def _paired(runs: dict, n: int) -> list:
+    import statistics
+    out = []
+    for top, bottom, field, what in PAIRS:
+        if top in runs and bottom in runs:
+            r = [a[field] / b[field] for a, b in zip(runs[top], runs[bottom])]
+            out.append(f"| {n:,} | paired by round: {what} | "
+                       + ", ".join(f"{x:.2f}×" for x in r)
+                       + f" (median {statistics.median(r):.2f}×) |" + " |" * 11)
+    return out
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=float, nargs="*", default=[1e6, 1e7])
@@ -207,6 +226,7 @@ def main() -> None:
                          f"{r['cpu_seconds']:.2f} | "
                          f"{peak} | {vs_read} | "
                          f"{rel} | {r['cpu_seconds'] / plain:.2f}× | {start} | {r['load']} |")
+        lines += _paired(runs, n)
     lines += ["", "Peak RSS of a scan is the main process; the forked worker that evaluates half "
               "of the running variables shares its pages copy-on-write, so the two do not add up.",
               "", "Reproduce: `python benchmarks/bench_scan.py" +
