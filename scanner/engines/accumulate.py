@@ -231,7 +231,7 @@ class Accumulator:
                                        (np.arange(span) % 3 - 1).astype(np.int8), e)
         slot = np.asarray(slot, np.int64)
         if direct:
-            compiled.to_slots(group, slot, x, self.sums.M)
+            compiled.to_slots(group, slot, x, self.sums.nx)
             return group, G, None, slot
         if self._mx is None or self._mx.shape[0] < G:
             self._mx = np.empty((G * 5 // 4, 3))     # kept: room for the next batches
