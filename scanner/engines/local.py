@@ -41,7 +41,7 @@ from .accumulate import Accumulator, keyed
 from .plan import BinPlan, BinResult
 from .codes import _codes
 from .batchfold import check_treatment, fold_together, into, moved, quarters, release, scratch
-from .resources import _kernel, _threads, block_rows, in_blocks
+from .resources import _kernel, _threads, block_rows, in_blocks, small_pages
 from .compact import Layout
 from .sums import unpack
 
@@ -325,12 +325,14 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
             if progress:
                 progress(m)
         # Settling sorts and regroups every (bin, period, half) slot of a variable: with
-        # period keys 10^5 of them for each continuous one, in fresh arrays.  One variable at
-        # a time: on the 10M-row dated table, settling in both threads took more CPU (0.34-0.47
-        # s against 0.21-0.23 s alone; in the pass 4.5-6.1 s against 4.5-4.9 s for the whole
-        # of it, four runs each) for 0.07 s less wall time at the median, the threads' first
-        # writes to fresh memory waiting on each other.
-        done = [a.finish().validate() for a in acc.values()]
+        # period keys 10^5 of them for each continuous one, in fresh arrays (on ordinary
+        # pages: small_pages).  One variable at a time: on the 10M-row dated table, settling
+        # in both threads took more CPU (0.34-0.47 s against 0.21-0.23 s alone; in the pass
+        # 4.5-6.1 s against 4.5-4.9 s for the whole of it, four runs each) for 0.07 s less
+        # wall time at the median, the threads' first writes to fresh memory waiting on each
+        # other.
+        with small_pages():
+            done = [a.finish().validate() for a in acc.values()]
     finally:
         if pool is not None:
             pool.shutdown()
