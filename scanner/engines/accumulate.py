@@ -19,6 +19,7 @@ from .resources import _kernel
 from .settle import base_index as _base, regroup, settle
 from .sums import SlotSums
 
+
 def keyed(period: np.ndarray, half: np.ndarray):
     """One small integer per row for its (period, half) keys: (code, number of codes, first period).
 

@@ -262,9 +262,10 @@ def scatter_add(M, slot, Mc):
 
 @njit(nogil=True, cache=True)
 def to_slots(group, slot, x, M):
-    """Replace each row's group by its slot in the running totals ``M``, in place, and add the
-    row's 1, x and x² to that slot (:func:`add_n_x`); -1 unless 0 <= group < the groups (no
-    finite running value)."""
+    """Replace each row's group by its slot in the running totals, in place, and add the row's
+    1, x and x² to that slot's row of ``M`` (slots × 3: the totals' n, Σx and Σx², held apart,
+    :class:`scanner.engines.sums.SlotSums`); -1 unless 0 <= group < the groups (no finite
+    running value)."""
     G = slot.size
     for i in range(group.size):
         g = group[i]
