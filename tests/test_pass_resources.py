@@ -1,4 +1,4 @@
-"""How the binning pass sets the machine up, and that it puts things back."""
+"""How the binning pass uses the machine: settings it changes and puts back, buffers it reads in place."""
 import numpy as np
 import pandas as pd
 import pytest
@@ -45,3 +45,19 @@ def test_bins_settle_on_ordinary_pages_and_the_setting_comes_back(user, monkeypa
         assert _now() is True
     finally:
         switch(original)
+
+
+def test_running_values_are_read_in_place_only_when_nothing_needs_changing():
+    # A float64 running variable with no missing value is read where arrow decoded it (no
+    # copy); with a missing value, another type, or rows to be moved, it is converted.
+    import pyarrow as pa
+    from scanner.engines.batchfold import as_is
+    batch = pa.RecordBatch.from_pydict({
+        "x": pa.array([1.5, 2.0, 3.25]), "gap": pa.array([1.0, None, 2.0]),
+        "i": pa.array([1, 2, 3], pa.int32())})
+    x = as_is(batch, "x", None)
+    assert x.tolist() == [1.5, 2.0, 3.25] and not x.flags.writeable
+    assert np.shares_memory(x, batch.column(0).to_numpy(zero_copy_only=True))
+    assert as_is(batch, "gap", None) is None
+    assert as_is(batch, "i", None) is None
+    assert as_is(batch, "x", np.array([2, 0, 1])) is None

@@ -116,6 +116,22 @@ def into(batch, name: str, source: str, role: str, out: np.ndarray, dest) -> np.
     return out
 
 
+def as_is(batch, name: str, dest):
+    """Column ``name`` of ``batch`` as a read-only view of its buffer where it needs neither
+    conversion nor moving (float64 with no missing value, rows in file order), else None.
+
+    A running variable's values are only read (coded, and summed into n, Σx, Σx²), so copying
+    them into a buffer first, as the other columns must be, wrote 8 bytes a row for nothing.
+    """
+    if dest is not None:
+        return None
+    import pyarrow as pa
+    arr = batch.column(batch.schema.get_field_index(name))
+    if arr.null_count or arr.type != pa.float64():
+        return None
+    return arr.to_numpy(zero_copy_only=True)
+
+
 def check_treatment(values: np.ndarray, column: str, source: str) -> None:
     """:func:`scanner.io.check_binary` in one compiled pass over the values (numpy's check makes
     three temporaries of the batch); its message where a value is not 0/1."""

@@ -40,7 +40,8 @@ from ..io import check_binary, numeric, period_codes, prefetched
 from .accumulate import Accumulator, keyed
 from .plan import BinPlan, BinResult
 from .codes import _codes
-from .batchfold import check_treatment, fold_together, into, moved, quarters, release, scratch
+from .batchfold import (as_is, check_treatment, fold_together, into, moved, quarters, release,
+                        scratch)
 from .resources import _kernel, _threads, block_rows, in_blocks, small_pages
 from .compact import Layout
 from .sums import unpack
@@ -291,7 +292,9 @@ def bin_local(table, plan: BinPlan, progress=None) -> BinResult:
                 if r in cols:
                     x = cols[r]
                 elif kernel == "compiled":
-                    x = into(batch, r, table.name, "running variable", scratch(m), dest)
+                    x = as_is(batch, r, dest)
+                    if x is None:
+                        x = into(batch, r, table.name, "running variable", scratch(m), dest)
                 else:
                     x = numeric(batch, r, table.name, "running variable")
                 if kernel == "compiled":
