@@ -452,9 +452,9 @@ def grid_keys(x, ok, w, p, ten, pw, limit, out):
 @njit(nogil=True, cache=True)
 def decimal_codes(x, ok, s, out):
     """:func:`dense_codes` of ``k = x·s`` when that is exactly a whole number for every row with
-    ``ok``, in one pass less: returns (codes, written to ``out``; sorted distinct k; nb; status) with status 0 (done),
-    1 (some x·s is not whole: the rest is not to be used) or 2 (whole, but too spread for a dense
-    table).
+    ``ok``, in one pass less: returns (codes, written to ``out``; sorted distinct k; nb; status)
+    with status 0 (done), 1 (some x·s is not whole: the rest is not to be used) or 2 (whole,
+    but too spread for a dense table).
 
     The first pass has no branch the compiler cannot turn into vector instructions (counting
     the rows that fail instead of stopping at the first), several times faster on the rows of
